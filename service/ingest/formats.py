@@ -37,6 +37,7 @@ CONTENT_TYPES: dict[str, str] = {
 }
 
 _BOM = b"\xef\xbb\xbf"
+_CSV_BLOCK = 8 << 20  # bytes per parallel CSV block
 _JSON_BLOCK = 4 << 20  # bytes per parallel NDJSON block; a single line must fit in one block
 _JSON_MIXED = re.compile(r"Column\(/([^)]*)\) changed from (\w+) to (\w+) in row (\d+)")
 
@@ -138,7 +139,7 @@ def _read_csv(
     def read(column_types: dict[str, pa.DataType], threads: bool) -> pa.Table:
         return pacsv.read_csv(
             pa.BufferReader(buf),
-            read_options=pacsv.ReadOptions(use_threads=threads, block_size=8 << 20),
+            read_options=pacsv.ReadOptions(use_threads=threads, block_size=_CSV_BLOCK),
             parse_options=pacsv.ParseOptions(invalid_row_handler=on_invalid),
             convert_options=pacsv.ConvertOptions(
                 column_types=column_types,
