@@ -1,0 +1,51 @@
+# Apportion: the two commands are `make demo` and `make test`; `make serve` runs the API.
+PY ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+DEVSTAMP := $(VENV)/.installed-dev
+
+.PHONY: serve test demo lint format openapi bench clean
+
+$(BIN)/python:
+	$(PY) -m venv $(VENV)
+	$(BIN)/pip install -q --upgrade pip
+
+$(STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/pip install -q -e .
+	touch $(STAMP)
+
+$(DEVSTAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/pip install -q -e '.[dev]'
+	touch $(STAMP) $(DEVSTAMP)
+
+serve: $(STAMP)
+	$(BIN)/apportion db upgrade
+	$(BIN)/apportion serve --host 127.0.0.1 --port 8000
+
+demo: $(STAMP)
+	$(BIN)/python -m service.demo.run
+
+test: $(DEVSTAMP)
+	$(BIN)/ruff check service tests bench migrations
+	$(BIN)/python -m pytest
+
+lint: $(DEVSTAMP)
+	$(BIN)/ruff check service tests bench migrations
+	$(BIN)/ruff format --check service tests bench migrations
+
+format: $(DEVSTAMP)
+	$(BIN)/ruff format service tests bench migrations
+	$(BIN)/ruff check --fix service tests bench migrations
+
+openapi: $(STAMP)
+	$(BIN)/apportion openapi --out openapi/openapi.json
+
+bench: $(DEVSTAMP)
+	$(BIN)/python bench/ingest.py
+	$(BIN)/python bench/fit.py
+	$(BIN)/python bench/optimize.py
+	$(BIN)/python bench/serve.py
+
+clean:
+	rm -rf $(VENV) var .pytest_cache

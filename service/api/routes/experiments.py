@@ -1,0 +1,90 @@
+"""Experiments and readouts."""
+
+from __future__ import annotations
+
+from typing import Any, Literal
+
+from fastapi import APIRouter, Request, status
+from fastapi.responses import JSONResponse
+from pydantic import BaseModel, Field
+from starlette.concurrency import run_in_threadpool
+
+from service.api.body import UPLOAD_OPENAPI, read_limited
+from service.api.deps import AnalystDep, ReaderDep, ServicesDep
+from service.usecases import experiments as uc
+
+router = APIRouter(prefix="/v1/experiments", tags=["experiments"])
+KEY = r"^[a-z0-9][a-z0-9_-]{0,99}$"
+COLUMN = r"^[A-Za-z_][A-Za-z0-9_]{0,99}$"
+
+
+class ArmIn(BaseModel):
+    key: str = Field(pattern=COLUMN)
+    share: float = Field(gt=0, le=1, description="designed share of units")
+
+
+class MetricIn(BaseModel):
+    key: str = Field(pattern=COLUMN)
+    kind: Literal["mean", "proportion", "ratio"]
+    direction: Literal["higher", "lower"] = "higher"
+    numerator: str | None = Field(
+        None, pattern=COLUMN, description="ratio metrics: the numerator column"
+    )
+    denominator: str | None = Field(
+        None, pattern=COLUMN, description="ratio metrics: the denominator column"
+    )
+
+
+class FeatureIn(BaseModel):
+    key: str = Field(pattern=COLUMN)
+    kind: Literal["numeric", "categorical"]
+    levels: list[str] | None = Field(None, description="categorical: the allowed levels (optional)")
+
+
+class ExperimentIn(BaseModel):
+    key: str = Field(pattern=KEY)
+    name: str | None = Field(None, max_length=200)
+    arms: list[ArmIn] = Field(min_length=2, max_length=20)
+    control: str
+    metrics: list[MetricIn] = Field(min_length=1, max_length=50)
+    features: list[FeatureIn] = Field(default_factory=list, max_length=200)
+
+
+@router.post("", status_code=status.HTTP_201_CREATED, summary="Declare an experiment")
+def declare(body: ExperimentIn, actor: AnalystDep, services: ServicesDep) -> dict[str, Any]:
+    return uc.declare(services.db, declaration=body.model_dump(exclude_none=True), actor=actor)
+
+
+@router.get("/{key}", summary="An experiment's declaration and its readouts")
+def get_experiment(key: str, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+    return uc.get(services.db, key=key)
+
+
+@router.post(
+    "/{key}/readouts",
+    summary="Upload unit-level rows (CSV, Parquet or NDJSON)",
+    openapi_extra=UPLOAD_OPENAPI,
+    status_code=status.HTTP_201_CREATED,
+    responses={
+        200: {"description": "the same bytes were uploaded before: the existing version"},
+        413: {"description": "too large"},
+        422: {"description": "invalid rows"},
+    },
+)
+async def upload_readout(
+    key: str, request: Request, actor: AnalystDep, services: ServicesDep
+) -> JSONResponse:
+    body = await read_limited(request, services.settings.max_upload_bytes)
+    ctype = request.headers.get("content-type", "")
+    view, created = await run_in_threadpool(
+        uc.upload_readout, services.db, key=key, body=body, content_type=ctype, actor=actor
+    )
+    return JSONResponse(view, status_code=201 if created else 200)
+
+
+@router.get(
+    "/{key}/readouts/{version}",
+    summary="A readout's summary: per arm and metric n, mean, standard error",
+)
+def get_readout(key: str, version: int, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+    return uc.get_readout(services.db, key=key, version=version)

@@ -1,0 +1,20 @@
+"""Jobs: state, progress and error of any long-running work."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter
+
+from service.api.deps import ReaderDep, ServicesDep
+from service.usecases import jobs as uc
+
+router = APIRouter(tags=["jobs"])
+
+
+@router.get(
+    "/v1/jobs/{job_id}",
+    summary="A job's state: queued, running, done or failed, with progress 0..1",
+)
+def get_job(job_id: str, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+    return uc.get_job(services, job_id)

@@ -1,0 +1,103 @@
+"""create_app(settings) -> FastAPI: routers, problem+json handlers, lifespan (migrations, key cache,
+live plans and their poller, the in-process job worker)."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+
+from fastapi import FastAPI
+
+from service import __version__
+from service.api import problems
+from service.api.routes import (
+    assign,
+    audit,
+    experiments,
+    health,
+    jobs,
+    keys,
+    models,
+    plans,
+    ui,
+    watch,
+)
+from service.config import Settings, get_settings
+from service.observability import RequestContextMiddleware, configure_logging
+from service.store.db import Database
+from service.store.migrate import is_current, upgrade
+from service.usecases import live
+from service.usecases.auth import KeyCache
+from service.usecases.context import Services
+from service.usecases.jobs import JobRunner
+
+log = logging.getLogger("apportion.app")
+
+DESCRIPTION = (
+    "Turns a finished randomized experiment's readout into a personalized, guardrail-aware allocation: "
+    "cohort models, plan versions with impact reports, review and activation, per-member assignment, "
+    "a tamper-evident audit trail, and a guardrail watch with rollback."
+)
+
+
+def build_services(settings: Settings) -> Services:
+    db = Database.connect(settings.database_url, pool_size=settings.db_pool_size)
+    services = Services(settings=settings, db=db)
+    services.keys = KeyCache(db)
+    services.plans = live.new_registry()
+    return services
+
+
+def start(services: Services) -> None:
+    """Bring a process up: migrations (unless told not to), caches, poller, job worker."""
+    settings = services.settings
+    if settings.migrate_on_start:
+        upgrade(services.db.engine)
+    if not is_current(services.db.engine):
+        log.warning(
+            "the database schema is behind; /readyz answers 503 until 'apportion db upgrade' runs"
+        )
+        return
+    services.keys.refresh()
+    live.start_poller(services)
+    if settings.run_jobs_in_process:
+        services.jobs = JobRunner(services, worker_name="in-process")
+        services.jobs.start()
+
+
+def stop(services: Services) -> None:
+    if services.jobs is not None:
+        services.jobs.stop()
+    if services.poller is not None:
+        services.poller.stop()
+    services.db.dispose()
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or get_settings()
+    configure_logging(settings.log_level)
+    services = build_services(settings)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        start(services)
+        try:
+            yield
+        finally:
+            stop(services)
+
+    app = FastAPI(
+        title="Apportion",
+        version=__version__,
+        description=DESCRIPTION,
+        lifespan=lifespan,
+        docs_url="/docs",
+        redoc_url=None,
+    )
+    app.state.services = services
+    problems.install(app)
+    for r in (health, keys, audit, experiments, models, jobs, plans, assign, watch, ui):
+        app.include_router(r.router)
+    app.add_middleware(RequestContextMiddleware)
+    return app

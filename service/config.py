@@ -1,0 +1,43 @@
+"""Settings from environment variables with the prefix APPORTION_ (pydantic-settings).
+
+Every variable has a safe default: the embedded SQLite file under ./var/ is the default store;
+PostgreSQL (postgresql+psycopg://...) is the production one.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from typing import Literal
+
+from pydantic import Field
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class Settings(BaseSettings):
+    model_config = SettingsConfigDict(env_prefix="APPORTION_", extra="ignore")
+
+    database_url: str = Field(
+        "sqlite:///./var/apportion.db", description="SQLAlchemy URL of the store"
+    )
+    max_upload_bytes: int = Field(
+        512 * 1024 * 1024, gt=0, description="largest accepted upload body"
+    )
+    poll_interval_seconds: float = Field(
+        1.0, gt=0, description="how often each process checks for plan changes"
+    )
+    log_level: Literal["DEBUG", "INFO", "WARNING", "ERROR"] = "INFO"
+    migrate_on_start: bool = Field(True, description="apply migrations when the server starts")
+    run_jobs_in_process: bool = Field(
+        True, description="run fit and report jobs in a worker thread of the server"
+    )
+    job_stale_seconds: float = Field(
+        600.0, gt=0, description="a running job without a heartbeat this long is reclaimed"
+    )
+    db_pool_size: int = Field(
+        40, gt=0, description="connection pool size (sized to the request threadpool)"
+    )
+
+
+@lru_cache
+def get_settings() -> Settings:
+    return Settings()

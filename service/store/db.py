@@ -1,0 +1,97 @@
+"""Engines and sessions. SQLite gets WAL, foreign keys and a busy timeout; write transactions on
+SQLite start with BEGIN IMMEDIATE so that two writers queue instead of failing half-way."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import UTC, datetime
+
+from sqlalchemy import Engine, create_engine, event
+from sqlalchemy.orm import Session, sessionmaker
+
+
+def utcnow() -> str:
+    """ISO-8601 UTC timestamp with microseconds: the one time format of the store."""
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def is_sqlite(url: str) -> bool:
+    return url.startswith("sqlite")
+
+
+def make_engine(url: str, *, pool_size: int = 40) -> Engine:
+    if is_sqlite(url):
+        path = url.split("///", 1)[-1]
+        if path and path != ":memory:":
+            os.makedirs(os.path.dirname(os.path.abspath(path)), exist_ok=True)
+        engine = create_engine(url, connect_args={"check_same_thread": False, "timeout": 30})
+
+        @event.listens_for(engine, "connect")
+        def _on_connect(dbapi_conn, _record):  # type: ignore[no-untyped-def]
+            dbapi_conn.isolation_level = None  # let the begin hook below issue BEGIN
+            cur = dbapi_conn.cursor()
+            cur.execute("PRAGMA foreign_keys=ON")
+            cur.execute("PRAGMA journal_mode=WAL")
+            cur.execute("PRAGMA busy_timeout=30000")
+            cur.execute("PRAGMA synchronous=NORMAL")
+            cur.close()
+
+        @event.listens_for(engine, "begin")
+        def _on_begin(conn):  # type: ignore[no-untyped-def]
+            mode = conn.get_execution_options().get("sqlite_begin", "DEFERRED")
+            conn.exec_driver_sql(f"BEGIN {mode}")
+
+        return engine
+    if url.startswith("postgresql://"):
+        url = "postgresql+psycopg://" + url[len("postgresql://") :]
+    return create_engine(url, pool_size=pool_size, max_overflow=10, pool_pre_ping=True)
+
+
+@dataclass
+class Database:
+    """The engine plus two session factories: reads, and writes (IMMEDIATE on SQLite)."""
+
+    url: str
+    engine: Engine
+
+    def __post_init__(self) -> None:
+        self._read = sessionmaker(bind=self.engine, expire_on_commit=False)
+        write_bind = (
+            self.engine.execution_options(sqlite_begin="IMMEDIATE")
+            if is_sqlite(self.url)
+            else self.engine
+        )
+        self._write = sessionmaker(bind=write_bind, expire_on_commit=False)
+
+    @classmethod
+    def connect(cls, url: str, *, pool_size: int = 40) -> Database:
+        return cls(url=url, engine=make_engine(url, pool_size=pool_size))
+
+    @contextmanager
+    def read(self) -> Iterator[Session]:
+        with self._read() as session, session.begin():
+            yield session
+
+    @contextmanager
+    def write(self) -> Iterator[Session]:
+        """One transaction: commits on success, rolls back on any exception."""
+        with self._write() as session, session.begin():
+            yield session
+
+    def dispose(self) -> None:
+        self.engine.dispose()
+
+
+def ping(db: Database) -> bool:
+    """True when the database answers a trivial query."""
+    from sqlalchemy import text
+
+    try:
+        with db.engine.connect() as conn:
+            conn.execute(text("SELECT 1"))
+        return True
+    except Exception:
+        return False

@@ -1,0 +1,124 @@
+"""Jobs recorded in the database: queued -> running -> done | failed.
+
+Workers claim with `SELECT ... FOR UPDATE SKIP LOCKED` on PostgreSQL (two workers never take the
+same job); SQLite write transactions are serialized by BEGIN IMMEDIATE. A running job whose
+heartbeat is older than the stale limit was interrupted (a crash): it is queued again while it
+has attempts left, else marked failed with a readable error.
+"""
+
+from __future__ import annotations
+
+import time
+import uuid
+from typing import Any
+
+from sqlalchemy import select, update
+from sqlalchemy.orm import Session
+
+from service.errors import NotFound
+from service.store.db import utcnow
+from service.store.tables import Job
+
+MAX_ATTEMPTS = 2
+
+
+def create_job(*, session: Session, kind: str, payload: dict[str, Any]) -> Job:
+    row = Job(
+        id=str(uuid.uuid4()),
+        kind=kind,
+        status="queued",
+        progress=0.0,
+        payload=payload,
+        attempts=0,
+        created_at=utcnow(),
+    )
+    session.add(row)
+    session.flush()
+    return row
+
+
+def get_job(*, session: Session, job_id: str) -> Job:
+    row = session.get(Job, job_id)
+    if row is None:
+        raise NotFound(f"no job with id '{job_id}'")
+    return row
+
+
+def claim_next(
+    *, session: Session, worker: str, kinds: tuple[str, ...] | None = None
+) -> Job | None:
+    q = select(Job).where(Job.status == "queued").order_by(Job.created_at).limit(1)
+    if kinds:
+        q = q.where(Job.kind.in_(kinds))
+    if session.bind is not None and session.bind.dialect.name == "postgresql":
+        q = q.with_for_update(skip_locked=True)
+    row = session.execute(q).scalar_one_or_none()
+    if row is None:
+        return None
+    row.status = "running"
+    row.worker = worker
+    row.attempts += 1
+    row.started_at = utcnow()
+    row.heartbeat_at = time.time()
+    row.progress = 0.0
+    session.flush()
+    return row
+
+
+def set_progress(*, session: Session, job_id: str, progress: float) -> None:
+    session.execute(
+        update(Job)
+        .where(Job.id == job_id, Job.status == "running")
+        .values(progress=max(0.0, min(1.0, progress)), heartbeat_at=time.time())
+    )
+
+
+def finish(*, session: Session, job_id: str) -> None:
+    session.execute(
+        update(Job)
+        .where(Job.id == job_id)
+        .values(status="done", progress=1.0, finished_at=utcnow(), error=None)
+    )
+
+
+def fail(*, session: Session, job_id: str, error: str) -> None:
+    session.execute(
+        update(Job)
+        .where(Job.id == job_id)
+        .values(status="failed", finished_at=utcnow(), error=error)
+    )
+
+
+def reclaim_stale(*, session: Session, stale_seconds: float) -> list[tuple[str, str]]:
+    """Requeue or fail running jobs whose heartbeat stopped; returns (job id, new status)."""
+    cutoff = time.time() - stale_seconds
+    rows = (
+        session.execute(select(Job).where(Job.status == "running", Job.heartbeat_at < cutoff))
+        .scalars()
+        .all()
+    )
+    out = []
+    for row in rows:
+        if row.attempts < MAX_ATTEMPTS:
+            row.status, row.worker = "queued", None
+        else:
+            row.status = "failed"
+            row.finished_at = utcnow()
+            row.error = f"interrupted: no heartbeat for more than {stale_seconds:.0f} s after {row.attempts} attempts"
+        out.append((row.id, row.status))
+    session.flush()
+    return out
+
+
+def job_view(row: Job) -> dict[str, Any]:
+    return {
+        "id": row.id,
+        "kind": row.kind,
+        "status": row.status,
+        "progress": round(float(row.progress), 4),
+        "error": row.error,
+        "attempts": row.attempts,
+        "created_at": row.created_at,
+        "started_at": row.started_at,
+        "finished_at": row.finished_at,
+    }

@@ -1,0 +1,305 @@
+"""Declaring experiments and storing readouts: validated whole, stored with their audit entry in one
+transaction, immutable and content-hashed (the same bytes twice give the same version)."""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from service.errors import InvalidInput
+from service.ingest.codec import decode_table, encode_table
+from service.ingest.parse import parse_units
+from service.stats.estimates import cell_moments, metric_estimates
+from service.stats.srm import sample_ratio_check
+from service.stats.table import FeatureSpec, MetricSpec, UnitTable
+from service.store import audit, blobs
+from service.store import experiments as repo
+from service.store.audit import Actor
+from service.store.db import Database
+
+RESERVED_COLUMNS = {"unit_id", "arm", "member_id", "holdout"}
+
+
+@dataclass(frozen=True)
+class ExperimentSpecs:
+    """The declaration in the shapes the statistics use (arms control first)."""
+
+    key: str
+    arm_keys: tuple[str, ...]
+    design_shares: np.ndarray
+    metrics: tuple[MetricSpec, ...]
+    features: tuple[FeatureSpec, ...]
+
+    def metric(self, key: str) -> MetricSpec | None:
+        return next((m for m in self.metrics if m.key == key), None)
+
+
+def specs_of(declaration: dict[str, Any]) -> ExperimentSpecs:
+    arms = declaration["arms"]
+    control = declaration["control"]
+    ordered = [a for a in arms if a["key"] == control] + [a for a in arms if a["key"] != control]
+    return ExperimentSpecs(
+        key=declaration["key"],
+        arm_keys=tuple(a["key"] for a in ordered),
+        design_shares=np.array([float(a["share"]) for a in ordered]),
+        metrics=tuple(
+            MetricSpec(
+                m["key"],
+                m["kind"],
+                m.get("direction", "higher"),
+                m.get("numerator"),
+                m.get("denominator"),
+            )
+            for m in declaration["metrics"]
+        ),
+        features=tuple(
+            FeatureSpec(f["key"], f["kind"], tuple(f.get("levels") or ()))
+            for f in declaration["features"]
+        ),
+    )
+
+
+def validate_declaration(decl: dict[str, Any]) -> None:
+    """Cross-field rules that a schema cannot say; raises InvalidInput naming every problem."""
+    errs: list[dict[str, Any]] = []
+    arm_keys = [a["key"] for a in decl["arms"]]
+    if len(set(arm_keys)) != len(arm_keys):
+        errs.append({"field": "arms", "problem": "arm keys must be unique"})
+    total = sum(float(a["share"]) for a in decl["arms"])
+    if abs(total - 1.0) > 1e-6:
+        errs.append(
+            {"field": "arms", "problem": f"designed shares must sum to 1; they sum to {total:.6g}"}
+        )
+    if decl["control"] not in arm_keys:
+        errs.append(
+            {
+                "field": "control",
+                "problem": f"control arm '{decl['control']}' is not one of the arms {arm_keys}",
+            }
+        )
+    names: dict[str, str] = {}
+    for m in decl["metrics"]:
+        cols = [m["key"]] if m["kind"] != "ratio" else [m.get("numerator"), m.get("denominator")]
+        if m["kind"] == "ratio" and (not m.get("numerator") or not m.get("denominator")):
+            errs.append(
+                {
+                    "field": f"metrics.{m['key']}",
+                    "problem": "a ratio metric needs numerator and denominator columns",
+                }
+            )
+            continue
+        if m["kind"] == "ratio" and m["numerator"] == m["denominator"]:
+            errs.append(
+                {
+                    "field": f"metrics.{m['key']}",
+                    "problem": "numerator and denominator must be different columns",
+                }
+            )
+        if m["key"] in names:
+            errs.append({"field": f"metrics.{m['key']}", "problem": "metric keys must be unique"})
+        names[m["key"]] = "metric"
+        for c in cols:
+            if c in RESERVED_COLUMNS:
+                errs.append(
+                    {"field": f"metrics.{m['key']}", "problem": f"column name '{c}' is reserved"}
+                )
+    for f in decl["features"]:
+        if f["key"] in names or f["key"] in RESERVED_COLUMNS:
+            errs.append(
+                {
+                    "field": f"features.{f['key']}",
+                    "problem": "feature keys must differ from metric keys and reserved columns",
+                }
+            )
+        names[f["key"]] = "feature"
+        if f["kind"] == "numeric" and f.get("levels"):
+            errs.append(
+                {
+                    "field": f"features.{f['key']}",
+                    "problem": "only categorical features have levels",
+                }
+            )
+    if errs:
+        raise InvalidInput(
+            f"the experiment declaration has {len(errs)} problem(s): "
+            + "; ".join(e["problem"] for e in errs[:3]),
+            errors=errs,
+        )
+
+
+def declare(db: Database, *, declaration: dict[str, Any], actor: Actor) -> dict[str, Any]:
+    validate_declaration(declaration)
+    with db.write() as s:
+        row = repo.add_experiment(
+            session=s,
+            key=declaration["key"],
+            name=declaration.get("name") or declaration["key"],
+            declaration=declaration,
+            created_by=actor.name,
+        )
+        audit.append(
+            s,
+            actor=actor,
+            action="experiment.declare",
+            entity="experiment",
+            entity_id=row.key,
+            payload=declaration,
+        )
+        return experiment_view(row, [])
+
+
+def experiment_view(row: Any, readouts: list[Any]) -> dict[str, Any]:
+    return {
+        **row.declaration,
+        "name": row.name,
+        "created_at": row.created_at,
+        "created_by": row.created_by,
+        "readouts": [
+            {
+                "version": r.version,
+                "n_rows": r.n_rows,
+                "content_hash": r.content_hash,
+                "created_at": r.created_at,
+                "sample_ratio": r.summary.get("sample_ratio"),
+            }
+            for r in readouts
+        ],
+    }
+
+
+def get(db: Database, *, key: str) -> dict[str, Any]:
+    with db.read() as s:
+        row = repo.get_experiment(session=s, key=key)
+        return experiment_view(row, repo.list_readouts(session=s, experiment_id=row.id))
+
+
+def summarize(table: UnitTable) -> dict[str, Any]:
+    """Per arm and metric n, mean and standard error (delta method for ratios), and the SRM check."""
+    zeros = np.zeros(table.n, dtype=np.int64)
+    moments = cell_moments(
+        zeros, 1, table.arm, table.n_arms, table.component_matrix(), table.component_names()
+    )
+    est = metric_estimates(moments, table.metrics)
+    counts = moments.n[0]
+    srm = sample_ratio_check(counts, table.design_shares)
+    arms = []
+    for j, arm in enumerate(table.arm_keys):
+        arms.append(
+            {
+                "arm": arm,
+                "n": int(counts[j]),
+                "metrics": {
+                    m.key: {
+                        "mean": _f(est.mean[0, j, k]),
+                        "se": _f(est.se[0, j, k]),
+                        "effect": _f(est.effect[0, j, k]) if j else None,
+                        "effect_se": _f(est.effect_se[0, j, k]) if j else None,
+                    }
+                    for k, m in enumerate(table.metrics)
+                },
+            }
+        )
+    return {
+        "n_rows": table.n,
+        "arm_counts": {a: int(c) for a, c in zip(table.arm_keys, counts, strict=True)},
+        "sample_ratio": srm.to_dict(),
+        "arms": arms,
+        "control": table.arm_keys[0],
+    }
+
+
+def _f(x: float) -> float | None:
+    x = float(x)
+    return None if not np.isfinite(x) else x
+
+
+def upload_readout(
+    db: Database, *, key: str, body: bytes, content_type: str, actor: Actor
+) -> tuple[dict[str, Any], bool]:
+    """Returns (readout view, created). The same bytes a second time return the existing version."""
+    content_hash = hashlib.sha256(body).hexdigest()
+    with db.read() as s:
+        exp = repo.get_experiment(session=s, key=key)
+        existing = repo.find_readout_by_hash(
+            session=s, experiment_id=exp.id, content_hash=content_hash
+        )
+        if existing is not None:
+            return readout_view(exp.key, existing), False
+        declaration = exp.declaration
+    specs = specs_of(declaration)
+    parsed = parse_units(
+        body,
+        content_type,
+        arms=specs.arm_keys,
+        control=specs.arm_keys[0],
+        design_shares=list(specs.design_shares),
+        metrics=specs.metrics,
+        features=specs.features,
+    )
+    summary = summarize(parsed.table)
+    summary["warnings"] = list(getattr(parsed, "warnings", []) or [])
+    encoded = encode_table(parsed.table)
+    with db.write() as s:
+        exp = repo.get_experiment(session=s, key=key)
+        existing = repo.find_readout_by_hash(
+            session=s, experiment_id=exp.id, content_hash=content_hash
+        )
+        if existing is not None:  # the same bytes arrived concurrently
+            return readout_view(exp.key, existing), False
+        sha = blobs.put_blob(session=s, data=encoded)
+        row = repo.add_readout(
+            session=s,
+            experiment=exp,
+            content_hash=content_hash,
+            content_type=content_type.split(";")[0].strip(),
+            blob_sha256=sha,
+            n_rows=parsed.n_rows,
+            summary=summary,
+            created_by=actor.name,
+        )
+        audit.append(
+            s,
+            actor=actor,
+            action="readout.upload",
+            entity="readout",
+            entity_id=f"{exp.key}/{row.version}",
+            payload={
+                "content_hash": content_hash,
+                "n_rows": parsed.n_rows,
+                "blob": sha,
+                "sample_ratio_flagged": summary["sample_ratio"]["flagged"],
+            },
+        )
+        return readout_view(exp.key, row), True
+
+
+def readout_view(experiment_key: str, row: Any) -> dict[str, Any]:
+    return {
+        "experiment": experiment_key,
+        "version": row.version,
+        "n_rows": row.n_rows,
+        "content_hash": row.content_hash,
+        "content_type": row.content_type,
+        "created_at": row.created_at,
+        "created_by": row.created_by,
+        **row.summary,
+    }
+
+
+def get_readout(db: Database, *, key: str, version: int) -> dict[str, Any]:
+    with db.read() as s:
+        exp = repo.get_experiment(session=s, key=key)
+        return readout_view(
+            exp.key, repo.get_readout(session=s, experiment_id=exp.id, version=version)
+        )
+
+
+def load_readout_table(db: Database, *, readout_id: int) -> tuple[UnitTable, Any]:
+    with db.read() as s:
+        row = repo.get_readout_by_id(session=s, readout_id=readout_id)
+        data = blobs.get_blob(session=s, sha256=row.blob_sha256)
+    table, _flags = decode_table(data)
+    return table, row

@@ -1,0 +1,129 @@
+"""Running jobs off the request path: a worker thread in the server (default) or `apportion worker`
+processes, all claiming from the jobs table. Handlers are registered by kind."""
+
+from __future__ import annotations
+
+import logging
+import os
+import socket
+import threading
+import time
+from collections.abc import Callable
+from typing import Any
+
+from service.errors import ApportionError
+from service.observability import JOB_FAILURES, JOB_SECONDS
+from service.store import jobs as repo
+from service.store.tables import Job
+from service.usecases.context import Services
+
+log = logging.getLogger("apportion.jobs")
+Handler = Callable[[Services, Job, Callable[[float], None]], None]
+HANDLERS: dict[str, Handler] = {}
+
+
+def handler(kind: str) -> Callable[[Handler], Handler]:
+    def register(fn: Handler) -> Handler:
+        HANDLERS[kind] = fn
+        return fn
+
+    return register
+
+
+def get_job(services: Services, job_id: str) -> dict[str, Any]:
+    with services.db.read() as s:
+        return repo.job_view(repo.get_job(session=s, job_id=job_id))
+
+
+def run_one(services: Services, worker: str) -> bool:
+    """Claim and run one queued job; False when there was none."""
+    with services.db.write() as s:
+        job = repo.claim_next(session=s, worker=worker, kinds=tuple(HANDLERS))
+        if job is None:
+            return False
+        s.expunge(job)
+    start = time.perf_counter()
+    last = [0.0]
+
+    def progress(p: float) -> None:
+        now = time.perf_counter()
+        if now - last[0] >= 0.2 or p >= 1.0:  # heartbeat at most five times a second
+            last[0] = now
+            with services.db.write() as s2:
+                repo.set_progress(session=s2, job_id=job.id, progress=p)
+
+    try:
+        HANDLERS[job.kind](services, job, progress)
+    except Exception as exc:  # the job fails; the worker lives on
+        msg = exc.detail if isinstance(exc, ApportionError) else f"{type(exc).__name__}: {exc}"
+        if not isinstance(exc, ApportionError):
+            log.error("job failed", exc_info=exc, extra={"job_id": job.id, "kind": job.kind})
+        JOB_FAILURES.labels(job.kind).inc()
+        with services.db.write() as s3:
+            repo.fail(session=s3, job_id=job.id, error=msg[:2000])
+            on_fail = FAILURE_HOOKS.get(job.kind)
+            if on_fail:
+                on_fail(s3, job, msg)
+    else:
+        JOB_SECONDS.labels(job.kind).observe(time.perf_counter() - start)
+    return True
+
+
+FAILURE_HOOKS: dict[str, Callable[[Any, Job, str], None]] = {}
+
+
+class JobRunner:
+    """A worker thread: reclaims interrupted jobs on start, then claims and runs queued ones."""
+
+    def __init__(
+        self, services: Services, *, worker_name: str | None = None, idle_seconds: float = 0.5
+    ) -> None:
+        self.services = services
+        self.worker = worker_name or f"{socket.gethostname()}:{os.getpid()}"
+        self.idle = idle_seconds
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def start(self) -> None:
+        self.reclaim()
+        self._thread = threading.Thread(target=self._loop, name=f"jobs-{self.worker}", daemon=True)
+        self._thread.start()
+
+    def reclaim(self) -> None:
+        with self.services.db.write() as s:
+            for job_id, status in repo.reclaim_stale(
+                session=s, stale_seconds=self.services.settings.job_stale_seconds
+            ):
+                log.warning(
+                    "reclaimed an interrupted job", extra={"job_id": job_id, "status": status}
+                )
+
+    def wake(self) -> None:
+        self._wake.set()
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._wake.set()
+        if self._thread is not None:
+            self._thread.join(timeout=30)
+
+    def _loop(self) -> None:
+        last_reclaim = time.monotonic()
+        while not self._stop.is_set():
+            try:
+                ran = run_one(self.services, self.worker)
+                if time.monotonic() - last_reclaim > 60:
+                    self.reclaim()
+                    last_reclaim = time.monotonic()
+            except Exception as exc:
+                log.error("job loop error", exc_info=exc)
+                ran = False
+            if not ran:
+                self._wake.wait(self.idle)
+                self._wake.clear()
+
+
+def notify(services: Services) -> None:
+    if services.jobs is not None:
+        services.jobs.wake()

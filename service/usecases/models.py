@@ -1,0 +1,243 @@
+"""Fitting cohort models as jobs, and reading them back."""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import numpy as np
+
+from service.errors import InvalidInput, NotFound
+from service.stats.estimates import CellMoments
+from service.stats.models import METHODS, fit_cohort_model, validate_params
+from service.stats.partition import Partition
+from service.store import audit, blobs
+from service.store import experiments as exp_repo
+from service.store import jobs as job_repo
+from service.store import models as repo
+from service.store.audit import Actor
+from service.store.db import Database
+from service.store.tables import Job
+from service.usecases import jobs
+from service.usecases.context import Services
+from service.usecases.experiments import load_readout_table, specs_of
+
+
+def start_fit(
+    services: Services,
+    *,
+    key: str,
+    readout_version: int,
+    method: str,
+    params: dict[str, Any],
+    success_metric: str | None,
+    override_reason: str | None,
+    actor: Actor,
+) -> dict[str, Any]:
+    if method not in METHODS:
+        raise InvalidInput(
+            f"method must be one of {', '.join(METHODS)}; got '{method}'",
+            errors=[{"field": "method", "problem": f"unknown method '{method}'"}],
+        )
+    db = services.db
+    with db.write() as s:
+        exp = exp_repo.get_experiment(session=s, key=key)
+        readout = exp_repo.get_readout(session=s, experiment_id=exp.id, version=readout_version)
+        specs = specs_of(exp.declaration)
+        if success_metric is not None and specs.metric(success_metric) is None:
+            raise InvalidInput(
+                f"success_metric '{success_metric}' is not a metric of experiment '{key}'",
+                errors=[{"field": "success_metric", "problem": "unknown metric"}],
+            )
+        resolved = validate_params(method, dict(params), specs)
+        srm = readout.summary.get("sample_ratio", {})
+        if srm.get("flagged") and not override_reason:
+            raise InvalidInput(
+                f"readout {readout_version} failed the sample-ratio check (p = {srm.get('p_value'):.3g} < {srm.get('threshold')}); "
+                "fix the assignment or give override_sample_ratio with a reason",
+                errors=[
+                    {
+                        "field": "override_sample_ratio",
+                        "problem": "required when the sample-ratio check failed",
+                    }
+                ],
+            )
+        job = job_repo.create_job(session=s, kind="fit", payload={})
+        row = repo.add_model(
+            session=s,
+            experiment_id=exp.id,
+            readout_id=readout.id,
+            method=method,
+            params={"method_params": resolved, "success_metric": success_metric},
+            job_id=job.id,
+            created_by=actor.name,
+        )
+        job.payload = {"model_id": row.id}
+        audit.append(
+            s,
+            actor=actor,
+            action="model.fit",
+            entity="cohort_model",
+            entity_id=row.id,
+            payload={
+                "experiment": key,
+                "readout_version": readout_version,
+                "method": method,
+                "params": resolved,
+                "success_metric": success_metric,
+                "sample_ratio_override": bool(srm.get("flagged")) and bool(override_reason),
+            },
+            reason=override_reason,
+        )
+        out = {
+            "model_id": row.id,
+            "version": row.version,
+            "job_id": job.id,
+            "job": f"/v1/jobs/{job.id}",
+            "model": f"/v1/models/{row.id}",
+            "status": "queued",
+        }
+    jobs.notify(services)
+    return out
+
+
+@jobs.handler("fit")
+def _run_fit(services: Services, job: Job, progress: Any) -> None:
+    model_id = int(job.payload["model_id"])
+    with services.db.read() as s:
+        row = repo.get_model(session=s, model_id=model_id)
+        method, params, readout_id = row.method, row.params, row.readout_id
+    with services.db.write() as s:
+        repo.get_model(session=s, model_id=model_id).status = "running"
+    table, _ = load_readout_table(services.db, readout_id=readout_id)
+    progress(0.05)
+    t0 = time.perf_counter()
+    fit = fit_cohort_model(
+        table,
+        method,
+        params["method_params"],
+        success_metric=params.get("success_metric"),
+        progress=lambda p: progress(0.05 + 0.9 * p),
+    )
+    result = fit_result(fit, table.arm_keys, time.perf_counter() - t0)
+    mask = np.packbits(np.asarray(fit.estimation_mask, dtype=bool)).tobytes()
+    with services.db.write() as s:
+        result["estimation_mask_blob"] = blobs.put_blob(session=s, data=mask)
+        repo.set_result(session=s, model_id=model_id, status="done", result=result)
+        job_repo.finish(session=s, job_id=job.id)
+
+
+def _on_fit_failed(session: Any, job: Job, message: str) -> None:
+    row = repo.model_for_job(session=session, job_id=job.id)
+    if row is not None and row.status != "done":
+        row.status = "failed"
+        row.result = {"error": message}
+
+
+jobs.FAILURE_HOOKS["fit"] = _on_fit_failed
+
+
+def _num(x: float) -> float | None:
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+def fit_result(fit: Any, arm_keys: tuple[str, ...], seconds: float) -> dict[str, Any]:
+    rules = fit.partition.cohort_rules()
+    est = fit.estimates
+    cohorts = []
+    for c in range(fit.partition.n_cohorts):
+        cohorts.append(
+            {
+                "id": c,
+                "rule": rules[c],
+                "share": _num(fit.shares[c]),
+                "n_estimation": {a: int(est.n[c, j]) for j, a in enumerate(arm_keys)},
+                "estimates": {
+                    m: {
+                        a: {
+                            "mean": _num(est.mean[c, j, k]),
+                            "se": _num(est.se[c, j, k]),
+                            "effect": _num(est.effect[c, j, k]) if j else None,
+                            "effect_se": _num(est.effect_se[c, j, k]) if j else None,
+                        }
+                        for j, a in enumerate(arm_keys)
+                    }
+                    for k, m in enumerate(est.metric_keys)
+                },
+            }
+        )
+    mo = fit.moments
+    return {
+        "partition": fit.partition.to_dict(),
+        "cohorts": cohorts,
+        "arms": list(arm_keys),
+        "moments": {
+            "components": list(mo.components),
+            "n": mo.n.tolist(),
+            "mean": np.nan_to_num(mo.mean).tolist(),
+            "cov": np.nan_to_num(mo.cov).tolist(),
+        },
+        "diagnostics": {**fit.diagnostics, "job_seconds": round(seconds, 4)},
+        "resolved_params": fit.params,
+    }
+
+
+def moments_of(result: dict[str, Any]) -> CellMoments:
+    m = result["moments"]
+    return CellMoments(
+        components=tuple(m["components"]),
+        n=np.array(m["n"], dtype=np.int64),
+        mean=np.array(m["mean"], dtype=np.float64),
+        cov=np.array(m["cov"], dtype=np.float64),
+    )
+
+
+def partition_of(result: dict[str, Any]) -> Partition:
+    return Partition.from_dict(result["partition"])
+
+
+def estimation_mask(db: Database, result: dict[str, Any], n: int) -> np.ndarray:
+    with db.read() as s:
+        data = blobs.get_blob(session=s, sha256=result["estimation_mask_blob"])
+    return np.unpackbits(np.frombuffer(data, dtype=np.uint8), count=n).astype(bool)
+
+
+def model_view(row: Any, experiment_key: str) -> dict[str, Any]:
+    out: dict[str, Any] = {
+        "id": row.id,
+        "experiment": experiment_key,
+        "version": row.version,
+        "method": row.method,
+        "params": row.params,
+        "status": row.status,
+        "job": f"/v1/jobs/{row.job_id}",
+        "created_at": row.created_at,
+        "created_by": row.created_by,
+    }
+    res = row.result or {}
+    if row.status == "done":
+        out.update(
+            {
+                "cohorts": res["cohorts"],
+                "arms": res["arms"],
+                "diagnostics": res["diagnostics"],
+                "resolved_params": res.get("resolved_params"),
+                "partition": res["partition"],
+            }
+        )
+    elif row.status == "failed":
+        out["error"] = res.get("error")
+    return out
+
+
+def get_model(db: Database, *, model_id: int) -> dict[str, Any]:
+    with db.read() as s:
+        row = repo.get_model(session=s, model_id=model_id)
+        exp = s.get(exp_repo.Experiment, row.experiment_id)
+        if exp is None:
+            raise NotFound(f"experiment of model {model_id} is missing")
+        view = model_view(row, exp.key)
+        job = job_repo.get_job(session=s, job_id=row.job_id)
+        view["progress"] = job.progress
+    return view
