@@ -1,0 +1,182 @@
+"""In-process assignment speed: single lookups and a 10,000-member batch on a depth-8 partition.
+
+Builds a full depth-8 random tree (255 splits, 256 leaves over 24 cohorts) on 10 features (6
+numeric, 4 categorical, some levels unseen at some nodes), compiles it with 3 arms and a 10 %
+holdout, then times `assign` over 100,000 calls (median and p99 of per-call times) and
+`assign_batch` on 10,000 members (median of 15 runs).
+Prints ONE JSON line. Also usable as a module: `measure(...) -> dict` for bench/serve.py.
+
+The reference in the same process is a plain Python loop that only hashes the member id
+(`hash_only_us`): the single-lookup ratio against it says how much the walk and checks add.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run as a script from anywhere
+
+from service.serving.hashing import hash_state, uniform_from_state
+from service.serving.index import CompiledPlan, compile_plan, new_salt
+from service.stats.partition import Partition
+from service.stats.table import FeatureSpec
+
+LEVELS = ("a", "b", "c", "d", "e", "f")
+
+
+def bench_features() -> tuple[FeatureSpec, ...]:
+    num = tuple(FeatureSpec(f"x{i}", "numeric") for i in range(6))
+    cat = tuple(FeatureSpec(f"c{i}", "categorical", LEVELS) for i in range(4))
+    return num + cat
+
+
+def random_partition(rng: np.random.Generator, depth: int = 8, n_cohorts: int = 24) -> Partition:
+    """A full binary tree of the given depth with random splits (flat arrays, root = 0)."""
+    feats = bench_features()
+    n = 2 ** (depth + 1) - 1
+    feature = np.full(n, -1, dtype=np.int64)
+    threshold = np.full(n, np.nan)
+    left_lv: list[tuple[str, ...]] = [()] * n
+    right_lv: list[tuple[str, ...]] = [()] * n
+    left = np.full(n, -1, dtype=np.int64)
+    right = np.full(n, -1, dtype=np.int64)
+    default_left = rng.random(n) < 0.5
+    cohort = np.full(n, -1, dtype=np.int64)
+    for nd in range(n):
+        if nd >= 2**depth - 1:  # leaf (heap layout)
+            cohort[nd] = rng.integers(n_cohorts)
+            continue
+        fi = int(rng.integers(len(feats)))
+        feature[nd] = fi
+        left[nd], right[nd] = 2 * nd + 1, 2 * nd + 2
+        if feats[fi].kind == "numeric":
+            threshold[nd] = rng.normal()
+        else:
+            lv = list(rng.permutation(LEVELS))
+            k = int(rng.integers(1, 5))
+            left_lv[nd], right_lv[nd] = tuple(lv[:k]), tuple(lv[k:5])  # lv[5] unseen here
+    cohort[2**depth - 1 :][:n_cohorts] = np.arange(n_cohorts)  # every cohort has a leaf
+    return Partition(
+        features=feats,
+        feature=feature,
+        threshold=threshold,
+        left_levels=tuple(left_lv),
+        right_levels=tuple(right_lv),
+        left=left,
+        right=right,
+        default_left=default_left,
+        cohort=cohort,
+        n_cohorts=n_cohorts,
+    )
+
+
+def random_members(rng: np.random.Generator, n: int) -> tuple[list[str], list[dict[str, Any]]]:
+    """Ids and feature objects as JSON would deliver them (2 % of values missing)."""
+    ids = [f"member-{i:07d}" for i in range(n)]
+    rows: list[dict[str, Any]] = []
+    xs = rng.normal(size=(n, 6))
+    cs = rng.integers(len(LEVELS), size=(n, 4))
+    miss = rng.random((n, 10)) < 0.02
+    for i in range(n):
+        row: dict[str, Any] = {}
+        for j in range(6):
+            if not miss[i, j]:
+                row[f"x{j}"] = float(xs[i, j])
+        for j in range(4):
+            if not miss[i, 6 + j]:
+                row[f"c{j}"] = LEVELS[cs[i, j]]
+        rows.append(row)
+    return ids, rows
+
+
+def build(seed: int = 7, depth: int = 8) -> CompiledPlan:
+    rng = np.random.default_rng(seed)
+    p = random_partition(rng, depth=depth)
+    alloc = rng.dirichlet(np.ones(3), size=p.n_cohorts)
+    return compile_plan(
+        plan="bench",
+        version=1,
+        partition=p,
+        allocation=alloc,
+        arm_keys=("control", "short", "long"),
+        holdout_share=0.1,
+        holdout_arm="control",
+        salt=new_salt(),
+    )
+
+
+def _per_call_us(
+    fn: Any, ids: list[str], rows: list[dict[str, Any]], calls: int, block: int
+) -> list[float]:
+    out: list[float] = []
+    n = len(ids)
+    clock = time.perf_counter_ns
+    for start in range(0, calls, block):
+        pairs = [(ids[(start + k) % n], rows[(start + k) % n]) for k in range(block)]
+        t0 = clock()
+        for m, r in pairs:
+            fn(m, r)
+        out.append((clock() - t0) / block / 1e3)
+    return out
+
+
+def measure(
+    calls: int = 100_000, batch: int = 10_000, repeats: int = 15, seed: int = 7
+) -> dict[str, Any]:
+    cp = build(seed)
+    ids, rows = random_members(np.random.default_rng(seed + 1), max(batch, 20_000))
+    state = hash_state(cp.salt, "arm")
+
+    def hash_only(m: str, r: dict[str, Any]) -> float:
+        return uniform_from_state(state, m.strip().encode("utf-8"))
+
+    block = 1  # per-call times (perf_counter_ns adds ~0.1 us of clock overhead to each)
+    _per_call_us(cp.assign, ids, rows, 20_000, block)  # warm up
+    single = _per_call_us(cp.assign, ids, rows, calls, block)
+    ref = _per_call_us(hash_only, ids, rows, calls, block)
+    bids, brows = ids[:batch], rows[:batch]
+    cp.assign_batch(bids, brows)
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        cp.assign_batch(bids, brows)
+        times.append((time.perf_counter() - t0) * 1e3)
+    single_sorted = sorted(single)
+    med = statistics.median(single)
+    return {
+        "bench": "serve_inprocess",
+        "depth": cp.depth,
+        "features": len(cp.feature_specs),
+        "cohorts": cp.n_cohorts,
+        "single_calls": calls,
+        "single_median_us": round(med, 3),
+        "single_p99_us": round(single_sorted[int(0.99 * (len(single_sorted) - 1))], 3),
+        "hash_only_us": round(statistics.median(ref), 3),
+        "single_over_hash_only": round(med / statistics.median(ref), 2),
+        "batch_members": batch,
+        "batch_median_ms": round(statistics.median(times), 3),
+        "batch_per_member_us": round(statistics.median(times) * 1e3 / batch, 3),
+        "single_target_us": 10.0,
+        "batch_target_ms": 20.0,
+    }
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--calls", type=int, default=100_000)
+    ap.add_argument("--batch", type=int, default=10_000)
+    ap.add_argument("--seed", type=int, default=7)
+    a = ap.parse_args()
+    print(json.dumps(measure(calls=a.calls, batch=a.batch, seed=a.seed)))
+
+
+if __name__ == "__main__":
+    main()

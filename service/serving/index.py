@@ -1,0 +1,640 @@
+"""The compiled, immutable lookup index of one plan version: member + features -> assignment.
+
+A `Partition` and its (C, J) allocation compile to two copies of the same tree: nested Python
+tuples for the single lookup (straight-line Python, no numpy scalars per node, ~µs per call) and
+flat numpy arrays for batches (the walk is vectorised over members; hashing loops per member).
+Design §8, Methods §10:
+
+    u1 = U(salt, member, "holdout");  u1 < holdout_share  -> holdout arm
+    cohort = walk(partition, features)                     (also for holdout members, see below)
+    u2 = U(salt, member, "arm");  arm = first j with cum[cohort, j] > u2,  cum[cohort, -1] = 1
+
+Holdout members still get their cohort from the walk, so the watch can compare plan and holdout
+members cohort by cohort; `holdout=True` tells them apart. `defaults_used` lists, in the plan's
+feature order, the features at which the walk took a node's default direction (missing key, None,
+NaN, or a categorical level the node did not see); features not on the member's path are not
+listed even when absent. A value of the wrong type for any of the plan's features (checked for all
+of them, on the path or not, so the answer to "is this request valid" does not depend on the
+route) raises InvalidInput naming the feature and the member. bool is not numeric.
+"""
+
+from __future__ import annotations
+
+from bisect import bisect_right
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from itertools import repeat
+from types import MappingProxyType
+from typing import Any
+
+import numpy as np
+
+from service.errors import InvalidInput
+from service.serving.hashing import (
+    check_salt,
+    hash_state,
+    new_salt,
+    normalise_member_id,
+    uniform_from_state,
+    uniforms_from_state,
+    unit_uniform,
+)
+from service.stats.partition import Partition
+from service.stats.table import FeatureSpec
+
+__all__ = [
+    "Assignment",
+    "CompiledPlan",
+    "compile_plan",
+    "new_salt",
+    "unit_uniform",
+]
+
+_NoneType = type(None)
+_SHARE_TOL = 1e-6  # an allocation row may miss 1 by this much (solver rounding); it is renormalised
+
+
+@dataclass(frozen=True)
+class Assignment:
+    """The answer to one lookup. Equal inputs give equal (and, in a batch, shared) objects."""
+
+    arm: str
+    cohort: int
+    plan_version: int
+    holdout: bool
+    defaults_used: tuple[str, ...] = ()
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "arm": self.arm,
+            "cohort": self.cohort,
+            "plan_version": self.plan_version,
+            "holdout": self.holdout,
+            "defaults_used": list(self.defaults_used),
+        }
+
+
+# ---- value checks shared by the single and the batch path ---------------------------------------
+def _type_error(
+    key: str, member: str, expected: str, value: Any, index: int | None
+) -> InvalidInput:
+    where = f"member '{member}'" if index is None else f"member '{member}' (item {index})"
+    err: dict[str, Any] = {
+        "field": f"features.{key}",
+        "member_id": member,
+        "expected": expected,
+        "got": type(value).__name__,
+    }
+    if index is not None:
+        err["index"] = index
+    return InvalidInput(
+        f"feature '{key}' of {where} must be {expected}, got {type(value).__name__} {value!r:.60}",
+        errors=[err],
+    )
+
+
+def _numeric_value(key: str, v: Any, member: str, index: int | None = None) -> float:
+    """The value as float (NaN when missing); raises for bools, strings and anything else."""
+    if v is None:
+        return np.nan
+    if isinstance(v, bool | np.bool_) or not isinstance(v, int | float | np.integer | np.floating):
+        raise _type_error(key, member, "a number", v, index)
+    return float(v)
+
+
+def _categorical_value(key: str, v: Any, member: str, index: int | None = None) -> str | None:
+    """The level (None when missing: None or a float NaN); raises for numbers, bools, lists..."""
+    if v is None:
+        return None
+    if isinstance(v, str):
+        return str(v)
+    if isinstance(v, float | np.floating) and v != v:
+        return None
+    raise _type_error(key, member, "a string level", v, index)
+
+
+class CompiledPlan:
+    """One plan version ready to answer lookups. Immutable: attributes cannot be set after init.
+
+    Attributes: plan, version, revision, arm_keys (J,), salt, holdout_share, holdout_arm,
+    feature_specs (key -> FeatureSpec), n_cohorts, depth, shares (C, J), cumulative (C, J) with
+    the last positive-share column onwards set to exactly 1, and the flat node arrays used by the
+    batch walk (node_feature, node_threshold, node_directions, node_left, node_right,
+    node_default_left, node_cohort).
+    """
+
+    __slots__ = (
+        "plan",
+        "version",
+        "revision",
+        "arm_keys",
+        "salt",
+        "holdout_share",
+        "holdout_arm",
+        "feature_specs",
+        "n_cohorts",
+        "depth",
+        "shares",
+        "cumulative",
+        "node_feature",
+        "node_is_numeric",
+        "node_threshold",
+        "node_directions",
+        "node_left",
+        "node_right",
+        "node_default_left",
+        "node_cohort",
+        "_feature_keys",
+        "_checks",
+        "_root",
+        "_cum_lists",
+        "_holdout_index",
+        "_holdout_state",
+        "_arm_state",
+        "_level_codes",
+        "_missing_code",
+        "_is_leaf",
+    )
+
+    def __init__(
+        self,
+        *,
+        plan: str,
+        version: int,
+        partition: Partition,
+        allocation: np.ndarray,
+        arm_keys: tuple[str, ...],
+        holdout_share: float,
+        holdout_arm: str,
+        salt: str,
+        revision: int = 0,
+    ) -> None:
+        s = object.__setattr__
+        arm_keys = tuple(arm_keys)
+        _check_header(plan, version, revision, arm_keys, holdout_share, holdout_arm, salt)
+        shares, cum = _check_allocation(allocation, partition.n_cohorts, arm_keys)
+        depth = _check_tree(partition)
+        s(self, "plan", plan)
+        s(self, "version", int(version))
+        s(self, "revision", int(revision))
+        s(self, "arm_keys", arm_keys)
+        s(self, "salt", salt)
+        s(self, "holdout_share", float(holdout_share))
+        s(self, "holdout_arm", holdout_arm)
+        s(self, "feature_specs", MappingProxyType({f.key: f for f in partition.features}))
+        s(self, "n_cohorts", int(partition.n_cohorts))
+        s(self, "depth", depth)
+        s(self, "shares", _frozen(shares))
+        s(self, "cumulative", _frozen(cum))
+        s(self, "_cum_lists", tuple(tuple(row) for row in cum.tolist()))
+        s(self, "_holdout_index", arm_keys.index(holdout_arm))
+        s(self, "_holdout_state", hash_state(salt, "holdout"))
+        s(self, "_arm_state", hash_state(salt, "arm"))
+        feats = partition.features
+        s(self, "_feature_keys", tuple(f.key for f in feats))
+        s(self, "_checks", tuple((f.key, f.kind == "numeric") for f in feats))
+        self._compile_single(partition)
+        self._compile_flat(partition)
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        raise AttributeError(f"CompiledPlan is immutable; cannot set {name!r}")
+
+    def __repr__(self) -> str:
+        return (
+            f"CompiledPlan(plan={self.plan!r}, version={self.version}, revision={self.revision}, "
+            f"cohorts={self.n_cohorts}, arms={self.arm_keys}, holdout={self.holdout_share})"
+        )
+
+    # ---- compilation ---------------------------------------------------------------------------
+    def _compile_single(self, p: Partition) -> None:
+        """Nested tuples (key, is_numeric, threshold, level->goes_left, left, right, default_left,
+        feature_index, cohort), built bottom-up so the walk follows references, not indices."""
+        built: dict[int, tuple[Any, ...]] = {}
+        order: list[int] = []
+        stack = [0]
+        while stack:  # pre-order, then build in reverse so children exist before parents
+            nd = stack.pop()
+            order.append(nd)
+            if p.feature[nd] >= 0:
+                stack.extend((int(p.left[nd]), int(p.right[nd])))
+        for nd in reversed(order):
+            fi = int(p.feature[nd])
+            if fi < 0:
+                built[nd] = (None, False, 0.0, None, None, None, True, -1, int(p.cohort[nd]))
+                continue
+            f = p.features[fi]
+            numeric = f.kind == "numeric"
+            levels: dict[str, bool] | None = None
+            if not numeric:
+                levels = dict.fromkeys(p.right_levels[nd], False)
+                levels.update(dict.fromkeys(p.left_levels[nd], True))  # left wins, as in route
+            built[nd] = (
+                f.key,
+                numeric,
+                float(p.threshold[nd]) if numeric else 0.0,
+                levels,
+                built[int(p.left[nd])],
+                built[int(p.right[nd])],
+                bool(p.default_left[nd]),
+                fi,
+                -1,
+            )
+        object.__setattr__(self, "_root", built[0])
+
+    def _compile_flat(self, p: Partition) -> None:
+        """Flat arrays for the vectorised walk. Leaves point at themselves so the walk can run a
+        fixed `depth` steps; categorical levels get one code space per feature, and the code
+        `_missing_code` (one past the longest) stands for missing or unknown everywhere."""
+        s = object.__setattr__
+        n = p.n_nodes
+        codes: list[dict[str, int]] = []
+        for fi, f in enumerate(p.features):
+            lut: dict[str, int] = {}
+            if f.kind == "categorical":
+                for lv in f.levels:
+                    lut.setdefault(lv, len(lut))
+                for nd in range(n):
+                    if int(p.feature[nd]) == fi:
+                        for lv in (*p.left_levels[nd], *p.right_levels[nd]):
+                            lut.setdefault(lv, len(lut))
+            codes.append(lut)
+        missing = max((len(c) for c in codes), default=0)
+        is_leaf = np.asarray(p.feature) < 0
+        feat = np.where(is_leaf, 0, p.feature).astype(np.intp)
+        is_num = np.zeros(n, dtype=bool)
+        thr = np.full(n, np.nan)
+        dirs = np.full((n, missing + 1), -1, dtype=np.int8)  # 1 left, 0 right, -1 default
+        for nd in range(n):
+            if is_leaf[nd]:
+                continue
+            f = p.features[int(feat[nd])]
+            if f.kind == "numeric":
+                is_num[nd] = True
+                thr[nd] = float(p.threshold[nd])
+            else:
+                lut = codes[int(feat[nd])]
+                for lv in p.right_levels[nd]:
+                    dirs[nd, lut[lv]] = 0
+                for lv in p.left_levels[nd]:
+                    dirs[nd, lut[lv]] = 1
+        self_idx = np.arange(n, dtype=np.intp)
+        s(self, "_level_codes", tuple(codes))
+        s(self, "_missing_code", missing)
+        s(self, "_is_leaf", _frozen(is_leaf))
+        s(self, "node_feature", _frozen(feat))
+        s(self, "node_is_numeric", _frozen(is_num))
+        s(self, "node_threshold", _frozen(thr))
+        s(self, "node_directions", _frozen(dirs))
+        s(self, "node_left", _frozen(np.where(is_leaf, self_idx, p.left).astype(np.intp)))
+        s(self, "node_right", _frozen(np.where(is_leaf, self_idx, p.right).astype(np.intp)))
+        s(self, "node_default_left", _frozen(np.asarray(p.default_left, dtype=bool).copy()))
+        s(self, "node_cohort", _frozen(np.asarray(p.cohort, dtype=np.intp).copy()))
+
+    # ---- single lookup ---------------------------------------------------------------------------
+    def assign(self, member_id: str, features: Mapping[str, Any]) -> Assignment:
+        """The assignment of one member. Raises InvalidInput for a bad id or a wrongly typed value."""
+        member = normalise_member_id(member_id)
+        if not isinstance(features, Mapping):
+            raise InvalidInput(
+                f"features of member '{member}' must be an object, got {type(features).__name__}",
+                errors=[{"field": "features", "member_id": member}],
+            )
+        get = features.get
+        fixed: dict[str, Any] | None = None
+        for key, numeric in self._checks:
+            v = get(key)
+            if v is None:
+                continue
+            t = type(v)
+            if numeric:
+                if t is float or t is int:
+                    continue
+                norm: Any = _numeric_value(key, v, member)  # e.g. a numpy scalar -> float
+            elif t is str:
+                continue
+            else:
+                norm = _categorical_value(key, v, member)  # NaN -> None, str subclass -> str
+            fixed = {key: norm} if fixed is None else {**fixed, key: norm}
+        if fixed is not None:  # rare: compare exactly as the batch path does (float64, str)
+            get = {**features, **fixed}.get
+
+        node = self._root
+        defaults: list[int] | None = None
+        while True:
+            key = node[0]
+            if key is None:
+                break
+            v = get(key)
+            if node[1]:  # numeric: x < threshold goes left; None / NaN take the default
+                if v is None or v != v:
+                    side = node[6]
+                    if defaults is None:
+                        defaults = [node[7]]
+                    else:
+                        defaults.append(node[7])
+                else:
+                    side = v < node[2]
+            else:
+                side = node[3].get(v)  # None, NaN or an unseen level -> None -> default
+                if side is None:
+                    side = node[6]
+                    if defaults is None:
+                        defaults = [node[7]]
+                    else:
+                        defaults.append(node[7])
+            node = node[4] if side else node[5]
+        cohort = node[8]
+        used: tuple[str, ...] = ()
+        if defaults is not None:
+            keys = self._feature_keys
+            used = tuple(keys[i] for i in sorted(set(defaults)))
+
+        encoded = member.encode("utf-8")
+        if (
+            self.holdout_share > 0.0
+            and uniform_from_state(self._holdout_state, encoded) < self.holdout_share
+        ):
+            return Assignment(self.holdout_arm, cohort, self.version, True, used)
+        u2 = uniform_from_state(self._arm_state, encoded)
+        arm = bisect_right(self._cum_lists[cohort], u2)  # first j with cum[j] > u2
+        return Assignment(self.arm_keys[arm], cohort, self.version, False, used)
+
+    # ---- batch lookups ---------------------------------------------------------------------------
+    def assign_batch(
+        self, member_ids: Sequence[Any], features: Sequence[Mapping[str, Any]]
+    ) -> list[Assignment]:
+        """One assignment per member, equal to `assign` member by member (row-wise input)."""
+        n = len(member_ids)
+        if len(features) != n:
+            raise InvalidInput(
+                f"got {n} member ids but {len(features)} feature objects",
+                errors=[{"field": "features", "expected": n, "got": len(features)}],
+            )
+        rows = list(features)
+        if set(map(type, rows)) <= {dict}:
+            columns = {k: list(map(dict.get, rows, repeat(k, n))) for k in self._feature_keys}
+        else:
+            for i, m in enumerate(rows):
+                if not isinstance(m, Mapping):
+                    raise InvalidInput(
+                        f"features of item {i} (member {member_ids[i]!r}) must be an object, "
+                        f"got {type(m).__name__}",
+                        errors=[{"field": "features", "index": i}],
+                    )
+            columns = {k: [m.get(k) for m in rows] for k in self._feature_keys}
+        return self.assign_columns(member_ids, columns)
+
+    def assign_columns(
+        self, member_ids: Sequence[Any], columns: Mapping[str, Sequence[Any]]
+    ) -> list[Assignment]:
+        """The batch path on columnar input: `columns[key][i]` is member i's value (None or NaN
+        for missing; an absent column is missing for everyone). Columns not in the plan are
+        ignored."""
+        n = len(member_ids)
+        members = _normalise_ids(member_ids)
+        for key, col in columns.items():
+            if key in self.feature_specs and len(col) != n:
+                raise InvalidInput(
+                    f"column '{key}' has {len(col)} values for {n} members",
+                    errors=[{"field": f"features.{key}", "expected": n, "got": len(col)}],
+                )
+        if n == 0:
+            return []
+        xnum, xcat = self._encode_columns(members, columns, n)
+        cohort, used = self._walk(xnum, xcat, n)
+
+        encoded = [m.encode("utf-8") for m in members]
+        holdout = np.zeros(n, dtype=bool)
+        if self.holdout_share > 0.0:
+            holdout = uniforms_from_state(self._holdout_state, encoded) < self.holdout_share
+        arm = np.full(n, self._holdout_index, dtype=np.intp)
+        rest = np.flatnonzero(~holdout)
+        if rest.size:
+            u2 = uniforms_from_state(self._arm_state, [encoded[i] for i in rest.tolist()])
+            cum = self.cumulative[cohort[rest]]  # (r, J)
+            arm[rest] = (u2[:, None] >= cum).sum(axis=1)  # = bisect_right per row
+
+        return self._materialise(arm, cohort, holdout, used, n)
+
+    def _encode_columns(
+        self, members: list[str], columns: Mapping[str, Sequence[Any]], n: int
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """(F, n) float64 numeric values (NaN missing or not numeric) and (F, n) level codes
+        (`_missing_code` for missing, unknown or not categorical), checking every value's type."""
+        nf = len(self._feature_keys)
+        miss = self._missing_code
+        xnum = np.full((nf, n), np.nan)
+        xcat = np.full((nf, n), miss, dtype=np.intp)
+        for fi, (key, numeric) in enumerate(self._checks):
+            col = columns.get(key)
+            if col is None:
+                continue
+            col = list(col)
+            kinds = set(map(type, col))
+            if numeric:
+                if kinds <= {float, int, _NoneType}:
+                    try:
+                        xnum[fi] = np.array(col, dtype=np.float64)
+                        continue
+                    except OverflowError:
+                        pass
+                xnum[fi] = [_numeric_value(key, v, members[i], i) for i, v in enumerate(col)]
+            else:
+                lut = self._level_codes[fi]
+                if kinds <= {str, _NoneType}:
+                    xcat[fi] = np.fromiter(map(lut.get, col, repeat(miss, n)), np.intp, n)
+                    continue
+                vals = [_categorical_value(key, v, members[i], i) for i, v in enumerate(col)]
+                xcat[fi] = np.fromiter(map(lut.get, vals, repeat(miss, n)), np.intp, n)
+        return xnum, xcat
+
+    def _walk(self, xnum: np.ndarray, xcat: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """Cohort per member (n,) and the (F, n) mask of features whose default was taken."""
+        node = np.zeros(n, dtype=np.intp)
+        used = np.zeros(xnum.shape, dtype=bool)
+        ar = np.arange(n)
+        feat, is_num, thr = self.node_feature, self.node_is_numeric, self.node_threshold
+        dirs, dleft, is_leaf = self.node_directions, self.node_default_left, self._is_leaf
+        for _ in range(self.depth):
+            f = feat[node]
+            xn = xnum[f, ar]
+            d = dirs[node, xcat[f, ar]]
+            num = is_num[node]
+            known = np.where(num, xn == xn, d >= 0)
+            go_left = np.where(known, np.where(num, xn < thr[node], d == 1), dleft[node])
+            took_default = ~known & ~is_leaf[node]
+            if took_default.any():
+                used[f[took_default], ar[took_default]] = True
+            node = np.where(go_left, self.node_left[node], self.node_right[node])
+        return self.node_cohort[node], used
+
+    def _materialise(
+        self, arm: np.ndarray, cohort: np.ndarray, holdout: np.ndarray, used: np.ndarray, n: int
+    ) -> list[Assignment]:
+        """Assignment objects; equal answers share one immutable object, so a batch builds only
+        as many objects as it has distinct (arm, cohort, holdout, defaults) combinations."""
+        keys = self._feature_keys
+        names: list[tuple[str, ...]] = [()]
+        pattern = np.zeros(n, dtype=np.intp)
+        if used.any():
+            rows = np.packbits(used, axis=0, bitorder="little")  # (ceil(F / 8), n) uint8
+            if rows.shape[0] <= 7:  # the bit pattern as one int64: a cheap 1-d unique
+                packed = np.zeros(n, dtype=np.int64)
+                for b in range(rows.shape[0]):
+                    packed |= rows[b].astype(np.int64) << (8 * b)
+                _, first_p, pattern = np.unique(packed, return_index=True, return_inverse=True)
+            else:
+                _, first_p, pattern = np.unique(
+                    used.T, axis=0, return_index=True, return_inverse=True
+                )
+            pattern = pattern.reshape(-1)
+            names = [
+                tuple(keys[j] for j in np.flatnonzero(used[:, i]).tolist())
+                for i in first_p.tolist()
+            ]
+        code = ((pattern * self.n_cohorts + cohort) * 2 + holdout) * len(self.arm_keys) + arm
+        _, first, inverse = np.unique(code, return_index=True, return_inverse=True)
+        arm_keys, version = self.arm_keys, self.version
+        objs = [
+            Assignment(arm_keys[a], c, version, h, names[p])
+            for a, c, h, p in zip(
+                arm[first].tolist(),
+                cohort[first].tolist(),
+                holdout[first].tolist(),
+                pattern[first].tolist(),
+                strict=True,
+            )
+        ]
+        return [objs[i] for i in inverse.reshape(-1).tolist()]
+
+
+def compile_plan(
+    *,
+    plan: str,
+    version: int,
+    partition: Partition,
+    allocation: np.ndarray,
+    arm_keys: tuple[str, ...],
+    holdout_share: float,
+    holdout_arm: str,
+    salt: str,
+    revision: int = 0,
+) -> CompiledPlan:
+    """Compile a plan version. `allocation`: (n_cohorts, n_arms), rows sum to 1 (to 1e-6).
+
+    Raises InvalidInput for a malformed partition (bad child, cycle, cohort out of range), an
+    allocation of the wrong shape or with negative / non-summing rows, an unknown holdout arm, a
+    holdout share outside [0, 1), or a bad salt.
+    """
+    return CompiledPlan(
+        plan=plan,
+        version=version,
+        partition=partition,
+        allocation=allocation,
+        arm_keys=arm_keys,
+        holdout_share=holdout_share,
+        holdout_arm=holdout_arm,
+        salt=salt,
+        revision=revision,
+    )
+
+
+# ---- checks at compile time -------------------------------------------------------------------
+def _frozen(a: np.ndarray) -> np.ndarray:
+    a = np.array(a, copy=True)
+    a.setflags(write=False)
+    return a
+
+
+def _normalise_ids(member_ids: Sequence[Any]) -> list[str]:
+    ids = list(member_ids)
+    if set(map(type, ids)) <= {str}:
+        out = [m.strip() for m in ids]
+        if all(out):
+            return out
+    out = []
+    for i, m in enumerate(ids):
+        try:
+            out.append(normalise_member_id(m))
+        except InvalidInput as e:
+            raise InvalidInput(
+                f"item {i}: {e.detail}", errors=[{**e.errors[0], "index": i}]
+            ) from None
+    return out
+
+
+def _check_header(
+    plan: str,
+    version: int,
+    revision: int,
+    arm_keys: tuple[str, ...],
+    holdout_share: float,
+    holdout_arm: str,
+    salt: str,
+) -> None:
+    if not isinstance(plan, str) or not plan:
+        raise InvalidInput(f"plan must be a non-empty string, got {plan!r}")
+    if not arm_keys or len(set(arm_keys)) != len(arm_keys):
+        raise InvalidInput(f"arm_keys must be distinct and non-empty, got {arm_keys!r}")
+    if holdout_arm not in arm_keys:
+        raise InvalidInput(f"holdout arm '{holdout_arm}' is not one of the arms {list(arm_keys)}")
+    h = float(holdout_share)
+    if not 0.0 <= h < 1.0:
+        raise InvalidInput(f"holdout_share must be in [0, 1), got {holdout_share!r}")
+    check_salt(salt)
+
+
+def _check_allocation(
+    allocation: np.ndarray, n_cohorts: int, arm_keys: tuple[str, ...]
+) -> tuple[np.ndarray, np.ndarray]:
+    """Shares (C, J) renormalised, and cumulative shares with the tail set to exactly 1 from the
+    last positive share on, so float rounding can never pick a zero-share arm (Methods §10)."""
+    x = np.asarray(allocation, dtype=np.float64)
+    if x.shape != (n_cohorts, len(arm_keys)):
+        raise InvalidInput(
+            f"allocation has shape {x.shape}; expected ({n_cohorts} cohorts, {len(arm_keys)} arms)"
+        )
+    if not np.isfinite(x).all() or (x < 0).any():
+        bad = np.argwhere(~np.isfinite(x) | (x < 0))[0]
+        raise InvalidInput(f"allocation[{bad[0]}, {bad[1]}] = {x[tuple(bad)]} is not a share")
+    sums = x.sum(axis=1)
+    off = np.flatnonzero(np.abs(sums - 1.0) > _SHARE_TOL)
+    if off.size:
+        raise InvalidInput(f"allocation row {off[0]} sums to {sums[off[0]]:.9g}, not 1")
+    x = x / sums[:, None]
+    cum = np.cumsum(x, axis=1)
+    for c in range(n_cohorts):
+        last = int(np.flatnonzero(x[c] > 0)[-1])
+        cum[c, last:] = 1.0
+    return x, cum
+
+
+def _check_tree(p: Partition) -> int:
+    """The depth of the tree reachable from the root; InvalidInput on a malformed tree."""
+    n = p.n_nodes
+    if n == 0:
+        raise InvalidInput("partition has no nodes")
+    seen = np.zeros(n, dtype=bool)
+    depth = 0
+    stack = [(0, 0)]
+    while stack:
+        nd, d = stack.pop()
+        if not 0 <= nd < n or seen[nd]:
+            raise InvalidInput(f"partition node {nd} is out of range or reached twice")
+        seen[nd] = True
+        fi = int(p.feature[nd])
+        if fi < 0:
+            c = int(p.cohort[nd])
+            if not 0 <= c < p.n_cohorts:
+                raise InvalidInput(f"leaf {nd} has cohort {c}; expected 0..{p.n_cohorts - 1}")
+            depth = max(depth, d)
+            continue
+        if fi >= len(p.features):
+            raise InvalidInput(f"node {nd} refers to feature {fi}; only {len(p.features)} exist")
+        f: FeatureSpec = p.features[fi]
+        if f.kind == "numeric" and not np.isfinite(p.threshold[nd]):
+            raise InvalidInput(f"numeric node {nd} on '{f.key}' has threshold {p.threshold[nd]}")
+        if f.kind not in ("numeric", "categorical"):
+            raise InvalidInput(f"feature '{f.key}' has unknown kind {f.kind!r}")
+        stack.extend(((int(p.left[nd]), d + 1), (int(p.right[nd]), d + 1)))
+    return depth
