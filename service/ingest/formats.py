@@ -38,6 +38,8 @@ CONTENT_TYPES: dict[str, str] = {
 
 _BOM = b"\xef\xbb\xbf"
 _CSV_BLOCK = 8 << 20  # bytes per parallel CSV block
+_CSV_RETRIES = 3  # single-column re-reads before reading every number column as text
+_CSV_CONVERSION = re.compile(r"In CSV column #(\d+): .*conversion error")
 _JSON_BLOCK = 4 << 20  # bytes per parallel NDJSON block; a single line must fit in one block
 _JSON_MIXED = re.compile(r"Column\(/([^)]*)\) changed from (\w+) to (\w+) in row (\d+)")
 
@@ -151,15 +153,26 @@ def _read_csv(
         )
 
     try:
-        try:
-            table = read(types, True)
-        except pa.ArrowInvalid as exc:
-            if "conversion error" not in str(exc):
-                raise
-            # a number column holds text somewhere: read numbers as text so that every offending
-            # row can be listed (columns.py checks text against a number pattern)
-            bad_rows.clear()
-            table = read({c: pa.string() for c in types}, True)
+        # a number column holding text fails the whole read; read that column again as text so
+        # that every offending row can be listed (columns.py checks text against a number
+        # pattern). One column at a time for the usual single culprit, then all at once.
+        attempt = 0
+        while True:
+            try:
+                table = read(types, True)
+                break
+            except pa.ArrowInvalid as exc:
+                m = _CSV_CONVERSION.match(str(exc))
+                if m is None or all(t == pa.string() for t in types.values()):
+                    raise
+                attempt += 1
+                bad_rows.clear()
+                k = int(m.group(1))
+                culprit = names[k] if k < len(names) else None
+                if attempt <= _CSV_RETRIES and culprit in types and types[culprit] != pa.string():
+                    types[culprit] = pa.string()
+                else:
+                    types = {c: pa.string() for c in types}
         if bad_rows:
             bad_rows.clear()  # read again on one thread: only then does Arrow know line numbers
             read({c: pa.string() for c in types}, False)

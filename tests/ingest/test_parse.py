@@ -327,8 +327,8 @@ def test_non_finite_and_non_numeric_metric_values_in_csv():
         b"d,control,1,x,1,-Infinity,1,1\n"
     )
     assert errors_of(body) == [
-        # a number column holding text is re-read as text, so values are shown as uploaded
-        err("minutes", "missing or non-finite value", [1, 2, 4], ["inf", "NaN", "-Infinity"]),
+        # non-finite numbers are shown in JSON-safe spelling ("-Infinity" was read as -inf)
+        err("minutes", "missing or non-finite value", [1, 2, 4], ["inf", "NaN", "-inf"]),
         err("mistakes", "expected numbers, got text", [3], ["many"]),
     ]
 
@@ -483,3 +483,36 @@ def test_fifty_thousand_rows_parse_and_late_problems_are_found(monkeypatch):
         err("unit_id", "duplicate unit id", [n], ["u000007"]),
         err("minutes", "expected numbers, got text", [n - 1], ["oops"]),
     ]
+
+
+def test_text_in_many_number_columns_of_a_csv_is_all_found():
+    # more culprit columns than single-column re-reads: the fallback reads all of them as text
+    cols = with_(
+        tenure_days=["1", "x", "2", "3", "4"],
+        completed=["1", "0", "y", "1", "0"],
+        minutes=["1", "2", "3", "z", "5"],
+        mistakes=["w", "2", "3", "4", "5"],
+        lessons=["1", "2", "3", "4", "v"],
+    )
+    got = errors_of(csv_body(cols))
+    assert [(e["column"], e["rows"], e["values"]) for e in got] == [
+        ("tenure_days", [2], ["x"]),
+        ("completed", [3], ["y"]),
+        ("minutes", [4], ["z"]),
+        ("mistakes", [1], ["w"]),
+        ("lessons", [5], ["v"]),
+    ]
+    assert {e["problem"] for e in got} == {"expected numbers, got text"}
+
+
+def test_a_column_named_twice_in_the_header():
+    body = csv_body(GOOD).replace(b'"minutes"', b'"lessons"', 1)
+    assert errors_of(body) == [
+        err("lessons", "column appears more than once in the header", [], [])
+    ]
+
+
+def test_invalid_utf8_in_csv_is_unreadable():
+    body = csv_body(GOOD).replace(b"beginner", b"beg\xff\xfener", 1)
+    with pytest.raises(InvalidInput, match="could not read the CSV upload: .*invalid UTF8"):
+        parse(body)
