@@ -9,6 +9,8 @@ closest (methods §1.3 [S]); several leaves then map to one cohort.
 
 from __future__ import annotations
 
+import heapq
+
 import numpy as np
 
 from service.stats.tree import Tree
@@ -80,37 +82,77 @@ def merge_small(
     group (fewest units) joins the neighbouring group with the closest effects, until every group
     has `min_units` of every arm on both halves or only one group is left."""
     L = tuples.shape[0]
-    group = np.arange(L)
-    gn_s, gn_e, gs = n_s.astype(np.float64), n_e.astype(np.float64), sums.copy()
+    adj = _neighbours(tuples)
+    gn_s, gn_e, gs = n_s.astype(np.float64), n_e.astype(np.float64), sums.astype(np.float64)
+    low = np.minimum(gn_s.min(axis=1), gn_e.min(axis=1))
+    size = gn_s.sum(axis=1) + gn_e.sum(axis=1)
+    owner = np.arange(L)  # the group each cell belongs to, kept up to date for merged groups
+    members: dict[int, list[int]] = {c: [c] for c in range(L)}
     alive = np.ones(L, dtype=bool)
-    while alive.sum() > 1:
-        low = np.minimum(gn_s.min(axis=1), gn_e.min(axis=1))
-        viol = np.flatnonzero(alive & (low < min_units))
-        if viol.size == 0:
-            break
-        size = gn_s.sum(axis=1) + gn_e.sum(axis=1)
-        g = int(viol[np.argmin(size[viol])])
-        members = tuples[group == g]
-        one_off = ((members[:, None, :] != tuples[None, :, :]).sum(axis=-1) == 1).any(axis=0)
-        cand = np.unique(group[one_off])
-        cand = cand[cand != g]
+    heap = [(float(size[c]), c) for c in range(L) if low[c] < min_units]
+    heapq.heapify(heap)
+    n_alive = L
+    while heap and n_alive > 1:
+        sz, g = heapq.heappop(heap)
+        if not alive[g] or sz != size[g] or low[g] >= min_units:
+            continue  # a stale entry
+        cand = np.array(sorted(adj[g]), dtype=np.int64)
         if cand.size == 0:
             cand = np.flatnonzero(alive & (np.arange(L) != g))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            mean = gs[cand] / gn_s[cand][..., None]
-            tau = mean[:, 1:] - mean[:, :1]
-            mg = gs[g] / gn_s[g][:, None]
-            tau_g = mg[1:] - mg[:1]
-            d = np.einsum("cjk,jk->c", (tau - tau_g) ** 2, weights)
-        d = np.where(np.isfinite(d), d, np.inf)
-        h = int(cand[np.argmin(d)]) if np.isfinite(d).any() else int(cand[np.argmax(size[cand])])
-        group[group == g] = h
+        h = _closest(g, cand, gn_s, gs, weights, size)
+        for x in adj[g]:
+            adj[x].discard(g)
+            if x != h:
+                adj[x].add(h)
+                adj[h].add(x)
+        adj[h].discard(g)
+        adj[g] = set()
+        owner[members[g]] = h
+        members[h] += members.pop(g)
         gn_s[h] += gn_s[g]
         gn_e[h] += gn_e[g]
         gs[h] += gs[g]
+        low[h] = min(gn_s[h].min(), gn_e[h].min())
+        size[h] += size[g]
         alive[g] = False
-    _, first = np.unique(group, return_index=True)
-    order = np.argsort(first)  # renumber by first cell
-    renum = np.empty(L, dtype=np.int64)
-    renum[np.unique(group)[order]] = np.arange(order.size)
-    return renum[group]
+        n_alive -= 1
+        if low[h] < min_units:
+            heapq.heappush(heap, (float(size[h]), h))
+    _, first, inv = np.unique(owner, return_index=True, return_inverse=True)
+    rank = np.empty(first.size, dtype=np.int64)
+    rank[np.argsort(first)] = np.arange(first.size)  # renumber groups by their first cell
+    return rank[inv]
+
+
+def _neighbours(tuples: np.ndarray) -> list[set[int]]:
+    """Cells that share all coordinates but one, as sets per cell."""
+    L, T = tuples.shape
+    adj: list[set[int]] = [set() for _ in range(L)]
+    for t in range(T):
+        key = np.delete(tuples, t, axis=1)
+        if key.shape[1] == 0:
+            key = np.zeros((L, 1), dtype=np.int64)
+        _, inv = np.unique(key, axis=0, return_inverse=True)
+        order = np.argsort(inv.ravel(), kind="stable")
+        bounds = np.flatnonzero(np.diff(inv.ravel()[order])) + 1
+        for bucket in np.split(order, bounds):
+            if bucket.size > 1:
+                b = set(bucket.tolist())
+                for c in bucket.tolist():
+                    adj[c] |= b - {c}
+    return adj
+
+
+def _closest(g, cand, gn_s, gs, weights, size) -> int:
+    """The candidate group whose standardized lifts are closest to group g's (weighted squared
+    distance); when no distance is defined, the largest candidate."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean = gs[cand] / gn_s[cand][..., None]
+        tau = mean[:, 1:] - mean[:, :1]
+        mg = gs[g] / gn_s[g][:, None]
+        tau_g = mg[1:] - mg[:1]
+        d = np.einsum("cjk,jk->c", (tau - tau_g) ** 2, weights)
+    d = np.where(np.isfinite(d), d, np.inf)
+    if np.isfinite(d).any():
+        return int(cand[np.argmin(d)])
+    return int(cand[np.argmax(size[cand])])
