@@ -154,6 +154,7 @@ class CompiledPlan:
         "_level_codes",
         "_missing_code",
         "_is_leaf",
+        "_children",
     )
 
     def __init__(
@@ -266,6 +267,7 @@ class CompiledPlan:
         dirs = np.full((n, missing + 1), -1, dtype=np.int8)  # 1 left, 0 right, -1 default
         for nd in range(n):
             if is_leaf[nd]:
+                dirs[nd] = 1  # a leaf "knows" every code and sends it to itself
                 continue
             f = p.features[int(feat[nd])]
             if f.kind == "numeric":
@@ -289,6 +291,12 @@ class CompiledPlan:
         s(self, "node_right", _frozen(np.where(is_leaf, self_idx, p.right).astype(np.intp)))
         s(self, "node_default_left", _frozen(np.asarray(p.default_left, dtype=bool).copy()))
         s(self, "node_cohort", _frozen(np.asarray(p.cohort, dtype=np.intp).copy()))
+        # children[2 * node + go_left]: right child at even, left child at odd positions
+        s(
+            self,
+            "_children",
+            _frozen(np.stack([self.node_right, self.node_left], axis=1).reshape(-1)),
+        )
 
     # ---- single lookup ---------------------------------------------------------------------------
     def assign(self, member_id: str, features: Mapping[str, Any]) -> Assignment:
@@ -449,23 +457,29 @@ class CompiledPlan:
         return xnum, xcat
 
     def _walk(self, xnum: np.ndarray, xcat: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-        """Cohort per member (n,) and the (F, n) mask of features whose default was taken."""
+        """Cohort per member (n,) and the (F, n) mask of features whose default was taken.
+
+        Leaves behave as categorical nodes that send every code "left" to themselves, so each of
+        the `depth` steps is the same few gathers for every member."""
         node = np.zeros(n, dtype=np.intp)
         used = np.zeros(xnum.shape, dtype=bool)
-        ar = np.arange(n)
+        ar = np.arange(n, dtype=np.intp)
+        xn_flat, xc_flat = xnum.reshape(-1), xcat.reshape(-1)
         feat, is_num, thr = self.node_feature, self.node_is_numeric, self.node_threshold
-        dirs, dleft, is_leaf = self.node_directions, self.node_default_left, self._is_leaf
+        dirs_flat, width = self.node_directions.reshape(-1), self.node_directions.shape[1]
+        dleft, child = self.node_default_left, self._children
         for _ in range(self.depth):
             f = feat[node]
-            xn = xnum[f, ar]
-            d = dirs[node, xcat[f, ar]]
+            cell = f * n + ar
+            xn = xn_flat.take(cell)
+            d = dirs_flat.take(node * width + xc_flat.take(cell))
             num = is_num[node]
             known = np.where(num, xn == xn, d >= 0)
             go_left = np.where(known, np.where(num, xn < thr[node], d == 1), dleft[node])
-            took_default = ~known & ~is_leaf[node]
-            if took_default.any():
-                used[f[took_default], ar[took_default]] = True
-            node = np.where(go_left, self.node_left[node], self.node_right[node])
+            if not known.all():
+                miss = ~known
+                used[f[miss], ar[miss]] = True
+            node = child.take(2 * node + go_left)
         return self.node_cohort[node], used
 
     def _materialise(

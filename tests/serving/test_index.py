@@ -24,6 +24,7 @@ from serving.serving_helpers import (
 from service.errors import InvalidInput
 from service.serving.index import Assignment, compile_plan
 from service.stats.partition import Partition
+from service.stats.table import FeatureSpec
 
 ROOT = Path(__file__).resolve().parents[2]
 ARMS = ("control", "short", "long")
@@ -379,3 +380,23 @@ def test_compiled_plan_is_immutable():
         "defaults_used": list(a.defaults_used),
     }
     assert isinstance(a, Assignment)
+
+
+def test_batch_equals_single_with_many_features():
+    # more than 56 features takes the wide defaults-pattern path in the batch materialisation
+    feats = tuple(FeatureSpec(f"x{i}", "numeric") for i in range(60))
+    rng = np.random.default_rng(12)
+    p = random_partition(rng, feats, depth=7, n_cohorts=5, p_split=1.0)
+    cp = _plan(p, rng.dirichlet(np.ones(3), size=5))
+    ids = [f"w-{i}" for i in range(1500)]
+    rows = [
+        {
+            f.key: float(v)
+            for f, v in zip(feats, rng.normal(30, 30, 60), strict=True)
+            if rng.random() > 0.3
+        }
+        for _ in ids
+    ]
+    single = [cp.assign(i, r) for i, r in zip(ids, rows, strict=True)]
+    assert cp.assign_batch(ids, rows) == single
+    assert len({a.defaults_used for a in single}) > 10
