@@ -56,3 +56,62 @@ def make_settings(db_url: str, **overrides: object) -> Settings:
     }
     base.update(overrides)
     return Settings(**base)  # type: ignore[arg-type]
+
+
+def wait_job(client, keys, job_url: str, timeout: float = 60.0) -> dict:  # type: ignore[no-untyped-def]
+    import time
+
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        job = client.get(job_url, headers=keys.h(keys.reader)).json()
+        if job["status"] in ("done", "failed"):
+            return job
+        time.sleep(0.05)
+    raise AssertionError(f"job {job_url} did not finish in {timeout} s")
+
+
+def scenario_model(
+    client, keys, *, n: int = 20000, seed: int = 1, params: dict | None = None
+) -> int:  # type: ignore[no-untyped-def]
+    """Declare the invented scenario, upload `n` learners and fit a causal tree; returns the model id."""
+    from service.demo.scenario import experiment_declaration, simulate, to_csv_bytes
+
+    decl = experiment_declaration()
+    r = client.post("/v1/experiments", json=decl, headers=keys.h(keys.analyst))
+    assert r.status_code in (201, 409), r.text
+    r = client.post(
+        f"/v1/experiments/{decl['key']}/readouts",
+        content=to_csv_bytes(simulate(n, seed=seed)),
+        headers={**keys.h(keys.analyst), "content-type": "text/csv"},
+    )
+    assert r.status_code in (200, 201), r.text
+    version = r.json()["version"]
+    body = {
+        "readout_version": version,
+        "method": "causal_tree",
+        "params": params or {"max_depth": 3, "min_units_per_arm": 100},
+    }
+    r = client.post(
+        f"/v1/experiments/{decl['key']}/models", json=body, headers=keys.h(keys.analyst)
+    )
+    assert r.status_code == 202, r.text
+    job = wait_job(client, keys, r.json()["job"])
+    assert job["status"] == "done", job
+    return int(r.json()["model_id"])
+
+
+def draft_plan(client, keys, model_id: int, plan: str = "lesson-length", **overrides) -> dict:  # type: ignore[no-untyped-def]
+    from service.demo.scenario import GUARDRAILS, SUCCESS
+
+    body = {
+        "model_id": model_id,
+        "success_metric": SUCCESS,
+        "guardrails": GUARDRAILS,
+        "method": "chance",
+        "draws": 20,
+        "holdout": {"share": 0.1},
+    }
+    body.update(overrides)
+    r = client.post(f"/v1/plans/{plan}/versions", json=body, headers=keys.h(keys.analyst))
+    assert r.status_code == 201, r.text
+    return r.json()

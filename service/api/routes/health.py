@@ -30,7 +30,9 @@ def readyz(services: ServicesDep) -> JSONResponse:
     checks: dict[str, bool] = {}
     checks["database"] = ping(services.db)
     checks["migrations"] = checks["database"] and is_current(services.db.engine)
-    checks["plans_loaded"] = bool(services.plans is not None and services.plans.loaded)
+    checks["plans_loaded"] = bool(
+        services.plans is not None and services.plans.last_refresh is not None
+    )
     ok = all(checks.values())
     return JSONResponse(
         {"status": "ready" if ok else "not ready", "checks": checks}, status_code=200 if ok else 503

@@ -1,3 +1,74 @@
-from fastapi import APIRouter
+"""The guardrail watch: upload post-launch rows, read the status, set automatic rollback."""
 
-router = APIRouter()
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter, Query, Request
+from pydantic import BaseModel, Field
+from starlette.concurrency import run_in_threadpool
+
+from service.api.body import UPLOAD_OPENAPI, read_limited
+from service.api.deps import AnalystDep, ApproverDep, ReaderDep, ServicesDep
+from service.usecases import watch as uc
+
+router = APIRouter(prefix="/v1/plans", tags=["watch"])
+
+
+class AutoRollbackIn(BaseModel):
+    enabled: bool
+    min_units_per_group: int = Field(
+        1000, ge=1, description="plan-exposed and holdout members needed before it may act"
+    )
+    horizon: int | None = Field(
+        None, ge=100, description="expected units per group; where the interval is tightest"
+    )
+    reason: str = Field(
+        min_length=1, max_length=5000, pattern=r"\S", description="why; recorded in the audit trail"
+    )
+
+
+@router.post(
+    "/{plan}/monitor",
+    summary="Upload post-launch rows (member_id, features, holdout, metrics)",
+    openapi_extra=UPLOAD_OPENAPI,
+)
+async def monitor(
+    plan: str,
+    request: Request,
+    actor: AnalystDep,
+    services: ServicesDep,
+    version: int | None = Query(None, description="default: the live version"),
+) -> dict[str, Any]:
+    body = await read_limited(request, services.settings.max_upload_bytes)
+    return await run_in_threadpool(
+        uc.upload,
+        services,
+        plan=plan,
+        body=body,
+        content_type=request.headers.get("content-type", ""),
+        actor=actor,
+        version=version,
+    )
+
+
+@router.get("/{plan}/watch", summary="Guardrail status and interval history of the watched version")
+def get_watch(
+    plan: str, _: ReaderDep, services: ServicesDep, version: int | None = None
+) -> dict[str, Any]:
+    return uc.get_watch(services, plan=plan, version=version)
+
+
+@router.post("/{plan}/auto-rollback", summary="Turn automatic rollback on or off (approver)")
+def auto_rollback(
+    plan: str, body: AutoRollbackIn, actor: ApproverDep, services: ServicesDep
+) -> dict[str, Any]:
+    return uc.set_auto_rollback(
+        services,
+        plan=plan,
+        enabled=body.enabled,
+        min_units_per_group=body.min_units_per_group,
+        horizon=body.horizon,
+        actor=actor,
+        reason=body.reason,
+    )

@@ -1,0 +1,681 @@
+"""Plan versions: drafting (optimize + impact report), review, activation, rollback, and the diff
+against the live version. Every transition commits with its audit entry; the serving index is
+swapped after the commit."""
+
+from __future__ import annotations
+
+import hashlib
+import threading
+from typing import Any
+
+import numpy as np
+
+from service.errors import Forbidden, InvalidInput, InvalidTransition, NotFound
+from service.optimize.problem import Guardrail, build_problem
+from service.optimize.report import impact_report
+from service.optimize.solve import Solution, solve
+from service.serving.columns import lookup_columns
+from service.serving.index import new_salt
+from service.stats.evaluation import evaluate_policy
+from service.stats.partition import Partition
+from service.stats.table import UnitTable
+from service.store import audit
+from service.store import experiments as exp_repo
+from service.store import jobs as job_repo
+from service.store import models as model_repo
+from service.store import plans as repo
+from service.store.audit import Actor, canonical_json
+from service.store.db import utcnow
+from service.store.tables import Job
+from service.usecases import jobs, live
+from service.usecases.context import Services
+from service.usecases.experiments import load_readout_table, specs_of
+from service.usecases.models import estimation_mask, moments_of
+
+INLINE_MAX_DRAWS = 1000  # larger impact reports run as a job
+ACTIVATABLE = ("approved", "superseded")
+
+
+# ---- loading what a plan is built from --------------------------------------------------------
+
+
+def _model_context(services: Services, model_id: int) -> dict[str, Any]:
+    with services.db.read() as s:
+        row = model_repo.get_model(session=s, model_id=model_id)
+        if row.status != "done":
+            raise InvalidInput(
+                f"cohort model {model_id} is {row.status}; a plan needs a fitted model",
+                errors=[{"field": "model_id", "problem": f"model is {row.status}"}],
+            )
+        exp = s.get(exp_repo.Experiment, row.experiment_id)
+        assert exp is not None
+        result, declaration, readout_id = row.result, exp.declaration, row.readout_id
+    table, _ = load_readout_table(services.db, readout_id=readout_id)
+    return {
+        "result": result,
+        "specs": specs_of(declaration),
+        "table": table,
+        "experiment": declaration["key"],
+        "partition": Partition.from_dict(result["partition"]),
+        "model_id": model_id,
+    }
+
+
+def table_columns(table: UnitTable) -> dict[str, list[Any]]:
+    """Feature columns as the lookup takes them."""
+    return lookup_columns(table.features, table.feature_values)
+
+
+def _live_allocation_on(services: Services, plan: str, ctx: dict[str, Any]) -> np.ndarray:
+    """The live version's arm mix re-expressed in this model's cohorts: per readout row the live
+    cohort's shares, averaged within each new cohort."""
+    compiled = live.load_compiled(services.db, plan)
+    if compiled is None:
+        raise InvalidInput(
+            f"baseline 'live' needs a live version of plan '{plan}'; it has none",
+            errors=[{"field": "baseline", "problem": "no live version"}],
+        )
+    table: UnitTable = ctx["table"]
+    live_cohort = np.array(
+        [a.cohort for a in compiled.assign_columns(list(table.unit_ids), table_columns(table))]
+    )
+    with services.db.read() as s:
+        row = repo.get_version(session=s, plan=plan, version=compiled.version)
+        live_matrix = np.array(row.allocation["matrix"])
+    if tuple(row.allocation["arms"]) != tuple(ctx["specs"].arm_keys):
+        raise InvalidInput(
+            "baseline 'live' needs the live version to use the same arms",
+            errors=[{"field": "baseline"}],
+        )
+    new_cohort, _ = ctx["partition"].route(table.feature_values, table.features)
+    c = ctx["partition"].n_cohorts
+    out = np.zeros((c, live_matrix.shape[1]))
+    np.add.at(out, new_cohort, live_matrix[live_cohort])
+    counts = np.bincount(new_cohort, minlength=c).astype(float)
+    out[counts > 0] /= counts[counts > 0, None]
+    out[counts == 0, 0] = 1.0
+    return out
+
+
+# ---- drafting ----------------------------------------------------------------------------------
+
+
+def _guardrails(body: dict[str, Any]) -> tuple[Guardrail, ...]:
+    return tuple(
+        Guardrail(
+            metric=g["metric"],
+            threshold=float(g["threshold"]),
+            unit=g.get("unit", "absolute"),
+            confidence=float(g.get("confidence", 0.95)),
+        )
+        for g in body.get("guardrails", [])
+    )
+
+
+def _holdout(body: dict[str, Any], arm_keys: tuple[str, ...]) -> dict[str, Any]:
+    h = {"share": 0.05, "arm": arm_keys[0], **(body.get("holdout") or {})}
+    if h["arm"] not in arm_keys:
+        raise InvalidInput(
+            f"holdout arm '{h['arm']}' is not an arm of the experiment {list(arm_keys)}",
+            errors=[{"field": "holdout.arm", "problem": "unknown arm"}],
+        )
+    return {"share": float(h["share"]), "arm": h["arm"]}
+
+
+def _evaluate(
+    ctx: dict[str, Any], services: Services, x: np.ndarray, baseline: np.ndarray, seed: int
+) -> dict[str, Any]:
+    """Held-out IPW and doubly robust estimates on the model's estimation rows (design §6)."""
+    table: UnitTable = ctx["table"]
+    mask = estimation_mask(services.db, ctx["result"], table.n)
+    est = table.take(mask)
+    cohort, _ = ctx["partition"].route(est.feature_values, est.features)
+    return evaluate_policy(
+        cohort=cohort,
+        arm=est.arm,
+        design_shares=est.design_shares,
+        values=est.component_matrix(),
+        components=est.component_names(),
+        metrics=est.metrics,
+        plan=x,
+        baseline=baseline,
+        seed=seed,
+    )
+
+
+def _allocation_view(x: np.ndarray, ctx: dict[str, Any], shares: np.ndarray) -> dict[str, Any]:
+    rules = ctx["partition"].cohort_rules()
+    arms = list(ctx["specs"].arm_keys)
+    return {
+        "arms": arms,
+        "matrix": np.round(x, 12).tolist(),
+        "cohorts": [
+            {
+                "id": c,
+                "rule": rules[c],
+                "share": float(shares[c]),
+                "arms": {a: float(round(x[c, j], 12)) for j, a in enumerate(arms)},
+            }
+            for c in range(x.shape[0])
+        ],
+    }
+
+
+def _solution_view(sol: Solution) -> dict[str, Any]:
+    return {
+        "objective": sol.objective,
+        "guardrails": sol.guardrail_values,
+        "fractional_cohorts": sol.fractional_cohorts,
+        "binding": sol.binding,
+        "iterations": sol.iterations,
+        "seconds": round(sol.seconds, 4),
+        "diagnostics": sol.diagnostics,
+    }
+
+
+def draft_version(
+    services: Services, *, plan: str, body: dict[str, Any], actor: Actor
+) -> dict[str, Any]:
+    ctx = _model_context(services, int(body["model_id"]))
+    specs = ctx["specs"]
+    result = ctx["result"]
+    moments = moments_of(result)
+    c = ctx["partition"].n_cohorts
+    shares = np.array([co["share"] for co in result["cohorts"]], dtype=np.float64)
+    if body.get("traffic_mix") is not None:
+        mix = np.asarray(body["traffic_mix"], dtype=np.float64)
+        if mix.shape != (c,) or (mix < 0).any() or abs(mix.sum() - 1) > 1e-6:
+            raise InvalidInput(
+                f"traffic_mix must list {c} non-negative cohort shares summing to 1",
+                errors=[{"field": "traffic_mix", "problem": f"expected {c} shares summing to 1"}],
+            )
+        shares = mix
+    guardrails = _guardrails(body)
+    baseline_kind = body.get("baseline", "control")
+    live_alloc = _live_allocation_on(services, plan, ctx) if baseline_kind == "live" else None
+    problem = build_problem(
+        shares=shares,
+        moments=moments,
+        metrics=specs.metrics,
+        success=body["success_metric"],
+        guardrails=guardrails,
+        baseline=baseline_kind,
+        live=live_alloc,
+    )
+    method, allocation, seed = (
+        body.get("method", "chance"),
+        body.get("allocation", "mixed"),
+        int(body.get("seed", 0)),
+    )
+    holdout = _holdout(body, specs.arm_keys)
+    sol = solve(problem, method, allocation, seed=seed, options=body.get("options") or {})
+    draws = int(body.get("draws", 200))
+    spec = {
+        k: body.get(k)
+        for k in (
+            "model_id",
+            "success_metric",
+            "method",
+            "allocation",
+            "baseline",
+            "traffic_mix",
+            "draws",
+            "seed",
+            "notes",
+            "options",
+        )
+    }
+    spec.update(
+        {
+            "guardrails": [g.__dict__ for g in guardrails],
+            "holdout": holdout,
+            "method": method,
+            "allocation": allocation,
+            "baseline": baseline_kind,
+            "draws": draws,
+            "seed": seed,
+            "experiment": ctx["experiment"],
+        }
+    )
+    if draws <= INLINE_MAX_DRAWS:
+        report = _full_report(services, ctx, problem, sol, method, allocation, draws, seed)
+        job_id = None
+    else:
+        report = {"status": "pending"}
+    alloc_view = _allocation_view(sol.allocation, ctx, shares)
+    with services.db.write() as s:
+        repo.ensure_pointer(session=s, plan=plan)
+        prev = repo.latest_version(session=s, plan=plan)
+        salt = prev.salt if (prev is not None and not body.get("new_salt")) else new_salt()
+        version = repo.next_version(session=s, plan=plan)
+        content = {"spec": spec, "allocation": alloc_view, "salt": salt}
+        row = repo.add_version(
+            session=s,
+            plan=plan,
+            version=version,
+            model_id=ctx["model_id"],
+            spec=spec,
+            allocation=alloc_view,
+            report={**report, "solution": _solution_view(sol)},
+            salt=salt,
+            content_hash=hashlib.sha256(canonical_json(content).encode()).hexdigest(),
+            author=actor.name,
+        )
+        if report.get("status") == "pending":
+            job = job_repo.create_job(
+                session=s, kind="report", payload={"plan": plan, "version": version}
+            )
+            job_id = job.id
+            row.report = {**row.report, "job": f"/v1/jobs/{job.id}"}
+        audit.append(
+            s,
+            actor=actor,
+            action="plan.draft",
+            entity="plan_version",
+            entity_id=f"{plan}/{version}",
+            payload={
+                "model_id": ctx["model_id"],
+                "method": method,
+                "allocation": allocation,
+                "content_hash": row.content_hash,
+                "objective": sol.objective,
+                "binding": sol.binding,
+            },
+            reason=body.get("notes"),
+        )
+    if job_id is not None:
+        jobs.notify(services)
+    return get_version(services, plan=plan, version=version)
+
+
+def _full_report(
+    services: Services,
+    ctx: dict[str, Any],
+    problem: Any,
+    sol: Solution,
+    method: str,
+    allocation: str,
+    draws: int,
+    seed: int,
+    progress: Any = None,
+) -> dict[str, Any]:
+    report = impact_report(problem, sol, draws=draws, seed=seed, progress=progress)
+    try:
+        held_out = _evaluate(ctx, services, sol.allocation, problem.baseline, seed)
+    except (
+        InvalidInput
+    ) as exc:  # e.g. an arm with no design share: say why instead of failing the draft
+        held_out = {"error": exc.detail}
+    return {
+        **report,
+        "status": "complete",
+        "held_out": held_out,
+        "method": method,
+        "allocation": allocation,
+    }
+
+
+@jobs.handler("report")
+def _run_report(services: Services, job: Job, progress: Any) -> None:
+    plan, version = job.payload["plan"], int(job.payload["version"])
+    with services.db.read() as s:
+        row = repo.get_version(session=s, plan=plan, version=version)
+        spec = dict(row.spec)
+        x = np.array(row.allocation["matrix"])
+    ctx = _model_context(services, int(spec["model_id"]))
+    shares = np.array(
+        spec["traffic_mix"]
+        if spec.get("traffic_mix")
+        else [co["share"] for co in ctx["result"]["cohorts"]]
+    )
+    live_alloc = _live_allocation_on(services, plan, ctx) if spec["baseline"] == "live" else None
+    problem = build_problem(
+        shares=shares,
+        moments=moments_of(ctx["result"]),
+        metrics=ctx["specs"].metrics,
+        success=spec["success_metric"],
+        guardrails=_guardrails(spec),
+        baseline=spec["baseline"],
+        live=live_alloc,
+    )
+    sol = solve(
+        problem,
+        spec["method"],
+        spec["allocation"],
+        seed=spec["seed"],
+        options=spec.get("options") or {},
+    )
+    if not np.allclose(sol.allocation, x, atol=1e-9):
+        raise RuntimeError(
+            "re-solving the stored problem gave a different allocation; the report was not attached"
+        )
+    report = _full_report(
+        services,
+        ctx,
+        problem,
+        sol,
+        spec["method"],
+        spec["allocation"],
+        spec["draws"],
+        spec["seed"],
+        progress,
+    )
+    with services.db.write() as s:
+        row = repo.get_version(session=s, plan=plan, version=version)
+        row.report = {**report, "solution": row.report.get("solution"), "job": f"/v1/jobs/{job.id}"}
+        audit.append(
+            s,
+            actor=Actor("report-job", "analyst"),
+            action="plan.report",
+            entity="plan_version",
+            entity_id=f"{plan}/{version}",
+            payload={"draws": spec["draws"], "job": job.id},
+        )
+        job_repo.finish(session=s, job_id=job.id)
+
+
+# ---- reading -----------------------------------------------------------------------------------
+
+_diff_cache: dict[tuple[str, int, int, str], dict[str, Any]] = {}
+_diff_lock = threading.Lock()
+
+
+def _diff_against_live(services: Services, row: Any, ptr: Any) -> dict[str, Any] | None:
+    """Share of the readout's members whose arm would change, per cohort of this version."""
+    if ptr is None or ptr.active_version is None:
+        return None
+    key = (row.plan, row.version, ptr.active_version, services.db.url)
+    with _diff_lock:
+        if key in _diff_cache:
+            return _diff_cache[key]
+    ctx = _model_context(services, row.model_id)
+    table: UnitTable = ctx["table"]
+    members, cols = list(table.unit_ids), table_columns(table)
+    mine = live.compile_version(row, ctx["partition"], revision=0).assign_columns(members, cols)
+    current = live.load_compiled(services.db, row.plan)
+    if current is None:
+        return None
+    theirs = current.assign_columns(members, cols)
+    changed = np.array([a.arm != b.arm for a, b in zip(mine, theirs, strict=True)])
+    cohort = np.array([a.cohort for a in mine])
+    c = ctx["partition"].n_cohorts
+    n_c = np.bincount(cohort, minlength=c)
+    ch_c = np.bincount(cohort, weights=changed, minlength=c)
+    rules = ctx["partition"].cohort_rules()
+    out = {
+        "live_version": ptr.active_version,
+        "members": int(table.n),
+        "share_changed": float(changed.mean()) if table.n else 0.0,
+        "weighted_by": "the readout's members (their features and ids)",
+        "cohorts": [
+            {
+                "id": i,
+                "rule": rules[i],
+                "members": int(n_c[i]),
+                "share_changed": float(ch_c[i] / n_c[i]) if n_c[i] else 0.0,
+            }
+            for i in range(c)
+        ],
+    }
+    with _diff_lock:
+        _diff_cache[key] = out
+    return out
+
+
+def version_view(row: Any, *, live_version: int | None) -> dict[str, Any]:
+    return {
+        "plan": row.plan,
+        "version": row.version,
+        "status": row.status,
+        "live": live_version == row.version,
+        "model_id": row.model_id,
+        "author": row.author,
+        "created_at": row.created_at,
+        "decided_by": row.decided_by,
+        "decided_at": row.decided_at,
+        "decision_reason": row.decision_reason,
+        "content_hash": row.content_hash,
+        "salt_fingerprint": hashlib.sha256(row.salt.encode()).hexdigest()[:12],
+        "spec": row.spec,
+        "allocation": row.allocation,
+        "report": row.report,
+    }
+
+
+def get_version(
+    services: Services, *, plan: str, version: int, with_diff: bool = True
+) -> dict[str, Any]:
+    with services.db.read() as s:
+        row = repo.get_version(session=s, plan=plan, version=version)
+        ptr = repo.pointer(session=s, plan=plan)
+        s.expunge_all()
+    view = version_view(row, live_version=ptr.active_version if ptr else None)
+    if with_diff:
+        view["diff"] = (
+            None
+            if (ptr is None or ptr.active_version in (None, version))
+            else _diff_against_live(services, row, ptr)
+        )
+    return view
+
+
+def get_plan(services: Services, *, plan: str) -> dict[str, Any]:
+    with services.db.read() as s:
+        ptr = repo.pointer(session=s, plan=plan)
+        if ptr is None:
+            raise NotFound(f"no plan '{plan}'")
+        versions = repo.list_versions(session=s, plan=plan)
+        acts = repo.activations(session=s, plan=plan)
+        return {
+            "plan": plan,
+            "live_version": ptr.active_version,
+            "revision": ptr.revision,
+            "auto_rollback": ptr.auto_rollback,
+            "versions": [
+                {
+                    "version": v.version,
+                    "status": v.status,
+                    "model_id": v.model_id,
+                    "author": v.author,
+                    "created_at": v.created_at,
+                    "method": v.spec.get("method"),
+                    "objective": (v.report.get("solution") or {}).get("objective"),
+                }
+                for v in versions
+            ],
+            "activations": [
+                {
+                    "version": a.version,
+                    "revision": a.revision,
+                    "kind": a.kind,
+                    "actor": a.actor,
+                    "reason": a.reason,
+                    "at": a.at,
+                }
+                for a in acts
+            ],
+        }
+
+
+def list_plans(services: Services) -> list[dict[str, Any]]:
+    with services.db.read() as s:
+        out = []
+        for p in repo.list_plans(session=s):
+            versions = repo.list_versions(session=s, plan=p.plan)
+            out.append(
+                {
+                    "plan": p.plan,
+                    "live_version": p.active_version,
+                    "revision": p.revision,
+                    "versions": len(versions),
+                    "latest": versions[-1].version if versions else None,
+                    "latest_status": versions[-1].status if versions else None,
+                }
+            )
+        return out
+
+
+# ---- lifecycle ---------------------------------------------------------------------------------
+
+
+def decide(
+    services: Services, *, plan: str, version: int, approve: bool, reason: str, actor: Actor
+) -> dict[str, Any]:
+    with services.db.write() as s:
+        row = repo.get_version(session=s, plan=plan, version=version)
+        if row.status != "draft":
+            raise InvalidTransition(
+                f"plan version {plan}/{version} is {row.status}; only a draft can be approved or rejected"
+            )
+        if approve and row.author == actor.name:
+            raise Forbidden(
+                f"'{actor.name}' drafted {plan}/{version}; another approver must approve it"
+            )
+        if approve and row.report.get("status") != "complete":
+            raise InvalidTransition(
+                f"plan version {plan}/{version} has no complete impact report yet"
+            )
+        row.status = "approved" if approve else "rejected"
+        row.decided_by, row.decided_at, row.decision_reason = actor.name, utcnow(), reason
+        audit.append(
+            s,
+            actor=actor,
+            action="plan.approve" if approve else "plan.reject",
+            entity="plan_version",
+            entity_id=f"{plan}/{version}",
+            payload={"content_hash": row.content_hash},
+            reason=reason,
+        )
+    return get_version(services, plan=plan, version=version, with_diff=False)
+
+
+def _switch(
+    s: Any,
+    *,
+    plan: str,
+    to_version: int,
+    expected_revision: int | None,
+    kind: str,
+    actor: Actor,
+    reason: str,
+    evidence: dict[str, Any] | None = None,
+) -> dict[str, Any]:
+    ptr = repo.pointer(session=s, plan=plan, lock=True)
+    if ptr is None:
+        raise NotFound(f"no plan '{plan}'")
+    target = repo.get_version(session=s, plan=plan, version=to_version)
+    if target.status not in ACTIVATABLE:
+        raise InvalidTransition(
+            f"plan version {plan}/{to_version} is {target.status}; only an approved version can go live"
+        )
+    previous = ptr.active_version
+    if previous == to_version:
+        raise InvalidTransition(f"plan version {plan}/{to_version} is already live")
+    revision = repo.move_pointer(
+        session=s, ptr=ptr, to_version=to_version, expected_revision=expected_revision
+    )
+    if previous is not None:
+        repo.get_version(session=s, plan=plan, version=previous).status = "superseded"
+    target.status = "active"
+    repo.add_activation(
+        session=s,
+        plan=plan,
+        version=to_version,
+        revision=revision,
+        kind=kind,
+        actor=actor.name,
+        reason=reason,
+    )
+    payload = {"from_version": previous, "to_version": to_version, "revision": revision}
+    if evidence:
+        payload["evidence"] = evidence
+    audit.append(
+        s,
+        actor=actor,
+        action=f"plan.{kind}",
+        entity="plan",
+        entity_id=plan,
+        payload=payload,
+        reason=reason,
+    )
+    return payload
+
+
+def activate(
+    services: Services,
+    *,
+    plan: str,
+    version: int,
+    reason: str,
+    expected_revision: int,
+    actor: Actor,
+) -> dict[str, Any]:
+    with services.db.write() as s:
+        out = _switch(
+            s,
+            plan=plan,
+            to_version=version,
+            expected_revision=expected_revision,
+            kind="activate",
+            actor=actor,
+            reason=reason,
+        )
+    live.refresh_plan(services, plan)
+    return out
+
+
+def rollback_target(s: Any, plan: str, current: int | None) -> int:
+    """The version that was live before the current one."""
+    acts = repo.activations(session=s, plan=plan)
+    for a in reversed(acts[:-1] if acts and acts[-1].version == current else acts):
+        if a.version != current:
+            return a.version
+    raise InvalidTransition(f"plan '{plan}' has no earlier live version to roll back to")
+
+
+def rollback_in(
+    s: Any,
+    *,
+    plan: str,
+    reason: str,
+    to_version: int | None,
+    actor: Actor,
+    expected_revision: int | None = None,
+    evidence: dict[str, Any] | None = None,
+) -> dict[str, Any]:
+    ptr = repo.pointer(session=s, plan=plan, lock=True)
+    if ptr is None:
+        raise NotFound(f"no plan '{plan}'")
+    target = to_version if to_version is not None else rollback_target(s, plan, ptr.active_version)
+    return _switch(
+        s,
+        plan=plan,
+        to_version=target,
+        expected_revision=expected_revision,
+        kind="rollback",
+        actor=actor,
+        reason=reason,
+        evidence=evidence,
+    )
+
+
+def rollback(
+    services: Services,
+    *,
+    plan: str,
+    reason: str,
+    to_version: int | None,
+    actor: Actor,
+    expected_revision: int | None = None,
+) -> dict[str, Any]:
+    with services.db.write() as s:
+        out = rollback_in(
+            s,
+            plan=plan,
+            reason=reason,
+            to_version=to_version,
+            actor=actor,
+            expected_revision=expected_revision,
+        )
+    live.refresh_plan(services, plan)
+    return out

@@ -1,0 +1,178 @@
+"""The guardrail watch through the HTTP API (issue 7): uploads accumulate, duplicates count once,
+holdout flags are checked against the lookup, and a confirmed harm rolls the plan back by itself."""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pytest
+from fastapi.testclient import TestClient
+from support import draft_plan, scenario_model
+
+from service.demo.postlaunch import post_launch_csv
+
+CSV = {"content-type": "text/csv"}
+
+
+@pytest.fixture
+def live_plan(client: TestClient, keys):  # type: ignore[no-untyped-def]
+    """Versions 1 and 2 approved; 1 went live first, then 2 (so a rollback has somewhere to go)."""
+    model = scenario_model(client, keys)
+    draft_plan(client, keys, model, holdout={"share": 0.2})
+    draft_plan(client, keys, model, holdout={"share": 0.2}, method="deterministic")
+    h = keys.h(keys.approver)
+    for v in (1, 2):
+        client.post(
+            f"/v1/plans/lesson-length/versions/{v}/approve", json={"reason": "ok"}, headers=h
+        )
+    client.post(
+        "/v1/plans/lesson-length/activate",
+        json={"version": 1, "reason": "go", "expected_revision": 0},
+        headers=h,
+    )
+    client.post(
+        "/v1/plans/lesson-length/activate",
+        json={"version": 2, "reason": "v2", "expected_revision": 1},
+        headers=h,
+    )
+    return client.app.state.services  # type: ignore[attr-defined]
+
+
+def _harm_beginners(fv, arm):  # type: ignore[no-untyped-def]
+    # after launch, every non-control arm raises abandonment of beginners by 15 points (invented)
+    return {"abandon_rate": np.where((fv["level"] == 0) & (arm != 0), 0.15, 0.0)}
+
+
+def test_uploads_accumulate_and_duplicates_count_once(client: TestClient, keys, live_plan) -> None:  # type: ignore[no-untyped-def]
+    compiled = live_plan.plans.get("lesson-length")
+    first = post_launch_csv(compiled, 3000, seed=5)
+    r = client.post(
+        "/v1/plans/lesson-length/monitor", content=first, headers={**keys.h(keys.analyst), **CSV}
+    )
+    assert r.status_code == 200, r.text
+    out = r.json()
+    assert (
+        out["version"] == 2
+        and out["rows"] == 3000
+        and out["members"] == 3000
+        and out["replaced"] == 0
+    )
+    assert out["holdout_flag_disagreement"] == 0.0
+    assert {m["metric"] for m in out["metrics"]} == {
+        "active_days",
+        "abandon_rate",
+        "cancelled",
+        "support_contacts",
+    }
+    # the same members again (later rows win) plus new ones
+    again = post_launch_csv(compiled, 4000, seed=6)
+    out2 = client.post(
+        "/v1/plans/lesson-length/monitor", content=again, headers={**keys.h(keys.analyst), **CSV}
+    ).json()
+    assert out2["replaced"] == 3000 and out2["members"] == 4000
+    watch = client.get("/v1/plans/lesson-length/watch", headers=keys.h(keys.reader)).json()
+    assert watch["uploads"] == 2
+    abandon = next(m for m in watch["metrics"] if m["metric"] == "abandon_rate")
+    assert [h["upload"] for h in abandon["history"]] == [1, 2] and abandon["status"] in (
+        "holding",
+        "inconclusive",
+    )
+    audit = client.get(
+        "/v1/audit",
+        params={"entity": "plan_version", "entity_id": "lesson-length/2"},
+        headers=keys.h(keys.reader),
+    ).json()
+    assert [e["action"] for e in audit["entries"]].count("watch.upload") == 2
+
+
+def test_holdout_flags_that_disagree_with_the_lookup_are_reported(
+    client: TestClient, keys, live_plan
+) -> None:  # type: ignore[no-untyped-def]
+    compiled = live_plan.plans.get("lesson-length")
+    t = pacsv.read_csv(io.BytesIO(post_launch_csv(compiled, 2000, seed=7)))
+    flipped = t.set_column(
+        t.schema.get_field_index("holdout"), "holdout", pa.array(np.zeros(2000, dtype=bool))
+    )
+    buf = io.BytesIO()
+    pacsv.write_csv(flipped, buf)
+    out = client.post(
+        "/v1/plans/lesson-length/monitor",
+        content=buf.getvalue(),
+        headers={**keys.h(keys.analyst), **CSV},
+    ).json()
+    true_holdout = np.asarray(t.column("holdout")).mean()
+    assert out["holdout_flag_disagreement"] == pytest.approx(true_holdout, abs=1e-12)
+
+
+def test_bad_monitor_upload_is_422_and_stores_nothing(client: TestClient, keys, live_plan) -> None:  # type: ignore[no-untyped-def]
+    compiled = live_plan.plans.get("lesson-length")
+    body = post_launch_csv(compiled, 100, seed=8).replace(b"member_id", b"learner", 1)
+    r = client.post(
+        "/v1/plans/lesson-length/monitor", content=body, headers={**keys.h(keys.analyst), **CSV}
+    )
+    assert r.status_code == 422 and "member_id" in r.text
+    assert (
+        client.get("/v1/plans/lesson-length/watch", headers=keys.h(keys.reader)).json()["uploads"]
+        == 0
+    )
+
+
+def test_confirmed_harm_rolls_back_once_with_evidence(client: TestClient, keys, live_plan) -> None:  # type: ignore[no-untyped-def]
+    r = client.post(
+        "/v1/plans/lesson-length/auto-rollback",
+        json={"enabled": True, "min_units_per_group": 500, "reason": "protect"},
+        headers=keys.h(keys.approver),
+    )
+    assert r.status_code == 200
+    compiled = live_plan.plans.get("lesson-length")
+    assert compiled.version == 2
+    rolled = []
+    for batch in range(8):
+        body = post_launch_csv(
+            compiled, 4000, seed=100 + batch, harm=_harm_beginners, id_prefix=f"b{batch}-"
+        )
+        out = client.post(
+            "/v1/plans/lesson-length/monitor",
+            params={"version": 2},
+            content=body,
+            headers={**keys.h(keys.analyst), **CSV},
+        ).json()
+        if out["rolled_back"]:
+            rolled.append(batch)
+    assert len(rolled) >= 1
+    plan = client.get("/v1/plans/lesson-length", headers=keys.h(keys.reader)).json()
+    assert plan["live_version"] == 1
+    assert [a["kind"] for a in plan["activations"]].count(
+        "rollback"
+    ) == 1  # exactly once, although later uploads still breach
+    entries = client.get(
+        "/v1/audit",
+        params={"entity": "plan", "actor": "guardrail-watch"},
+        headers=keys.h(keys.reader),
+    ).json()["entries"]
+    assert len(entries) == 1
+    ev = entries[0]["payload"]["evidence"]
+    assert (
+        ev["guardrail"] == "abandon_rate"
+        and ev["interval"][0] > ev["threshold"]
+        and ev["units"]["plan"] >= 500
+    )
+    a = client.post(
+        "/v1/plans/lesson-length/assign",
+        json={"member_id": "x", "features": {}},
+        headers=keys.h(keys.reader),
+    ).json()
+    assert a["plan_version"] == 1
+    assert client.get("/v1/audit/verify", headers=keys.h(keys.admin)).json()["intact"] is True
+
+
+def test_auto_rollback_needs_an_approver(client: TestClient, keys, live_plan) -> None:  # type: ignore[no-untyped-def]
+    r = client.post(
+        "/v1/plans/lesson-length/auto-rollback",
+        json={"enabled": True, "reason": "x" * 5},
+        headers=keys.h(keys.analyst),
+    )
+    assert r.status_code == 403
