@@ -219,7 +219,7 @@ def test_switching_under_load_never_fails_and_reaches_the_second_process(
 
     def live_during(sent: float, got: float, version: int, lag: float) -> bool:
         # the version was live at some instant in [sent - lag, got]; a switch's instant lies in [t0, t1]
-        for i, (t0, t1, v) in enumerate(timeline):
+        for i, (t0, _t1, v) in enumerate(timeline):
             end = timeline[i + 1][1] if i + 1 < len(timeline) else float("inf")
             if v == version and t0 <= got and end >= sent - lag:
                 return True
