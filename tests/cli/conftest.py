@@ -1,0 +1,69 @@
+"""A live server for the command-line tests: the real app under uvicorn in a thread on a free port
+(the same helper the demo uses), and keys of every role made directly in its database."""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+
+import pytest
+from support import make_settings
+
+from service.cli.main import main
+
+
+@dataclass
+class Live:
+    url: str
+    keys: dict[str, str]  # role name -> secret (approver2 is a second approver)
+    services: object
+
+
+@pytest.fixture
+def live(db_url: str) -> Iterator[Live]:
+    from service.app import create_app
+    from service.demo.run import serve_in_thread
+    from service.usecases.auth import SYSTEM, create_key
+
+    app = create_app(make_settings(db_url))
+    running = serve_in_thread(app, port=0)
+    services = app.state.services
+    keys = {}
+    for name, role in [
+        ("admin", "admin"),
+        ("approver", "approver"),
+        ("approver2", "approver"),
+        ("analyst", "analyst"),
+        ("reader", "reader"),
+    ]:
+        _, keys[name] = create_key(services.db, name=f"cli-{name}", role=role, actor=SYSTEM)
+    services.keys.refresh()
+    try:
+        yield Live(running.url, keys, services)
+    finally:
+        running.stop()
+
+
+@dataclass
+class Result:
+    code: int
+    out: str
+    err: str
+
+    def json(self) -> object:
+        return json.loads(self.out)
+
+
+@pytest.fixture
+def cli(live: Live, capsys: pytest.CaptureFixture[str]) -> Callable[..., Result]:
+    """cli('analyst', 'experiment', 'show', 'x', '--json') runs `apportion` as that key."""
+
+    def run(role: str | None, *argv: str) -> Result:
+        capsys.readouterr()
+        auth = ["--url", live.url] + (["--key", live.keys[role]] if role else [])
+        code = main([*argv, *auth])
+        cap = capsys.readouterr()
+        return Result(code, cap.out, cap.err)
+
+    return run

@@ -1,0 +1,235 @@
+"""The analyst command line against a live server: experiments, readouts, models, jobs, audit,
+keys; `--json` output parses, refusals print the problem's title and detail and exit non-zero."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+from support import EXPERIMENT, rows_csv
+
+from service.cli.client import format_table, parse_pairs
+from service.cli.main import main
+
+
+@pytest.fixture
+def files(tmp_path: Path) -> dict[str, Path]:
+    decl = tmp_path / "experiment.json"
+    decl.write_text(json.dumps(EXPERIMENT))
+    csv = tmp_path / "rows.csv"
+    csv.write_bytes(rows_csv(600, seed=3))
+    return {"decl": decl, "csv": csv, "dir": tmp_path}
+
+
+def _with_readout(cli, files) -> None:  # type: ignore[no-untyped-def]
+    assert cli("analyst", "experiment", "create", str(files["decl"])).code == 0
+    assert cli("analyst", "readout", "upload", "checkout-copy", str(files["csv"])).code == 0
+
+
+def test_experiment_create_and_show(cli, files) -> None:  # type: ignore[no-untyped-def]
+    r = cli("analyst", "experiment", "create", str(files["decl"]))
+    assert r.code == 0, r.err
+    assert "declared experiment 'checkout-copy': 3 arms (control control), 3 metrics" in r.out
+    shown = cli("reader", "experiment", "show", "checkout-copy", "--json")
+    assert shown.code == 0
+    body = shown.json()
+    assert body["key"] == "checkout-copy" and body["readouts"] == []
+    assert [a["key"] for a in body["arms"]] == ["control", "bold", "calm"]
+
+
+def test_duplicate_experiment_prints_problem_and_fails(cli, files) -> None:  # type: ignore[no-untyped-def]
+    assert cli("analyst", "experiment", "create", str(files["decl"])).code == 0
+    r = cli("analyst", "experiment", "create", str(files["decl"]))
+    assert r.code == 1 and r.out == ""
+    assert "(HTTP 409)" in r.err.splitlines()[0]
+    assert "already exists" in r.err
+
+
+def test_invalid_declaration_lists_field_errors(cli, files) -> None:  # type: ignore[no-untyped-def]
+    bad = files["dir"] / "bad.json"
+    bad.write_text(json.dumps({**EXPERIMENT, "control": "nope"}))
+    r = cli("analyst", "experiment", "create", str(bad))
+    assert r.code == 1
+    assert "(HTTP 422)" in r.err and "  - control" in r.err
+
+
+def test_reader_may_not_declare(cli, files) -> None:  # type: ignore[no-untyped-def]
+    r = cli("reader", "experiment", "create", str(files["decl"]))
+    assert r.code == 1 and "(HTTP 403)" in r.err
+
+
+def test_unreadable_local_file_exits_2(cli, files) -> None:  # type: ignore[no-untyped-def]
+    r = cli("analyst", "experiment", "create", str(files["dir"] / "missing.json"))
+    assert r.code == 2 and "cannot read" in r.err
+    notjson = files["dir"] / "x.json"
+    notjson.write_text("{nope")
+    r = cli("analyst", "experiment", "create", str(notjson))
+    assert r.code == 2 and "is not valid JSON" in r.err
+
+
+def test_readout_upload_twice_and_show(cli, files) -> None:  # type: ignore[no-untyped-def]
+    assert cli("analyst", "experiment", "create", str(files["decl"])).code == 0
+    first = cli("analyst", "readout", "upload", "checkout-copy", str(files["csv"]), "--json")
+    assert first.code == 0
+    body = first.json()
+    assert body["created"] is True and body["version"] == 1 and body["n_rows"] == 600
+    again = cli("analyst", "readout", "upload", "checkout-copy", str(files["csv"]))
+    assert again.code == 0 and "uploaded before" in again.out
+    shown = cli("reader", "readout", "show", "checkout-copy", "1")
+    lines = shown.out.splitlines()
+    header = next(line for line in lines if line.startswith("arm "))
+    assert header.split() == ["arm", "n", "spend", "refund", "abandon_rate"]
+    counts = {a["arm"]: a["n"] for a in body["arms"]}
+    control_row = next(line for line in lines if line.startswith("control "))
+    assert control_row.split()[1] == str(counts["control"])
+
+
+def test_readout_unknown_extension_needs_content_type(cli, files) -> None:  # type: ignore[no-untyped-def]
+    assert cli("analyst", "experiment", "create", str(files["decl"])).code == 0
+    odd = files["dir"] / "rows.txt"
+    odd.write_bytes(files["csv"].read_bytes())
+    r = cli("analyst", "readout", "upload", "checkout-copy", str(odd))
+    assert r.code == 2 and "--content-type" in r.err
+    ok = cli(
+        "analyst", "readout", "upload", "checkout-copy", str(odd), "--content-type", "text/csv"
+    )
+    assert ok.code == 0, ok.err
+
+
+def test_readout_bad_rows_show_problem(cli, files) -> None:  # type: ignore[no-untyped-def]
+    assert cli("analyst", "experiment", "create", str(files["decl"])).code == 0
+    bad = files["dir"] / "bad.csv"
+    bad.write_text(
+        "unit_id,arm,age_days,plan,spend,refund,abandoned,started\nu1,zzz,1,free,1,0,0,1\n"
+    )
+    r = cli("analyst", "readout", "upload", "checkout-copy", str(bad))
+    assert r.code == 1 and "(HTTP 422)" in r.err and "zzz" in r.err
+
+
+def test_model_fit_waits_with_progress_and_shows(cli, files) -> None:  # type: ignore[no-untyped-def]
+    _with_readout(cli, files)
+    r = cli(
+        "analyst",
+        "model",
+        "fit",
+        "checkout-copy",
+        "--readout",
+        "1",
+        "--method",
+        "segments",
+        "--param",
+        'features=["plan"]',
+    )
+    assert r.code == 0, r.err
+    assert "fitting model 1" in r.err and "100% done" in r.err  # the bar on stderr
+    assert "status      done" in r.out and "plan in {free}" in r.out
+    body = cli("reader", "model", "show", "1", "--json").json()
+    assert body["status"] == "done" and body["method"] == "segments"
+    assert len(body["cohorts"]) == 2  # one cohort per level of 'plan' (free, pro)
+    e = body["cohorts"][0]["estimates"]["spend"]["bold"]
+    row = next(line for line in r.out.splitlines() if line.split()[:2] == ["0", "bold"])
+    assert f"{e['effect']:+.4f} ± {e['effect_se'] * 1.96:.4f}" in row
+
+
+def test_model_fit_no_wait_then_job_show(cli, files, live) -> None:  # type: ignore[no-untyped-def]
+    _with_readout(cli, files)
+    r = cli("analyst", "model", "fit", "checkout-copy", "--readout", "1", "--method", "global",
+            "--no-wait", "--json")  # fmt: skip
+    assert r.code == 0
+    started = r.json()
+    assert started["model_id"] == 1 and started["job"] == f"/v1/jobs/{started['job_id']}"
+    from service.cli.client import Api, wait_for_job
+
+    with Api(live.url, live.keys["reader"]) as api:
+        assert wait_for_job(api, started["job_id"])["status"] == "done"
+    job = cli("reader", "job", "show", started["job_id"], "--json").json()
+    assert job["status"] == "done" and job["progress"] == 1.0
+
+
+def test_model_fit_bad_parameter_is_refused(cli, files) -> None:  # type: ignore[no-untyped-def]
+    _with_readout(cli, files)
+    r = cli("analyst", "model", "fit", "checkout-copy", "--readout", "1", "--param", "max_depth=99")
+    assert r.code == 1 and "(HTTP 422)" in r.err and "max_depth" in r.err
+    r = cli("analyst", "model", "fit", "checkout-copy", "--readout", "1", "--param", "novalue")
+    assert r.code == 2 and "name=value" in r.err
+
+
+def test_audit_show_and_check(cli, files) -> None:  # type: ignore[no-untyped-def]
+    _with_readout(cli, files)
+    entries = cli("reader", "audit", "show", "--json").json()
+    actions = [e["action"] for e in entries]
+    assert "experiment.declare" in actions and "readout.upload" in actions
+    only = cli("reader", "audit", "show", "--entity", "readout", "--json").json()
+    assert only and {e["entity"] for e in only} == {"readout"}
+    table = cli("reader", "audit", "show", "--entity", "readout")
+    assert "readout:checkout-copy/1" in table.out and "cli-analyst (analyst)" in table.out
+    ok = cli("admin", "audit", "check", "--json")
+    assert ok.code == 0 and ok.json()["intact"] is True
+    assert ok.json()["entries"] == len(entries)
+    denied = cli("analyst", "audit", "check")
+    assert denied.code == 1 and "(HTTP 403)" in denied.err
+
+
+def test_audit_check_reports_a_broken_chain(cli, files, live) -> None:  # type: ignore[no-untyped-def]
+    from sqlalchemy import update
+
+    from service.store.tables import AuditEntry
+
+    _with_readout(cli, files)
+    with live.services.db.write() as s:  # type: ignore[attr-defined]
+        s.execute(update(AuditEntry).where(AuditEntry.id == 2).values(reason="tampered"))
+    r = cli("admin", "audit", "check")
+    assert r.code == 1 and "BROKEN at entry 2" in r.out
+
+
+def test_audit_show_follows_pages(cli, files) -> None:  # type: ignore[no-untyped-def]
+    _with_readout(cli, files)
+    one_page = cli("reader", "audit", "show", "--limit", "1", "--json").json()
+    every = cli("reader", "audit", "show", "--limit", "1", "--all", "--json").json()
+    assert len(one_page) == 1 and len(every) >= 2
+    assert [e["id"] for e in every] == sorted(e["id"] for e in every)
+
+
+def test_keys_issue_through_the_api(cli) -> None:  # type: ignore[no-untyped-def]
+    r = cli("admin", "keys", "issue", "--name", "new-reader", "--role", "reader")
+    assert r.code == 0 and "the secret is shown once" in r.err
+    secret = r.out.strip().splitlines()[-1]
+    assert cli(None, "audit", "show", "--key", secret, "--json").code == 0
+    denied = cli("analyst", "keys", "issue", "--name", "x", "--role", "admin")
+    assert denied.code == 1 and "(HTTP 403)" in denied.err
+
+
+def test_environment_gives_url_and_key(live, files, monkeypatch, capsys) -> None:  # type: ignore[no-untyped-def]
+    monkeypatch.setenv("APPORTION_URL", live.url)
+    monkeypatch.setenv("APPORTION_KEY", live.keys["analyst"])
+    assert main(["experiment", "create", str(files["decl"]), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["key"] == "checkout-copy"
+    monkeypatch.setenv("APPORTION_KEY", "wrong")
+    assert main(["experiment", "show", "checkout-copy"]) == 1
+    assert "(HTTP 401)" in capsys.readouterr().err
+
+
+def test_unreachable_server_exits_2(capsys) -> None:  # type: ignore[no-untyped-def]
+    from service.demo.run import bind_socket
+
+    sock = bind_socket(port=0)  # a port nobody listens on once closed
+    port = sock.getsockname()[1]
+    sock.close()
+    code = main(
+        ["plan", "list", "--url", f"http://127.0.0.1:{port}", "--key", "k", "--timeout", "2"]
+    )
+    assert code == 2 and "cannot reach" in capsys.readouterr().err
+
+
+def test_format_table_aligns_columns() -> None:
+    out = format_table([["a", 1.5, None], ["longer", 12, "x"]], ["name", "n", "note"]).splitlines()
+    assert out[0] == "name      n  note"  # numbers right-aligned under a right-aligned header
+    assert out[1] == "------  ---  ----"
+    assert out[2] == "a       1.5"
+    assert out[3] == "longer   12  x"
+
+
+def test_parse_pairs_types() -> None:
+    got = parse_pairs(["level=beginner", "tenure_days=40", "x=null", 'code="10"', "a=b=c"], "--f")
+    assert got == {"level": "beginner", "tenure_days": 40, "x": None, "code": "10", "a": "b=c"}
