@@ -98,7 +98,7 @@ def metric_rows(version: dict[str, Any], metrics: dict[str, dict[str, Any]]) -> 
     report = version.get("report") or {}
     entries = _entries(report)
     solved = {
-        g.get("metric"): g
+        g.get("metric") or g.get("guardrail"): g
         for g in ((report.get("solution") or {}).get("guardrails") or [])
         if isinstance(g, dict)
     }

@@ -1,0 +1,107 @@
+"""A real server for browser tests and the screenshot script: uvicorn in a background thread on a
+free 127.0.0.1 port, keys for every role, and the scenario plan drafted through the HTTP API.
+
+Chromium comes from Debian's `chromium` package at /usr/bin/chromium (never a browser download);
+`launch_chromium` points Playwright at it."""
+
+from __future__ import annotations
+
+import socket
+import threading
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import httpx
+
+CHROMIUM = Path("/usr/bin/chromium")
+CHROMIUM_ARGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+]
+SKIP_REASON = (
+    f"{CHROMIUM} is absent: install Debian's chromium package (apt-get install chromium) "
+    "to run the review-page browser tests"
+)
+
+
+@dataclass
+class Keys:
+    admin: str
+    approver: str
+    approver2: str
+    analyst: str
+    reader: str
+
+    @staticmethod
+    def h(secret: str) -> dict[str, str]:
+        return {"Authorization": f"Bearer {secret}"}
+
+
+@dataclass
+class Live:
+    base: str
+    client: httpx.Client
+    keys: Keys
+    services: Any
+
+
+@contextmanager
+def live_server(db_url: str) -> Iterator[Live]:
+    """Start the app on a free port; yield when it answers /healthz; stop it on exit."""
+    import uvicorn
+    from support import make_settings
+
+    from service.app import create_app
+    from service.usecases.auth import SYSTEM, create_key
+
+    app = create_app(make_settings(db_url))
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.bind(("127.0.0.1", 0))
+    port = sock.getsockname()[1]
+    config = uvicorn.Config(app, log_level="warning", access_log=False, ws="none", lifespan="on")
+    server = uvicorn.Server(config)
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    base = f"http://127.0.0.1:{port}"
+    deadline = time.monotonic() + 30
+    while not server.started:
+        if time.monotonic() > deadline or not thread.is_alive():
+            raise RuntimeError("the test server did not start")
+        time.sleep(0.02)
+    services = app.state.services
+    made = {}
+    for role in ("admin", "approver", "approver2", "analyst", "reader"):
+        _, made[role] = create_key(
+            services.db, name=f"t-{role}", role=role.rstrip("2"), actor=SYSTEM
+        )
+    services.keys.refresh()
+    client = httpx.Client(base_url=base, timeout=60)
+    try:
+        yield Live(base=base, client=client, keys=Keys(**made), services=services)
+    finally:
+        client.close()
+        server.should_exit = True
+        thread.join(timeout=10)
+        sock.close()
+
+
+def build_plan(live: Live, *, n: int = 40000) -> tuple[int, dict[str, Any]]:
+    """The scenario's causal-tree model and a first draft of plan lesson-length: (model id, version)."""
+    from support import draft_plan, scenario_model
+
+    model_id = scenario_model(live.client, live.keys, n=n, seed=1)
+    return model_id, draft_plan(live.client, live.keys, model_id)
+
+
+def launch_chromium(playwright: Any) -> Any:
+    return playwright.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)

@@ -1,0 +1,70 @@
+"""The /ui routes without a browser: the shell is public and data-free, fragments need a reader key,
+the static files come from the app itself, and every answer carries the strict CSP."""
+
+from __future__ import annotations
+
+import xml.etree.ElementTree as ET
+
+import pytest
+from fastapi.testclient import TestClient
+from support import draft_plan, scenario_model
+
+
+@pytest.fixture
+def drafted(client: TestClient, keys) -> dict:  # type: ignore[no-untyped-def]
+    return draft_plan(client, keys, scenario_model(client, keys, n=8000))
+
+
+def test_shell_needs_no_key_and_allows_only_this_origin(client: TestClient) -> None:
+    r = client.get("/ui/plans/lesson-length/versions/1")
+    assert r.status_code == 200 and r.headers["content-type"].startswith("text/html")
+    csp = r.headers["content-security-policy"]
+    assert "default-src 'none'" in csp and "script-src 'self'" in csp and "style-src 'self'" in csp
+    assert 'data-fragment="/ui/fragments/plans/lesson-length/versions/1"' in r.text
+    assert client.get("/ui", follow_redirects=False).headers["location"] == "/ui/"
+
+
+def test_fragment_without_a_key_is_401_problem_json(client: TestClient) -> None:
+    r = client.get("/ui/fragments/plans/lesson-length/versions/1")
+    assert r.status_code == 401
+    assert r.headers["content-type"].startswith("application/problem+json")
+
+
+def test_fragment_with_a_reader_key_shows_the_plan(client: TestClient, keys, drafted: dict) -> None:  # type: ignore[no-untyped-def]
+    r = client.get("/ui/fragments/plans/lesson-length/versions/1", headers=keys.h(keys.reader))
+    assert r.status_code == 200, r.text
+    root = ET.fromstring(r.text)  # well-formed: stdlib XML parser
+    rules = ["".join(td.itertext()) for td in root.iter("td") if td.get("class") == "rule"]
+    assert rules == [c["rule"] for c in drafted["allocation"]["cohorts"]]
+    guard = [d.get("data-metric") for d in root.iter("div") if d.get("data-role") == "guardrail"]
+    assert guard == [g["metric"] for g in drafted["spec"]["guardrails"]]
+    assert root.get("data-role") == "reader"
+
+
+def test_unknown_version_is_404(client: TestClient, keys, drafted: dict) -> None:  # type: ignore[no-untyped-def]
+    r = client.get("/ui/fragments/plans/lesson-length/versions/99", headers=keys.h(keys.reader))
+    assert r.status_code == 404
+
+
+def test_index_fragment_lists_plans(client: TestClient, keys, drafted: dict) -> None:  # type: ignore[no-untyped-def]
+    r = client.get("/ui/fragments/plans", headers=keys.h(keys.reader))
+    assert r.status_code == 200
+    assert 'href="/ui/plans/lesson-length/versions/1"' in r.text
+
+
+@pytest.mark.parametrize(
+    ("name", "ctype"), [("review.css", "text/css"), ("review.js", "text/javascript")]
+)
+def test_static_files_are_served_by_the_app(client: TestClient, name: str, ctype: str) -> None:
+    r = client.get(f"/ui/static/{name}")
+    assert (
+        r.status_code == 200
+        and r.headers["content-type"].startswith(ctype)
+        and len(r.content) > 500
+    )
+    assert "http://" not in r.text and "https://" not in r.text  # nothing from another origin
+
+
+def test_only_known_static_files_are_served(client: TestClient) -> None:
+    assert client.get("/ui/static/..%2Fpages.py").status_code == 404
+    assert client.get("/ui/static/other.js").status_code == 404
