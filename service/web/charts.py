@@ -250,7 +250,7 @@ def share_bar(
     segments: Sequence[tuple[str, float]],
     width: int = 420,
     height: int = 26,
-    min_label_px: float = 74,
+    min_label_px: float = 34,
 ) -> str:
     """A stacked bar of arm shares (each in [0, 1], summing to 1). A segment wide enough carries
     'arm 62%'; every segment is also listed in the SVG title and in the page's text beside it."""

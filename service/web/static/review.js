@@ -27,13 +27,18 @@
   function load() {
     var k = key();
     forget.hidden = !k;
+    keyform.classList.toggle("signed-in", !!k);
     if (!k) { whoami.textContent = "no key"; return; }
     fetch(main.dataset.fragment, { headers: { "Authorization": "Bearer " + k }, cache: "no-store",
                                    credentials: "omit" })
       .then(function (r) { return r.text().then(function (t) { return { r: r, t: t }; }); })
       .then(function (x) {
         if (!x.r.ok) {
-          if (x.r.status === 401) { sessionStorage.removeItem(STORE); forget.hidden = true; }
+          if (x.r.status === 401) {
+            sessionStorage.removeItem(STORE);
+            forget.hidden = true;
+            keyform.classList.remove("signed-in");
+          }
           whoami.textContent = "";
           showError(problemText(x.r.status, x.t));
           return;
