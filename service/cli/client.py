@@ -357,7 +357,7 @@ def fmt_num(x: float | None, digits: int = 4) -> str:
 
 def fmt_arms(arms: dict[str, float]) -> str:
     """{'ten_min': 0.6, 'adaptive': 0.4, 'five_min': 0} -> 'ten_min 60%, adaptive 40%'."""
-    parts = [(a, s) for a, s in arms.items() if s > 5e-4]
+    parts = [(a, s) for a, s in arms.items() if s >= 0.005]  # below half a per cent: noise
     parts.sort(key=lambda p: -p[1])
     return ", ".join(a if s > 0.9995 else f"{a} {s:.0%}" for a, s in parts)
 

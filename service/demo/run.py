@@ -33,6 +33,7 @@ import numpy as np
 
 from service.cli.client import (
     Api,
+    ApiError,
     ProgressBar,
     finish_report,
     fmt_arms,
@@ -205,7 +206,7 @@ def run_demo(
     var = Path(var_dir)
     var.mkdir(parents=True, exist_ok=True)
     stamp = datetime.now(UTC).strftime("%Y%m%d-%H%M%S")
-    db_path = var / f"demo-{stamp}-{os.getpid()}.db"
+    db_path = (var / f"demo-{stamp}-{os.getpid()}.db").resolve()
     out.write(
         f"Apportion demo on the invented lesson-length scenario ({learners:,} learners).\n"
         f"Store: a fresh SQLite file {db_path} (each run makes a new one; delete {var}/ to clean "
@@ -463,9 +464,17 @@ def main(argv: list[str] | None = None) -> int:
     )
     p.add_argument("--json-out", default=None, help="also write the report as JSON to this file")
     args = p.parse_args(argv)
-    report = run_demo(
-        learners=args.learners, seed=args.seed, port=args.port, draws=args.draws, serve=args.serve
-    )
+    try:
+        report = run_demo(
+            learners=args.learners,
+            seed=args.seed,
+            port=args.port,
+            draws=args.draws,
+            serve=args.serve,
+        )
+    except ApiError as exc:  # the server refused a step: say which and why, like the CLI does
+        print(f"demo failed: {exc.title} (HTTP {exc.status}): {exc.detail}", file=sys.stderr)
+        return 1
     if args.json_out:
         Path(args.json_out).write_text(json.dumps(report, indent=2, default=str))
     return 0

@@ -1,0 +1,183 @@
+"""Plan commands against a live server: draft, show, approve, reject, activate (reading the
+revision first, or a stale one given), roll back, assign one member or a batch."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from service.demo import scenario as sc
+
+PLAN = "lesson-length"
+
+
+@pytest.fixture
+def model(cli, tmp_path: Path) -> int:  # type: ignore[no-untyped-def]
+    """A fitted `segments` model (one cohort per level) on 6,000 simulated learners."""
+    decl = tmp_path / "experiment.json"
+    decl.write_text(json.dumps(sc.experiment_declaration()))
+    rows = tmp_path / "rows.csv"
+    rows.write_bytes(sc.to_csv_bytes(sc.simulate(6000, seed=5)))
+    assert cli("analyst", "experiment", "create", str(decl)).code == 0
+    assert cli("analyst", "readout", "upload", sc.EXPERIMENT_KEY, str(rows)).code == 0
+    r = cli("analyst", "model", "fit", sc.EXPERIMENT_KEY, "--readout", "1", "--method", "segments",
+            "--param", 'features=["level"]', "--json")  # fmt: skip
+    assert r.code == 0, r.err
+    return int(r.json()["id"])  # type: ignore[index]
+
+
+@pytest.fixture
+def spec(tmp_path: Path) -> Path:
+    path = tmp_path / "spec.json"
+    path.write_text(
+        json.dumps(
+            {
+                "success_metric": sc.SUCCESS,
+                "guardrails": sc.GUARDRAILS,
+                "method": "deterministic",
+                "draws": 20,
+                "holdout": {"share": 0.05},
+            }
+        )
+    )
+    return path
+
+
+def _draft(cli, model: int, spec: Path, *extra: str, role: str = "analyst") -> dict:  # type: ignore[no-untyped-def]
+    r = cli(
+        role, "plan", "draft", PLAN, "--model", str(model), "--spec", str(spec), "--json", *extra
+    )
+    assert r.code == 0, r.err
+    return r.json()
+
+
+def test_draft_and_show(cli, model, spec) -> None:  # type: ignore[no-untyped-def]
+    v = _draft(cli, model, spec, "--holdout-share", "0.1", "--notes", "first")
+    assert v["version"] == 1 and v["status"] == "draft"
+    assert v["spec"]["holdout"]["share"] == 0.1 and v["spec"]["notes"] == "first"
+    assert v["spec"]["method"] == "deterministic"  # from the file, not overridden
+    cohorts = v["allocation"]["cohorts"]
+    assert len(cohorts) == 3
+    shown = cli("reader", "plan", "show", PLAN, "--version", "1")
+    assert shown.code == 0
+    assert "plan version    lesson-length/1" in shown.out
+    for c in cohorts:  # every cohort's rule is printed on its own row, after its id and share
+        row = next(line for line in shown.out.splitlines() if line.rstrip().endswith(c["rule"]))
+        assert row.split()[:2] == [str(c["id"]), f"{c['share']:.1%}"]
+    overview = cli("reader", "plan", "show", PLAN, "--json").json()
+    assert overview["live_version"] is None and overview["revision"] == 0
+    assert [x["version"] for x in overview["versions"]] == [1]
+
+
+def test_draft_needs_a_model(cli, spec) -> None:  # type: ignore[no-untyped-def]
+    r = cli("analyst", "plan", "draft", PLAN, "--spec", str(spec))
+    assert r.code == 2 and "--model" in r.err
+
+
+def test_draft_of_unknown_model_prints_problem(cli, spec) -> None:  # type: ignore[no-untyped-def]
+    r = cli("analyst", "plan", "draft", PLAN, "--model", "999", "--spec", str(spec))
+    assert r.code == 1 and "(HTTP 404)" in r.err and "999" in r.err
+
+
+def test_author_may_not_approve_own_draft(cli, model, spec) -> None:  # type: ignore[no-untyped-def]
+    _draft(cli, model, spec, role="approver")
+    r = cli("approver", "plan", "approve", PLAN, "1", "--reason", "looks fine")
+    assert r.code == 1 and "(HTTP 403)" in r.err and "another approver" in r.err
+    ok = cli("approver2", "plan", "approve", PLAN, "1", "--reason", "looks fine")
+    assert ok.code == 0 and "is approved (by cli-approver2)" in ok.out
+
+
+def test_reject_then_approve_is_refused(cli, model, spec) -> None:  # type: ignore[no-untyped-def]
+    _draft(cli, model, spec)
+    r = cli("approver", "plan", "reject", PLAN, "1", "--reason", "holdout too small", "--json")
+    assert r.code == 0 and r.json()["status"] == "rejected"
+    again = cli("approver", "plan", "approve", PLAN, "1", "--reason", "changed my mind")
+    assert again.code == 1 and "is rejected" in again.err
+
+
+def test_activate_reads_revision_and_stale_revision_is_409(cli, model, spec) -> None:  # type: ignore[no-untyped-def]
+    _draft(cli, model, spec)
+    _draft(cli, model, spec, "--method", "chance")
+    for v in ("1", "2"):
+        assert cli("approver", "plan", "approve", PLAN, v, "--reason", "reviewed").code == 0
+    r = cli("approver", "plan", "activate", PLAN, "1", "--reason", "launch")
+    assert r.code == 0, r.err
+    assert r.out.strip() == "activated lesson-length: version none -> 1 (revision 1)"
+    stale = cli("approver", "plan", "activate", PLAN, "2", "--reason", "x" * 5,
+                "--expected-revision", "0")  # fmt: skip
+    assert stale.code == 1 and "(HTTP 409)" in stale.err
+    fresh = cli("approver", "plan", "activate", PLAN, "2", "--reason", "next",
+                "--expected-revision", "1", "--json")  # fmt: skip
+    assert fresh.code == 0 and fresh.json() == {"from_version": 1, "to_version": 2, "revision": 2}
+    listed = cli("reader", "plan", "list", "--json").json()
+    assert listed == [
+        {"plan": PLAN, "live_version": 2, "revision": 2, "versions": 2, "latest": 2,
+         "latest_status": "active"}
+    ]  # fmt: skip
+
+
+def test_rollback_to_previous_and_named(cli, model, spec) -> None:  # type: ignore[no-untyped-def]
+    for method in ("deterministic", "chance", "deterministic"):
+        _draft(cli, model, spec, "--method", method)
+    for v in ("1", "2", "3"):
+        assert cli("approver", "plan", "approve", PLAN, v, "--reason", "reviewed").code == 0
+        assert cli("approver", "plan", "activate", PLAN, v, "--reason", "go").code == 0
+    back = cli("approver", "plan", "rollback", PLAN, "--reason", "guardrail alarm", "--json")
+    assert back.code == 0 and back.json() == {"from_version": 3, "to_version": 2, "revision": 4}
+    named = cli("approver", "plan", "rollback", PLAN, "--reason", "further back", "--to", "1")
+    assert named.code == 0 and named.out.strip() == (
+        "rolled back lesson-length: version 2 -> 1 (revision 5)"
+    )
+    shown = cli("reader", "plan", "show", PLAN)
+    rows = [line.split() for line in shown.out.splitlines()]
+    activations = [t[:3] for t in rows if len(t) > 2 and t[1] in ("activate", "rollback")]
+    assert activations == [["1", "activate", "1"], ["2", "activate", "2"], ["3", "activate", "3"],
+                           ["4", "rollback", "2"], ["5", "rollback", "1"]]  # fmt: skip
+    denied = cli("analyst", "plan", "rollback", PLAN, "--reason", "not mine")
+    assert denied.code == 1 and "(HTTP 403)" in denied.err
+
+
+def test_assign_one_and_batch(cli, model, spec, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    missing = cli("reader", "assign", PLAN, "m1", "--feature", "level=beginner")
+    assert missing.code == 1 and "(HTTP 404)" in missing.err and "no live version" in missing.err
+    v = _draft(cli, model, spec, "--holdout-share", "0")
+    assert cli("approver", "plan", "approve", PLAN, "1", "--reason", "ok!").code == 0
+    assert cli("approver", "plan", "activate", PLAN, "1", "--reason", "go").code == 0
+    r = cli("reader", "assign", PLAN, "m1", "--feature", "level=advanced",
+            "--feature", "tenure_days=40", "--json")  # fmt: skip
+    assert r.code == 0, r.err
+    a = r.json()
+    advanced = next(c for c in v["allocation"]["cohorts"] if "advanced" in c["rule"])
+    assert a["cohort"] == advanced["id"] and a["plan_version"] == 1 and a["holdout"] is False
+    assert advanced["arms"][a["arm"]] > 0  # an arm the cohort's allocation gives
+    assert (
+        cli(
+            "reader",
+            "assign",
+            PLAN,
+            "m1",
+            "--feature",
+            "level=advanced",
+            "--feature",
+            "tenure_days=40",
+            "--json",
+        ).json()
+        == a
+    )  # fmt: skip  (same member, same arm)
+    bad = cli("reader", "assign", PLAN, "m1", "--feature", "level=5")  # a number, not a level
+    assert bad.code == 1 and "(HTTP 422)" in bad.err and "level" in bad.err
+    batch = tmp_path / "members.json"
+    batch.write_text(json.dumps([{"member_id": f"m{i}", "features": {"level": "beginner"}}
+                                 for i in range(4)]))  # fmt: skip
+    many = cli("reader", "assign", PLAN, "--batch", str(batch), "--json")
+    got = many.json()["assignments"]
+    assert (
+        many.code == 0
+        and len(got) == 4
+        and got[1]
+        == cli("reader", "assign", PLAN, "m1", "--feature", "level=beginner", "--json").json()
+    )
+    table = cli("reader", "assign", PLAN, "--batch", str(batch))
+    assert [line.split()[0] for line in table.out.splitlines()[2:]] == ["m0", "m1", "m2", "m3"]
