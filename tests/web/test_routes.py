@@ -68,3 +68,45 @@ def test_static_files_are_served_by_the_app(client: TestClient, name: str, ctype
 def test_only_known_static_files_are_served(client: TestClient) -> None:
     assert client.get("/ui/static/..%2Fpages.py").status_code == 404
     assert client.get("/ui/static/other.js").status_code == 404
+
+
+def test_live_version_page_draws_the_guardrail_watch(
+    client: TestClient, keys, drafted: dict
+) -> None:  # type: ignore[no-untyped-def]
+    from service.demo.postlaunch import post_launch_csv
+
+    h = keys.h(keys.approver)
+    assert (
+        client.post(
+            "/v1/plans/lesson-length/versions/1/approve", json={"reason": "fine"}, headers=h
+        ).status_code
+        == 200
+    )
+    r = client.post(
+        "/v1/plans/lesson-length/activate",
+        json={"version": 1, "reason": "go", "expected_revision": 0},
+        headers=h,
+    )
+    assert r.status_code == 200, r.text
+    compiled = client.app.state.services.plans.get("lesson-length")  # type: ignore[attr-defined]
+    for seed in (5, 6):
+        r = client.post(
+            "/v1/plans/lesson-length/monitor",
+            content=post_launch_csv(compiled, 2000, seed=seed, id_prefix=f"s{seed}-"),
+            headers={**keys.h(keys.analyst), "content-type": "text/csv"},
+        )
+        assert r.status_code == 200, r.text
+    r = client.get("/ui/fragments/plans/lesson-length/versions/1", headers=keys.h(keys.reader))
+    root = ET.fromstring(r.text)
+    (watch,) = [s for s in root.iter("section") if s.get("id") == "watch"]
+    blocks = [d for d in watch.iter("div") if d.get("data-metric")]
+    assert [b.get("data-metric") for b in blocks] == [
+        g["metric"] for g in drafted["spec"]["guardrails"]
+    ]
+    for b in blocks:
+        bars = [
+            el
+            for el in b.iter("{http://www.w3.org/2000/svg}line")
+            if el.get("class") == "watch-interval"
+        ]
+        assert len(bars) == 2  # one interval per upload
