@@ -34,7 +34,8 @@ class ConeResult:
 def constraint_scale(lin: Linear) -> np.ndarray:
     """(K,) the scale of each guardrail used for relative tolerances: its allowed harm, or for a
     zero threshold the largest harm any plan could do."""
-    reach = np.einsum("c,kc->k", lin.p, np.abs(np.where(lin.avail, lin.G, 0.0)).max(axis=2))
+    centred = lin.G - (lin.b * lin.G).sum(axis=2, keepdims=True)
+    reach = np.einsum("c,kc->k", lin.p, np.abs(np.where(lin.avail, centred, 0.0)).max(axis=2))
     return np.where(lin.rhs > 0, lin.rhs, np.maximum(reach, 1e-12))
 
 
