@@ -369,63 +369,32 @@ def _kv(pairs: Iterable[tuple[str, Any]]) -> str:
 
 
 def report_metric_rows(version: dict[str, Any]) -> list[dict[str, Any]]:
-    """The impact report as one row per metric (the success metric first, then the guardrails):
-    metric, role, projected (bias-corrected when the report has it), low, high, threshold (the
-    allowed absolute change), holds (probability). Missing keys stay None."""
-    report = version.get("report") or {}
-    spec = version.get("spec") or {}
-    entries = report.get("metrics")
-    if isinstance(entries, dict):
-        entries = [{"metric": k, **v} for k, v in entries.items()]
-    if not isinstance(entries, list):
-        entries = []
-        if isinstance(report.get("success"), dict):
-            entries.append({"metric": spec.get("success_metric"), **report["success"]})
-        g = report.get("guardrails")
-        if isinstance(g, dict):
-            g = [{"metric": k, **v} for k, v in g.items()]
-        entries.extend(x for x in g or [] if isinstance(x, dict))
-    success = spec.get("success_metric")
-    guard = {g["metric"] for g in spec.get("guardrails") or []}
-    rows = []
-    for e in entries:
-        metric = e.get("metric") or e.get("key")
-        lo, hi = _interval(e)
-        rows.append(
-            {
-                "metric": metric,
-                "role": e.get("role")
-                or (
-                    "success" if metric == success else "guardrail" if metric in guard else "other"
-                ),
-                "projected": _first(e, "corrected_lift", "lift_corrected", "corrected", "lift"),
-                "naive": _first(e, "lift", "naive_lift", "projected_lift"),
-                "low": lo,
-                "high": hi,
-                "threshold": _first(e, "threshold_absolute", "limit", "allowed", "threshold"),
-                "holds": _first(e, "prob_holds", "probability_holds", "p_holds", "holds"),
-            }
-        )
-    rows.sort(key=lambda r: (r["role"] != "success", str(r["metric"])))
+    """The impact report (service/optimize/report.py) as one row per metric, the success metric
+    first: metric, role, lift (point estimate), projected (corrected for the optimizer's curse),
+    low/high (its interval), threshold and unit (guardrails; lifts are in the threshold's unit, so
+    a relative guardrail's lifts are per cent of the baseline), holds (probability)."""
+    entries = (version.get("report") or {}).get("metrics") or []
+    rows = [
+        {
+            "metric": e.get("metric"),
+            "role": e.get("role"),
+            "lift": e.get("lift"),
+            "projected": e.get("corrected_lift"),
+            "low": (e.get("interval") or [None, None])[0],
+            "high": (e.get("interval") or [None, None])[1],
+            "threshold": e.get("threshold"),
+            "unit": e.get("unit") or "absolute",
+            "holds": e.get("probability_holds"),
+        }
+        for e in entries
+        if isinstance(e, dict)
+    ]
+    rows.sort(key=lambda r: r["role"] != "success")
     return rows
 
 
-def _first(d: dict[str, Any], *keys: str) -> Any:
-    for k in keys:
-        v = d.get(k)
-        if isinstance(v, int | float) and not isinstance(v, bool):
-            return float(v)
-    return None
-
-
-def _interval(e: dict[str, Any]) -> tuple[float | None, float | None]:
-    for k in ("interval", "ci", "corrected_interval"):
-        v = e.get(k)
-        if isinstance(v, list | tuple) and len(v) == 2:
-            return v[0], v[1]
-        if isinstance(v, dict):
-            return _first(v, "low", "lo", "lower"), _first(v, "high", "hi", "upper")
-    return _first(e, "low", "lower", "ci_low"), _first(e, "high", "upper", "ci_high")
+def _unit_label(unit: str) -> str:
+    return "rel%" if unit == "relative" else "abs"
 
 
 def render_version(v: dict[str, Any]) -> str:
@@ -455,11 +424,15 @@ def render_version(v: dict[str, Any]) -> str:
     if rows:
         parts += [
             "",
+            "impact against the baseline (projected = corrected for the optimizer's curse; unit"
+            " abs = the metric's own units, rel% = per cent of the baseline's value):",
             format_table(
                 [
                     [
                         r["metric"],
                         r["role"],
+                        _unit_label(r["unit"]),
+                        fmt_num(r["lift"]),
                         fmt_num(r["projected"]),
                         f"[{fmt_num(r['low'])}, {fmt_num(r['high'])}]",
                         fmt_num(r["threshold"]),
@@ -467,9 +440,12 @@ def render_version(v: dict[str, Any]) -> str:
                     ]
                     for r in rows
                 ],
-                ["metric", "role", "projected lift", "interval", "allowed", "P(holds)"],
+                ["metric", "role", "unit", "lift", "projected", "interval", "allowed", "P(holds)"],
             ),
         ]
+    held = (v.get("report") or {}).get("held_out")
+    if isinstance(held, dict) and held.get("error"):
+        parts.append(f"held-out evaluation: {held['error']}")
     diff = v.get("diff")
     if diff:
         parts += [

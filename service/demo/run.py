@@ -150,26 +150,36 @@ def plan_probabilities(
 def truth_table(
     version: dict[str, Any], model: dict[str, Any], n: int, seed: int
 ) -> dict[str, Any]:
-    """Projected (the version's report) against true lifts, on a fresh population of n learners."""
+    """Projected (the version's report) against true lifts, on a fresh population of n learners.
+    Every lift is in its guardrail's threshold unit, as the report gives it: absolute, or per cent
+    of the baseline's true value for a relative guardrail (support_contacts)."""
     _, fv = sc.simulate_features(n, seed + 1)
     plan_true = sc.true_lifts(fv, plan_probabilities(version, model, fv))
     oracle = sc.oracle_plan(fv)
     projected = {r["metric"]: r for r in report_metric_rows(version)}
+    units = {sc.SUCCESS: "absolute"} | {g["metric"]: g["unit"] for g in sc.GUARDRAILS}
+    allowed = {g["metric"]: float(g["threshold"]) for g in sc.GUARDRAILS}
+
+    def scaled(metric: str, lift: float) -> float:
+        rel = units[metric] == "relative"
+        return 100.0 * lift / oracle["baseline"][metric] if rel else lift
+
     rows = []
     for metric in [sc.SUCCESS] + [g["metric"] for g in sc.GUARDRAILS]:
         p = projected.get(metric, {})
-        limit = oracle["limits"].get(metric)
+        limit = oracle["limits"].get(metric)  # absolute
         rows.append(
             {
                 "metric": metric,
                 "role": "success" if metric == sc.SUCCESS else "guardrail",
-                "allowed": limit,
+                "unit": units[metric],
+                "allowed": allowed.get(metric),
                 "projected": p.get("projected"),
                 "low": p.get("low"),
                 "high": p.get("high"),
-                "plan_true": plan_true[metric],
-                "oracle_true": oracle["lifts"][metric],
-                "best_single_true": oracle["best_single_lifts"][metric],
+                "plan_true": scaled(metric, plan_true[metric]),
+                "oracle_true": scaled(metric, oracle["lifts"][metric]),
+                "best_single_true": scaled(metric, oracle["best_single_lifts"][metric]),
                 "plan_holds": None if limit is None else plan_true[metric] <= limit + 1e-12,
             }
         )
@@ -376,8 +386,10 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
         + "\n\n"
     )
     w(
-        "Lifts against everyone on five_min (absolute; 'allowed' is each guardrail's limit;"
-        " true = the scenario's effect functions on a fresh population):\n"
+        "Lifts against everyone on five_min, in each guardrail's unit (abs, or rel% = per cent of"
+        " the baseline's value; 'allowed' is its limit;"
+        " projected = the impact report, corrected for the optimizer's curse, with its 95 %"
+        " interval; true = the scenario's effect functions on a fresh population):\n"
     )
     best = r["best_single_arm"]
     w(
@@ -386,6 +398,7 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
                 [
                     x["metric"],
                     x["role"],
+                    "rel%" if x["unit"] == "relative" else "abs",
                     fmt_num(x["allowed"]),
                     fmt_num(x["projected"]),
                     f"[{fmt_num(x['low'])}, {fmt_num(x['high'])}]",
@@ -399,6 +412,7 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
             [
                 "metric",
                 "role",
+                "unit",
                 "allowed",
                 "projected",
                 "interval",

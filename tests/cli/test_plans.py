@@ -66,6 +66,14 @@ def test_draft_and_show(cli, model, spec) -> None:  # type: ignore[no-untyped-de
     for c in cohorts:  # every cohort's rule is printed on its own row, after its id and share
         row = next(line for line in shown.out.splitlines() if line.rstrip().endswith(c["rule"]))
         assert row.split()[:2] == [str(c["id"]), f"{c['share']:.1%}"]
+    report = {m["metric"]: m for m in v["report"]["metrics"]}
+    for metric, m in report.items():  # the impact table: lift, corrected lift, interval, limit
+        t = next(line for line in shown.out.splitlines() if line.startswith(metric + " ")).split()
+        assert t[1] == m["role"] and t[3] == f"{m['lift']:+.4f}"
+        assert t[4] == f"{m['corrected_lift']:+.4f}"
+        assert t[5:7] == [f"[{m['interval'][0]:+.4f},", f"{m['interval'][1]:+.4f}]"]
+    t = next(x for x in shown.out.splitlines() if x.startswith("support_contacts ")).split()
+    assert t[2] == "rel%"  # a relative guardrail: its lifts are per cent of the baseline
     overview = cli("reader", "plan", "show", PLAN, "--json").json()
     assert overview["live_version"] is None and overview["revision"] == 0
     assert [x["version"] for x in overview["versions"]] == [1]
