@@ -188,10 +188,13 @@ def interval_chart(
             f'<line x1="{_n(x)}" y1="{_n(y_bar - 9)}" x2="{_n(x)}" y2="{_n(y_bar + 9)}" '
             f'stroke="{ACCENT}" stroke-width="2"/>'
         )
+    # interval ends written outside the bar, unless that would leave the chart
     parts.append(
-        _text(xl, y_bar + 22, fmt(lower), anchor="end" if xu - xl > 60 else "end", size=11)
+        _text(xl, y_bar + 22, fmt(lower), anchor="start" if xl - left < 64 else "end", size=11)
     )
-    parts.append(_text(xu, y_bar + 22, fmt(upper), anchor="start", size=11))
+    parts.append(
+        _text(xu, y_bar + 22, fmt(upper), anchor="end" if right - xu < 64 else "start", size=11)
+    )
     xe = sx(estimate)
     parts.append(
         f'<circle cx="{_n(xe)}" cy="{_n(y_bar)}" r="6" fill="{INK}" stroke="#ffffff" '

@@ -13,7 +13,15 @@ from html import escape
 from typing import Any
 
 from service.web import charts
-from service.web.report_view import MetricRow, comparison_rows, display, metric_rows
+from service.web.report_view import (
+    PROB_TOL,
+    MetricRow,
+    comparison_rows,
+    display,
+    metric_rows,
+    scale,
+    scaled_fmt,
+)
 
 ROLE_RANK = {"reader": 0, "analyst": 1, "approver": 2, "admin": 3}
 STATUS_TEXT = {
@@ -178,12 +186,8 @@ def _summary(v: dict[str, Any], plan: dict[str, Any], rows: list[MetricRow]) -> 
     guard = [r for r in rows if r.role == "guardrail"]
     verdict = ""
     if guard:
-        held = sum(
-            1
-            for r in guard
-            if r.p_holds is not None and r.confidence is not None and r.p_holds >= r.confidence
-        )
-        known = sum(1 for r in guard if r.p_holds is not None)
+        held = sum(1 for r in guard if r.meets)
+        known = sum(1 for r in guard if r.meets is not None)
         if known:
             verdict = (
                 f'<p class="verdict">{held} of {len(guard)} guardrails hold with at least the required '
@@ -203,7 +207,7 @@ def _summary(v: dict[str, Any], plan: dict[str, Any], rows: list[MetricRow]) -> 
 
 
 def _metric_block(v: dict[str, Any], r: MetricRow) -> str:
-    fmt, unit = display(r.kind)
+    fmt, unit = display(r.kind, r.unit)
     better = "higher is better" if r.direction == "higher" else "lower is better"
     head = f'<h3>{e(r.metric)} <span class="muted">({e(r.kind)}, {better})</span></h3>'
     if r.estimate is None or r.lower is None or r.upper is None:
@@ -214,13 +218,13 @@ def _metric_block(v: dict[str, Any], r: MetricRow) -> str:
     uid = f"{r.role[0]}-{''.join(ch if ch.isalnum() else '_' for ch in r.metric)}"
     svg = charts.interval_chart(
         uid=uid,
-        estimate=_scale(r.estimate, r.kind),
-        lower=_scale(r.lower, r.kind),
-        upper=_scale(r.upper, r.kind),
-        corrected=_scale(r.corrected, r.kind),
-        threshold=_scale(r.threshold, r.kind),
+        estimate=_scale(r.estimate, r.kind, r.unit),
+        lower=_scale(r.lower, r.kind, r.unit),
+        upper=_scale(r.upper, r.kind, r.unit),
+        corrected=_scale(r.corrected, r.kind, r.unit),
+        threshold=_scale(r.threshold, r.kind, r.unit),
         harmful=r.harmful if r.role == "guardrail" else None,
-        fmt=_display_fmt(r.kind),
+        fmt=scaled_fmt(r.kind, r.unit),
     )
     cells = [
         ("Projected lift", fmt(r.estimate)),
@@ -231,14 +235,14 @@ def _metric_block(v: dict[str, Any], r: MetricRow) -> str:
     prob = ""
     if r.role == "guardrail":
         cells.append(("Limit", f"{fmt(r.threshold)}" if r.threshold is not None else "n/a"))
-        if r.limit_text and r.limit_text.endswith("of baseline"):
-            cells.append(("Declared as", r.limit_text))
         if r.p_holds is not None:
-            ok = r.confidence is not None and r.p_holds >= r.confidence
+            ok = bool(r.meets)
             mark = "\u2713 meets" if ok else "\u2717 below"
+            if ok and r.confidence is not None and abs(r.p_holds - r.confidence) < PROB_TOL:
+                mark = "\u2713 at the limit of"
             prob = (
                 f'<p class="prob {"ok" if ok else "bad"}"><strong>{_pct(r.p_holds, 1)}</strong> probability it holds '
-                f'<span class="muted">({mark} the required {_pct(r.confidence, 0)})</span></p>'
+                f'<span class="muted">({mark} the required {_pct(r.confidence, 0)})</span>{_corrected_prob(r)}</p>'
             )
     table = "".join(f"<div><dt>{k}</dt><dd>{e(val)}</dd></div>" for k, val in cells)
     return (
@@ -247,14 +251,17 @@ def _metric_block(v: dict[str, Any], r: MetricRow) -> str:
     )
 
 
-def _scale(x: float | None, kind: str) -> float | None:
-    return None if x is None else (x * 100 if kind in ("proportion", "ratio") else x)
+def _corrected_prob(r: MetricRow) -> str:
+    if r.p_holds_corrected is None:
+        return ""
+    return (
+        f'<br/><span class="muted">{_pct(r.p_holds_corrected, 1)} around the corrected lift '
+        "(the interval is drawn around it)</span>"
+    )
 
 
-def _display_fmt(kind: str) -> charts.Fmt:
-    if kind in ("proportion", "ratio"):
-        return lambda x: f"{charts.signed(x)} pp"
-    return lambda x: charts.signed(x)
+def _scale(x: float | None, kind: str, unit: str = "absolute") -> float | None:
+    return None if x is None else x * scale(kind, unit)
 
 
 def _lift_section(v: dict[str, Any], rows: list[MetricRow]) -> str:
@@ -309,12 +316,14 @@ def _comparison_section(v: dict[str, Any], rows: list[MetricRow]) -> str:
             '<p class="muted">This version\'s report has no single-arm comparison.</p></section>'
         )
     keys = [r.metric for r in rows]
-    kinds = {r.metric: r.kind for r in rows}
-    head = "".join(f"<th>{e(k)}</th>" for k in keys)
+    fmts = {r.metric: display(r.kind, r.unit)[0] for r in rows}
+    head = "".join(
+        f"<th>{e(r.metric)}{' (% of baseline)' if r.unit == 'relative' else ''}</th>" for r in rows
+    )
     body = []
     for c in comp:
         cells = "".join(
-            f"<td>{e(display(kinds[k])[0](c.lifts[k]) if c.lifts.get(k) is not None else 'n/a')}</td>"
+            f"<td>{e(fmts[k](c.lifts[k]) if c.lifts.get(k) is not None else 'n/a')}</td>"
             for k in keys
         )
         safe = {True: "\u2713 yes", False: "\u2717 no", None: "n/a"}[c.safe]
@@ -327,7 +336,7 @@ def _comparison_section(v: dict[str, Any], rows: list[MetricRow]) -> str:
     return (
         f'<section id="comparison"><h2>Single-arm comparison</h2><p class="muted">Projected lift against the '
         f"baseline if everyone got one arm, beside this plan.</p><table><thead><tr><th>Allocation</th>{head}"
-        f"<th>All guardrails hold</th></tr></thead><tbody>{''.join(body)}</tbody></table></section>"
+        f"<th>All guardrails hold (point estimates)</th></tr></thead><tbody>{''.join(body)}</tbody></table></section>"
     )
 
 
@@ -418,7 +427,7 @@ def _watch_section(w: dict[str, Any] | None, rows: list[MetricRow]) -> str:
             history=hist,
             threshold=_scale(m.get("threshold"), kind),
             harmful=r.harmful if r else None,
-            fmt=_display_fmt(kind),
+            fmt=scaled_fmt(kind),
         )
         status = m.get("status") or "no data"
         blocks.append(

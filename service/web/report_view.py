@@ -2,8 +2,13 @@
 service/optimize/report.py; this module is the one place that knows it, so the page survives a
 report that lacks a part (an old version, a pending job) by leaving that part out.
 
-MetricRow values are in the metric's own units (absolute lift against the baseline); `display`
-turns them into what the page writes (percentage points for proportions and ratios)."""
+Report layout read here: report["metrics"] = [{metric, role, lift, se, corrected_lift, interval
+[lo, hi] around the corrected lift, threshold, unit, confidence, probability_holds,
+probability_holds_corrected}], every number in the guardrail's
+threshold unit (absolute: the metric's units; relative: per cent of the baseline's value; the
+success metric absolute), and report["comparison"] = [{plan, arm (index, absent for the plan),
+available, lifts {metric: value}, holds {guardrail: bool}}]. `display` and `scaled_fmt` turn row
+units into what the page writes (percentage points for absolute lifts of proportions and ratios)."""
 
 from __future__ import annotations
 
@@ -12,6 +17,8 @@ from dataclasses import dataclass
 from typing import Any
 
 from service.web.charts import Fmt, signed
+
+PROB_TOL = 1e-3  # probability shortfall treated as solver tolerance (see MetricRow.meets)
 
 
 @dataclass(frozen=True)
@@ -29,11 +36,23 @@ class MetricRow:
     p_holds: float | None  # probability the guardrail holds
     confidence: float | None  # the probability it must hold with
     limit_text: str | None  # the guardrail as declared, e.g. "+5% of baseline"
+    # the unit of every lift in this row: "absolute" or "relative" (per cent of baseline)
+    unit: str = "absolute"
+    p_holds_corrected: float | None = None  # the same probability around the corrected lift
 
     @property
     def harmful(self) -> str | None:
         """Which side of the limit harms: a lower-is-better metric is harmed by rising."""
         return "above" if self.direction == "lower" else "below"
+
+    @property
+    def meets(self) -> bool | None:
+        """Whether the probability it holds reaches the required confidence. A binding chance
+        guardrail sits at its confidence only up to the solver's cut tolerance, so a shortfall
+        below PROB_TOL counts as meeting it (the page then says "at the limit")."""
+        if self.p_holds is None or self.confidence is None:
+            return None
+        return self.p_holds >= self.confidence - PROB_TOL
 
     @property
     def holds(self) -> bool | None:
@@ -57,51 +76,17 @@ def _num(x: Any) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def _first(d: dict[str, Any], *keys: str) -> Any:
-    for k in keys:
-        if k in d and d[k] is not None:
-            return d[k]
-    return None
-
-
-def _entries(report: dict[str, Any]) -> dict[str, dict[str, Any]]:
-    """metric key -> its report entry, whether the report lists them or keys them."""
-    raw = _first(report, "metrics", "lifts", "impact")
-    if isinstance(raw, dict):
-        return {k: v for k, v in raw.items() if isinstance(v, dict)}
-    if isinstance(raw, list):
-        return {e.get("metric") or e.get("key"): e for e in raw if isinstance(e, dict)}
-    return {}
-
-
-def _interval(e: dict[str, Any]) -> tuple[float | None, float | None]:
-    iv = _first(e, "interval", "ci")
-    if isinstance(iv, dict):
-        return _num(_first(iv, "lower", "lo", "low")), _num(_first(iv, "upper", "hi", "high"))
-    if isinstance(iv, list | tuple) and len(iv) == 2:
-        return _num(iv[0]), _num(iv[1])
-    return _num(_first(e, "lower", "interval_lower", "ci_lower")), _num(
-        _first(e, "upper", "interval_upper", "ci_upper")
-    )
-
-
 def _limit_text(g: dict[str, Any]) -> str:
     t = float(g["threshold"])
-    if g.get("unit") == "relative":
-        return f"{signed(t)}% of baseline"
-    return f"{signed(t)} (absolute)"
+    return f"{signed(t)}% of baseline" if g.get("unit") == "relative" else f"{signed(t)} (absolute)"
 
 
 def metric_rows(version: dict[str, Any], metrics: dict[str, dict[str, Any]]) -> list[MetricRow]:
-    """The success metric first, then every guardrail in the order declared."""
+    """The success metric first, then every guardrail in the order declared. A metric the report
+    lacks (pending report) comes back with None numbers, so the page can say so."""
     spec = version.get("spec") or {}
     report = version.get("report") or {}
-    entries = _entries(report)
-    solved = {
-        g.get("metric") or g.get("guardrail"): g
-        for g in ((report.get("solution") or {}).get("guardrails") or [])
-        if isinstance(g, dict)
-    }
+    entries = {m.get("metric"): m for m in report.get("metrics") or [] if isinstance(m, dict)}
     wanted = [(spec.get("success_metric"), None)] + [
         (g["metric"], g) for g in spec.get("guardrails") or []
     ]
@@ -111,39 +96,24 @@ def metric_rows(version: dict[str, Any], metrics: dict[str, dict[str, Any]]) -> 
             continue
         e = entries.get(key, {})
         decl = metrics.get(key, {})
-        lo, hi = _interval(e)
-        threshold = _num(_first(e, "threshold_absolute", "limit", "threshold"))
-        if threshold is None and g is not None and g.get("unit", "absolute") == "absolute":
-            threshold = float(g["threshold"])
-        estimate = _num(_first(e, "projected", "lift", "estimate", "projected_lift"))
-        if estimate is None and g is None:
-            estimate = _num((report.get("solution") or {}).get("objective"))
-        if (
-            estimate is None
-            and g is not None
-            and key in solved
-            and g.get("unit", "absolute") == "absolute"
-        ):
-            estimate = _num(solved[key].get("lift"))
+        interval = e.get("interval") or [None, None]
         rows.append(
             MetricRow(
                 metric=key,
                 role="guardrail" if g is not None else "success",
-                direction=decl.get("direction")
-                or e.get("direction")
-                or ("higher" if g is None else "lower"),
-                kind=decl.get("kind") or e.get("kind") or "mean",
-                estimate=estimate,
-                se=_num(_first(e, "se", "projected_se", "lift_se")),
-                corrected=_num(_first(e, "corrected", "corrected_lift", "lift_corrected")),
-                lower=lo,
-                upper=hi,
-                threshold=threshold if g is not None else None,
-                p_holds=_num(_first(e, "p_holds", "prob_holds", "probability_holds", "probability"))
-                if g
-                else None,
+                direction=decl.get("direction") or ("higher" if g is None else "lower"),
+                kind=decl.get("kind") or "mean",
+                estimate=_num(e.get("lift")),
+                se=_num(e.get("se")),
+                corrected=_num(e.get("corrected_lift")),
+                lower=_num(interval[0]),
+                upper=_num(interval[1]),
+                threshold=_num(e.get("threshold", g["threshold"])) if g else None,
+                p_holds=_num(e.get("probability_holds")) if g else None,
                 confidence=float(g.get("confidence", 0.95)) if g else None,
                 limit_text=_limit_text(g) if g else None,
+                unit=(g.get("unit") or "absolute") if g else "absolute",
+                p_holds_corrected=_num(e.get("probability_holds_corrected")) if g else None,
             )
         )
     return rows
@@ -152,44 +122,56 @@ def metric_rows(version: dict[str, Any], metrics: dict[str, dict[str, Any]]) -> 
 @dataclass(frozen=True)
 class ComparisonRow:
     label: str
-    kind: str  # "arm" | "best_safe" | "plan" | "baseline"
-    lifts: dict[str, float | None]
-    safe: bool | None  # every guardrail holds (None when unknown)
+    kind: str  # "arm" | "best_safe" | "plan"
+    lifts: dict[str, float | None]  # in each metric's row unit (see MetricRow.unit)
+    safe: bool | None  # every guardrail holds on point estimates (None: arm not available)
 
 
 def comparison_rows(version: dict[str, Any]) -> list[ComparisonRow]:
-    """Every single arm for everyone, the best safe arm, and this plan, in the report's order."""
+    """Every single arm for everyone, the best single arm meeting the guardrails, and this plan,
+    in the report's order; arms are named by the allocation's arm keys."""
     report = version.get("report") or {}
-    raw = _first(report, "comparison", "comparisons", "single_arm")
+    arms = list((version.get("allocation") or {}).get("arms") or [])
     rows: list[ComparisonRow] = []
-    if isinstance(raw, dict):
-        raw = [{"label": k, **v} for k, v in raw.items() if isinstance(v, dict)]
-    for r in raw or []:
+    for r in report.get("comparison") or []:
         if not isinstance(r, dict):
             continue
-        lifts_raw = _first(r, "lifts", "metrics", "values") or {}
-        if isinstance(lifts_raw, list):
-            lifts_raw = {
-                e.get("metric"): _first(e, "lift", "value", "projected")
-                for e in lifts_raw
-                if isinstance(e, dict)
-            }
-        lifts = {k: _num(v.get("lift") if isinstance(v, dict) else v) for k, v in lifts_raw.items()}
-        safe = _first(r, "safe", "feasible", "guardrails_hold", "holds")
-        rows.append(
-            ComparisonRow(
-                label=str(_first(r, "label", "name", "arm") or "?"),
-                kind=str(_first(r, "kind", "type") or "arm"),
-                lifts=lifts,
-                safe=bool(safe) if isinstance(safe, bool) else None,
-            )
-        )
+        arm = r.get("arm")
+        name = arms[arm] if isinstance(arm, int) and 0 <= arm < len(arms) else str(r.get("plan"))
+        if arm is None:
+            kind = "plan"
+        elif str(r.get("plan", "")).startswith("best"):
+            kind = "best_safe"
+        else:
+            kind = "arm"
+        holds = r.get("holds")
+        safe = all(holds.values()) if isinstance(holds, dict) and r.get("available", True) else None
+        lifts = {k: _num(v) for k, v in (r.get("lifts") or {}).items()}
+        rows.append(ComparisonRow(label=name, kind=kind, lifts=lifts, safe=safe))
     return rows
 
 
-def display(row_kind: str) -> tuple[Fmt, str]:
-    """A formatter for lifts of a metric of this kind, and the unit it writes: proportions and ratios
-    in percentage points (0.01 -> '+1 pp'), means in their own units."""
-    if row_kind in ("proportion", "ratio"):
-        return (lambda x: f"{signed(x * 100)} pp"), "percentage points"
-    return (lambda x: signed(x)), "metric units"
+def scale(kind: str, unit: str = "absolute") -> float:
+    """Factor from a lift in its row unit to what the page writes: absolute lifts of proportions
+    and ratios become percentage points (x 100); relative lifts are already per cent."""
+    return 100.0 if unit == "absolute" and kind in ("proportion", "ratio") else 1.0
+
+
+def scaled_fmt(kind: str, unit: str = "absolute") -> Fmt:
+    """Writes a value already multiplied by `scale(kind, unit)`."""
+    if unit == "relative":
+        return lambda x: f"{signed(x)}%"
+    if kind in ("proportion", "ratio"):
+        return lambda x: f"{signed(x)} pp"
+    return lambda x: signed(x)
+
+
+def display(kind: str, unit: str = "absolute") -> tuple[Fmt, str]:
+    """A formatter for raw lifts (row units) of a metric of this kind and the unit it writes."""
+    k, f = scale(kind, unit), scaled_fmt(kind, unit)
+    words = (
+        "per cent of the baseline's value"
+        if unit == "relative"
+        else ("percentage points" if k == 100.0 else "metric units")
+    )
+    return (lambda x: f(x * k)), words

@@ -95,12 +95,13 @@ def live_server(db_url: str) -> Iterator[Live]:
         sock.close()
 
 
-def build_plan(live: Live, *, n: int = 40000) -> tuple[int, dict[str, Any]]:
-    """The scenario's causal-tree model and a first draft of plan lesson-length: (model id, version)."""
+def build_plan(live: Live, *, n: int = 40000, **draft: Any) -> tuple[int, dict[str, Any]]:
+    """The scenario's causal-tree model and a first draft of plan lesson-length (tests/support.py
+    defaults, overridden by `draft`): (model id, version)."""
     from support import draft_plan, scenario_model
 
     model_id = scenario_model(live.client, live.keys, n=n, seed=1)
-    return model_id, draft_plan(live.client, live.keys, model_id)
+    return model_id, draft_plan(live.client, live.keys, model_id, **draft)
 
 
 def launch_chromium(playwright: Any) -> Any:

@@ -1,5 +1,6 @@
-"""Regenerate docs/review-page.png: a live server with the scenario plan (version 1 live, version 2
-drafted against it), the version 2 review page opened with an approver key in headless Chromium.
+"""Regenerate docs/review-page.png: a live server with the scenario plan (version 1, guardrails on
+point estimates, live; version 2, chance-constrained, drafted against it), the version 2 review
+page opened with an approver key in headless Chromium.
 
     .venv/bin/python tests/web/screenshot.py [docs/review-page.png]
 """
@@ -24,12 +25,12 @@ def main(out: Path) -> None:
     from playwright.sync_api import sync_playwright
 
     with tempfile.TemporaryDirectory() as tmp, live_server(f"sqlite:///{tmp}/apportion.db") as live:
-        model_id, first = _build(live)
+        model_id, first = _build(live, method="deterministic")
         h = live.keys.h
         v1 = first["version"]
         r = live.client.post(
             f"/v1/plans/lesson-length/versions/{v1}/approve",
-            json={"reason": "First safe plan"},
+            json={"reason": "First personalized plan"},
             headers=h(live.keys.approver),
         )
         assert r.status_code == 200, r.text
@@ -46,9 +47,9 @@ def main(out: Path) -> None:
             live.client,
             live.keys,
             model_id,
-            method="deterministic",
+            method="chance",
             draws=200,
-            notes="Point-estimate guardrails, for comparison with the live chance-constrained plan",
+            notes="Guardrails at 95 % confidence instead of on point estimates",
         )["version"]
         with sync_playwright() as p:
             browser = launch_chromium(p)

@@ -65,9 +65,9 @@ def test_every_guardrail_has_an_interval_chart_with_its_limit_and_probability() 
     assert "limit +1 pp" in texts["abandon_rate"]
     assert "99.7% probability it holds" in texts["abandon_rate"]
     assert "limit +0.5 pp" in texts["cancelled"]
-    # a relative limit is shown as declared and as the report's absolute limit
-    assert "+5% of baseline" in texts["support_contacts"]
-    assert "limit +0.0172" in texts["support_contacts"]
+    # a relative guardrail's numbers are per cent of the baseline's value, as the report gives them
+    assert "limit +5%" in texts["support_contacts"]
+    assert "per cent of the baseline" in texts["support_contacts"]
     assert "93.0% probability it holds" in texts["support_contacts"]
 
 
@@ -241,3 +241,27 @@ def test_shell_holds_no_plan_data_and_loads_only_its_own_files() -> None:
     assert (
         "<style" not in html and "<script>" not in html
     )  # no inline style or script: CSP forbids them
+
+
+@pytest.mark.parametrize(
+    ("p_holds", "want", "held"),
+    [
+        (0.9496, "\u2713 at the limit of the required 95%", 3),
+        (0.94, "\u2717 below the required 95%", 2),
+    ],
+    ids=["binding-within-solver-tolerance", "short"],
+)
+def test_a_binding_chance_guardrail_counts_as_met_within_tolerance(
+    p_holds: float, want: str, held: int
+) -> None:
+    data = page()
+    (row,) = [m for m in data["version"]["report"]["metrics"] if m["metric"] == "cancelled"]
+    row["probability_holds"] = p_holds
+    root = _tree(pages.version_fragment(data, APPROVER))
+    (block,) = [
+        el
+        for el in root.iter("div")
+        if el.get("data-metric") == "cancelled" and el.get("class") == "metric"
+    ]
+    assert want in _text(block)
+    assert f"{held} of 3 guardrails hold" in _text(root)
