@@ -132,8 +132,12 @@ class Linear:
         return float(np.einsum("c,cj->", self.p, (x - self.b) * self.obj))
 
 
-def linearize(problem: AllocationProblem, mean: np.ndarray | None = None) -> Linear:
-    """Build the linear form; `mean` (C, J, Q) overrides the component means (bootstrap draws)."""
+def linearize(
+    problem: AllocationProblem, mean: np.ndarray | None = None, *, with_cellcov: bool = True
+) -> Linear:
+    """Build the linear form; `mean` (C, J, Q) overrides the component means (bootstrap draws).
+    `with_cellcov=False` skips the (C, J, K, K) within-cell covariances (only CSA's cell sampler
+    needs them) and fills `cellcov` with an empty array."""
     mom = problem.moments
     avail = available_cells(mom)
     mean = mom.mean if mean is None else mean
@@ -180,8 +184,13 @@ def linearize(problem: AllocationProblem, mean: np.ndarray | None = None) -> Lin
         W[i] = harm[i] * weights(m, t_abs)
         rhs[i] = harm[i] * t_abs
     G = np.einsum("kq,cjq->kcj", W, mu)
-    cellcov = np.einsum("kq,cjqr,lr,cj->cjkl", W, cov, W, inv_n)
-    V = np.diagonal(cellcov, axis1=2, axis2=3).transpose(2, 0, 1).copy()
+    wc = np.einsum("kq,cjqr->cjkr", W, cov, optimize=True)  # (C, J, K, Q)
+    V = np.einsum("cjkr,kr,cj->kcj", wc, W, inv_n, optimize=True)
+    cellcov = (
+        np.einsum("cjkr,lr,cj->cjkl", wc, W, inv_n, optimize=True)
+        if with_cellcov
+        else np.empty((0,))
+    )
     conf = np.array([g.confidence for g in problem.guardrails], dtype=np.float64)
     return Linear(
         p=p,

@@ -34,12 +34,19 @@ class LPModel:
     Guardrail k: sum_cj p_c G[k,c,j] x[c,j] <= rhs_k + sum_cj p_c G[k,c,j] b[c,j].
     """
 
-    def __init__(self, lin: Linear, *, tie_break: float = TIE_BREAK, presolve: bool = False):
+    def __init__(
+        self,
+        lin: Linear,
+        *,
+        tie_break: float = TIE_BREAK,
+        presolve: bool = False,
+        a_eq: sp.csr_matrix | None = None,
+    ):
         c, j, k = lin.shape
         self.shape = (c, j)
         self.lin = lin
         self.presolve = presolve
-        self.a_eq = sp.kron(sp.eye(c, format="csr"), np.ones((1, j)), format="csr")
+        self.a_eq = a_eq if a_eq is not None else simplex_rows(c, j)
         rows = (lin.p[None, :, None] * lin.G).reshape(k, c * j)
         b_ub = lin.rhs + rows @ lin.b.ravel()
         self.row_scale = np.maximum(np.abs(rows).max(axis=1, initial=0.0), 1e-300)
@@ -103,6 +110,11 @@ class LPModel:
             x = np.round(x)
         x = x / x.sum(axis=1, keepdims=True)
         return LPResult(x, 0, nit, str(res.message))
+
+
+def simplex_rows(c: int, j: int) -> sp.csr_matrix:
+    """(C, C J) sparse rows sum_j x[c, j] = 1."""
+    return sp.kron(sp.eye(c, format="csr"), np.ones((1, j)), format="csr")
 
 
 def cut_row(lin: Linear, k: int, x0: np.ndarray, coef: float) -> tuple[np.ndarray, float] | None:

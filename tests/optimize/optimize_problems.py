@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import numpy as np
-import pytest
 
 from service.optimize.problem import AllocationProblem, Guardrail, control_allocation
 from service.stats.estimates import CellMoments
@@ -74,8 +73,3 @@ def random_problem(
         else:
             guardrails.append(Guardrail(key, abs(lift) * tight + 1e-4))
     return AllocationProblem(shares, moments, metrics, "s", tuple(guardrails), b)
-
-
-@pytest.fixture
-def make_problem():
-    return random_problem

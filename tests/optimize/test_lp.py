@@ -1,0 +1,141 @@
+"""Deterministic plans: the LP against scipy on independently built matrices, the MILP against
+brute force, and the vertex counting bound."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+from optimize.optimize_problems import random_problem
+from scipy.optimize import linprog
+
+from service.optimize.problem import AllocationProblem
+from service.optimize.solve import solve
+
+
+def independent_lp(problem: AllocationProblem):
+    """The LP of design §7 written out directly from the moments (no service.optimize code):
+    rows for mean metrics sum_c p_c sum_j x_cj m_cj; a ratio guardrail as
+    N(x) - (R(b) + t) D(x) <= 0; higher-is-better rows flipped; relative
+    thresholds t/100 * M(b)."""
+    mom = problem.moments
+    p, b = problem.shares, problem.baseline
+    c, j, _ = mom.mean.shape
+    pos = {n: i for i, n in enumerate(mom.components)}
+    tot = lambda x, comp: float(np.sum(p[:, None] * x * mom.mean[..., pos[comp]]))  # noqa: E731
+    coef = lambda comp: (p[:, None] * mom.mean[..., pos[comp]]).ravel()  # noqa: E731
+    rows, rhs = [], []
+    for g in problem.guardrails:
+        m = problem.metric(g.metric)
+        sign = 1.0 if m.direction == "lower" else -1.0
+        if m.kind == "ratio":
+            rb = tot(b, m.numerator) / tot(b, m.denominator)
+            t = g.threshold / 100 * rb if g.unit == "relative" else g.threshold
+            r = rb + t
+            row = coef(m.numerator) - r * coef(m.denominator)
+            rows.append(sign * row)
+            rhs.append(0.0)
+        else:
+            mb = tot(b, m.key)
+            t = g.threshold / 100 * mb if g.unit == "relative" else g.threshold
+            rows.append(sign * coef(m.key))
+            rhs.append(sign * (mb + t))
+    a_eq = np.kron(np.eye(c), np.ones(j))
+    res = linprog(
+        -coef(problem.success),
+        A_ub=np.array(rows),
+        b_ub=np.array(rhs),
+        A_eq=a_eq,
+        b_eq=np.ones(c),
+        bounds=(0, 1),
+        method="highs",
+    )
+    assert res.status == 0
+    return -res.fun - tot(b, problem.success)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_deterministic_matches_scipy_linprog_on_independent_matrices(seed):
+    # reference: scipy.optimize.linprog (HiGHS) on matrices built in this test from design §7
+    problem = random_problem(seed, n_cohorts=7, n_arms=4, n_guardrails=5)
+    sol = solve(problem, "deterministic")
+    ref = independent_lp(problem)
+    # tolerance: the tie-break term weighs 1e-6 of the largest cost coefficient per cohort
+    assert sol.objective == pytest.approx(ref, rel=2e-5, abs=1e-9)
+    for row in sol.guardrail_values:
+        sign = -1.0 if row["guardrail"] == "g_up" else 1.0
+        assert sign * row["lift"] <= sign * row["threshold"] + 1e-9
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_pure_equals_brute_force_enumeration(seed):
+    # reference: enumeration of all J^C one-arm-per-cohort allocations (exhaustive search)
+    problem = random_problem(100 + seed, n_cohorts=5, n_arms=3, n_guardrails=3)
+    sol = solve(problem, "deterministic", "pure")
+    c, j = problem.baseline.shape
+    p, mom = problem.shares, problem.moments
+    pos = {n: i for i, n in enumerate(mom.components)}
+    base = {}
+    best = -np.inf
+
+    def value(x, key):
+        m = problem.metric(key)
+        if m.kind == "ratio":
+            num = np.sum(p[:, None] * x * mom.mean[..., pos[m.numerator]])
+            den = np.sum(p[:, None] * x * mom.mean[..., pos[m.denominator]])
+            return num / den
+        return np.sum(p[:, None] * x * mom.mean[..., pos[key]])
+
+    for m in problem.metrics:
+        base[m.key] = value(problem.baseline, m.key)
+    for arms in itertools.product(range(j), repeat=c):
+        x = np.zeros((c, j))
+        x[np.arange(c), arms] = 1.0
+        ok = True
+        for g in problem.guardrails:
+            m = problem.metric(g.metric)
+            lift = value(x, g.metric) - base[g.metric]
+            t = g.threshold / 100 * base[g.metric] if g.unit == "relative" else g.threshold
+            if (lift > t + 1e-12) if m.direction == "lower" else (lift < t - 1e-12):
+                ok = False
+                break
+        if ok:
+            best = max(best, value(x, problem.success) - base[problem.success])
+    assert sol.fractional_cohorts == 0
+    assert set(np.unique(sol.allocation)) <= {0.0, 1.0}
+    assert sol.objective == pytest.approx(best, rel=1e-6, abs=1e-12)
+
+
+def test_vertex_has_at_most_as_many_fractional_cohorts_as_binding_guardrails():
+    # Bertsimas and Tsitsiklis (1997) ch. 2, basic feasible solutions (methods §5.2): with slacks
+    # the LP has C + K equality rows, so a vertex has at most C + K positive variables; each
+    # non-binding guardrail uses one (its slack) and each cohort at least one x, which leaves at
+    # most K_binding cohorts with more than one positive arm.
+    mixed_seen = 0
+    for seed in range(60):
+        problem = random_problem(
+            1000 + seed,
+            n_cohorts=12,
+            n_arms=4,
+            n_guardrails=1 + seed % 5,
+            tight=0.1 + 0.1 * (seed % 4),
+        )
+        sol = solve(problem, "deterministic")
+        assert sol.fractional_cohorts <= len(sol.binding), seed
+        mixed_seen += sol.fractional_cohorts
+    assert mixed_seen > 0  # the bound was exercised, not only met by pure vertices
+
+
+def test_tie_break_prefers_control():
+    # common practice (methods §5.2): with arms identical to control, the plan stays on control
+    problem = random_problem(7, n_cohorts=4, n_arms=3, n_guardrails=2)
+    mom = problem.moments
+    mean = mom.mean.copy()
+    mean[:, 1:, :] = mean[:, :1, :]
+    same = type(mom)(mom.components, mom.n, mean, mom.cov)
+    tied = AllocationProblem(
+        problem.shares, same, problem.metrics, "s", problem.guardrails, problem.baseline
+    )
+    sol = solve(tied, "deterministic")
+    np.testing.assert_array_equal(sol.allocation[:, 0], np.ones(4))
