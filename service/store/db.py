@@ -3,11 +3,14 @@ SQLite start with BEGIN IMMEDIATE so that two writers queue instead of failing h
 
 from __future__ import annotations
 
+import json
+import math
 import os
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
+from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.orm import Session, sessionmaker
@@ -16,6 +19,21 @@ from sqlalchemy.orm import Session, sessionmaker
 def utcnow() -> str:
     """ISO-8601 UTC timestamp with microseconds: the one time format of the store."""
     return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def _finite(value: Any) -> Any:
+    """JSON has no NaN or infinity: store them as null (PostgreSQL rejects them outright)."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_finite(v) for v in value]
+    return value
+
+
+def json_dumps(value: Any) -> str:
+    return json.dumps(_finite(value), allow_nan=False, default=str)
 
 
 def is_sqlite(url: str) -> bool:
@@ -27,7 +45,11 @@ def make_engine(url: str, *, pool_size: int = 40) -> Engine:
         path = url.split("///", 1)[-1]
         if path and path != ":memory:":
             os.makedirs(os.path.dirname(os.path.abspath(path)), exist_ok=True)
-        engine = create_engine(url, connect_args={"check_same_thread": False, "timeout": 30})
+        engine = create_engine(
+            url,
+            connect_args={"check_same_thread": False, "timeout": 30},
+            json_serializer=json_dumps,
+        )
 
         @event.listens_for(engine, "connect")
         def _on_connect(dbapi_conn, _record):  # type: ignore[no-untyped-def]
@@ -47,7 +69,9 @@ def make_engine(url: str, *, pool_size: int = 40) -> Engine:
         return engine
     if url.startswith("postgresql://"):
         url = "postgresql+psycopg://" + url[len("postgresql://") :]
-    return create_engine(url, pool_size=pool_size, max_overflow=10, pool_pre_ping=True)
+    return create_engine(
+        url, pool_size=pool_size, max_overflow=10, pool_pre_ping=True, json_serializer=json_dumps
+    )
 
 
 @dataclass

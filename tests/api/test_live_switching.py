@@ -19,7 +19,7 @@ from service.errors import Conflict
 from service.store.audit import Actor
 from service.usecases import plans as uc
 
-POLL = 0.2  # seconds; make_settings uses the same for the in-process app
+POLL = 0.5  # seconds: the second process's poll interval (the in-process app swaps right after its commit)
 
 
 def _approved_pair(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
@@ -136,7 +136,12 @@ def test_switching_under_load_never_fails_and_reaches_the_second_process(
         ).status_code
         == 200
     )
-    remote = httpx.Client(base_url=second_server, headers=keys.h(keys.reader), timeout=5)
+    with httpx.Client(base_url=second_server, headers=keys.h(keys.reader), timeout=5) as remote:
+        _switch_under_load(client, keys, remote, h)
+    assert client.get("/v1/audit/verify", headers=keys.h(keys.admin)).json()["intact"] is True
+
+
+def _switch_under_load(client: TestClient, keys, remote: httpx.Client, h: dict) -> None:  # type: ignore[no-untyped-def]
     # wait until the second process serves version 1
     deadline = time.monotonic() + 5
     while (
@@ -206,7 +211,7 @@ def test_switching_under_load_never_fails_and_reaches_the_second_process(
             if v == target:
                 reached.append(time.monotonic() - t1)
                 break
-            assert time.monotonic() - t1 < 2 * POLL + 0.3, (
+            assert time.monotonic() - t1 < 2 * POLL, (
                 f"second process still serves {v} after {time.monotonic() - t1:.2f} s"
             )
             time.sleep(0.01)
@@ -228,8 +233,7 @@ def test_switching_under_load_never_fails_and_reaches_the_second_process(
     bad = [
         a
         for a in answers
-        if not live_during(a[0], a[1], a[2], 0.0 if a[3] == "local" else 2 * POLL + 0.3)
+        if not live_during(a[0], a[1], a[2], 0.0 if a[3] == "local" else 2 * POLL)
     ]
     assert bad == []
-    assert max(reached) < 2 * POLL + 0.3
-    assert client.get("/v1/audit/verify", headers=keys.h(keys.admin)).json()["intact"] is True
+    assert max(reached) < 2 * POLL

@@ -1,0 +1,79 @@
+"""Jobs: two workers never take the same job, and an interrupted job is picked up again or
+marked failed, never left running (issue 3)."""
+
+from __future__ import annotations
+
+import threading
+import time
+
+from support import make_settings
+
+from service.app import build_services
+from service.store import jobs as repo
+from service.store.migrate import upgrade
+from service.usecases import jobs as uc
+
+
+def _services(db_url: str):  # type: ignore[no-untyped-def]
+    s = build_services(make_settings(db_url, job_stale_seconds=1.0))
+    upgrade(s.db.engine)
+    return s
+
+
+def test_two_workers_never_run_the_same_job(db_url: str, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    a, b = _services(db_url), _services(db_url)
+    runs: list[tuple[str, str]] = []
+    lock = threading.Lock()
+
+    def handler(services, job, progress):  # type: ignore[no-untyped-def]
+        time.sleep(0.005)
+        with lock:
+            runs.append((job.id, services.extras["name"]))
+        with services.db.write() as s:
+            repo.finish(session=s, job_id=job.id)
+
+    monkeypatch.setitem(uc.HANDLERS, "probe", handler)
+    a.extras["name"], b.extras["name"] = "a", "b"
+    with a.db.write() as s:
+        ids = [repo.create_job(session=s, kind="probe", payload={}).id for _ in range(40)]
+
+    def drain(services, worker):  # type: ignore[no-untyped-def]
+        while uc.run_one(services, worker):
+            pass
+
+    threads = [
+        threading.Thread(target=drain, args=(a, "wa")),
+        threading.Thread(target=drain, args=(b, "wb")),
+    ]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert sorted(j for j, _ in runs) == sorted(ids)  # each exactly once
+    with a.db.read() as s:
+        assert all(repo.get_job(session=s, job_id=i).status == "done" for i in ids)
+    a.db.dispose()
+    b.db.dispose()
+
+
+def test_interrupted_job_is_requeued_then_failed(db_url: str) -> None:
+    services = _services(db_url)
+    with services.db.write() as s:
+        job = repo.create_job(session=s, kind="probe", payload={})
+        job_id = job.id
+    # a worker claims it and "crashes": no heartbeat from now on
+    with services.db.write() as s:
+        assert repo.claim_next(session=s, worker="dead", kinds=("probe",)).id == job_id
+    time.sleep(1.2)
+    runner = uc.JobRunner(services, worker_name="fresh")
+    runner.reclaim()
+    with services.db.read() as s:
+        assert repo.get_job(session=s, job_id=job_id).status == "queued"
+    with services.db.write() as s:
+        repo.claim_next(session=s, worker="dead-again", kinds=("probe",))
+    time.sleep(1.2)
+    runner.reclaim()
+    with services.db.read() as s:
+        row = repo.get_job(session=s, job_id=job_id)
+        assert row.status == "failed" and row.error.startswith("interrupted: no heartbeat")
+    services.db.dispose()
