@@ -61,6 +61,10 @@ class LocalError(Exception):
     """A problem on this side of the wire (a file, an option value, an unreachable server)."""
 
 
+class JobFailed(Exception):
+    """A job the command waited for ended as failed (its error is the message)."""
+
+
 class Api:
     """The v1 routes as methods. `client` may be any httpx.Client (tests pass their own)."""
 
@@ -560,6 +564,9 @@ def _command(fn: Callable[[argparse.Namespace], int]) -> Callable[[argparse.Name
                 what = e.get("problem") or e.get("message") or ""
                 print(f"  - {where}: {what}".rstrip(": "), file=sys.stderr)
             return 1
+        except JobFailed as exc:
+            print(f"error: {exc}", file=sys.stderr)
+            return 1
         except LocalError as exc:
             print(f"error: {exc}", file=sys.stderr)
             return 2
@@ -763,7 +770,7 @@ def finish_report(api: Api, version: dict[str, Any], *, bar: ProgressBar | None)
         return version
     job_view = wait_for_job(api, str(job).rsplit("/", 1)[-1], bar=bar)
     if job_view["status"] == "failed":
-        raise LocalError(f"the impact report job failed: {job_view.get('error')}")
+        raise JobFailed(f"the impact report job failed: {job_view.get('error')}")
     return api.get_version(version["plan"], version["version"])
 
 
