@@ -300,6 +300,12 @@ def _full_report(
     progress: Any = None,
 ) -> dict[str, Any]:
     report = impact_report(problem, sol, draws=draws, seed=seed, progress=progress)
+    arm_keys = ctx["specs"].arm_keys
+    for row in report.get("comparison", []):  # the optimizer knows arm indexes; readers want keys
+        if isinstance(row.get("arm"), int):
+            row["arm_key"] = arm_keys[row["arm"]]
+            if str(row.get("plan", "")).startswith("arm "):
+                row["plan"] = f"{arm_keys[row['arm']]} for everyone"
     try:
         held_out = _evaluate(ctx, services, sol.allocation, problem.baseline, seed)
     except (
