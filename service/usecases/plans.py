@@ -299,7 +299,8 @@ def _full_report(
     seed: int,
     progress: Any = None,
 ) -> dict[str, Any]:
-    report = impact_report(problem, sol, draws=draws, seed=seed, progress=progress)
+    on_draw = (lambda done, total: progress(done / max(total, 1))) if progress is not None else None
+    report = impact_report(problem, sol, draws=draws, seed=seed, progress=on_draw)
     arm_keys = ctx["specs"].arm_keys
     for row in report.get("comparison", []):  # the optimizer knows arm indexes; readers want keys
         if isinstance(row.get("arm"), int):

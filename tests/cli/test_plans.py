@@ -191,11 +191,6 @@ def test_assign_one_and_batch(cli, model, spec, tmp_path: Path) -> None:  # type
     assert [line.split()[0] for line in table.out.splitlines()[2:]] == ["m0", "m1", "m2", "m3"]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="service/usecases/plans.py hands the job's progress(fraction) to impact_report, which "
-    "calls progress(done, total), so report jobs fail; remove this marker once that is fixed",
-)
 def test_large_report_runs_as_a_job_and_draft_waits(cli, model, spec) -> None:  # type: ignore[no-untyped-def]
     # above 1,000 bootstrap draws the server attaches the impact report from a job
     queued = _draft(cli, model, spec, "--draws", "1001", "--no-wait")
