@@ -29,6 +29,7 @@ class ConeResult:
     cuts_b: list[float] = field(default_factory=list)
     max_violation: float = 0.0  # relative, before the final scaling
     scaled_by: float = 1.0
+    duals: np.ndarray | None = None
 
 
 def constraint_scale(lin: Linear) -> np.ndarray:
@@ -53,7 +54,10 @@ def solve_cone(
     max_iter: int = 60,
     cuts_a: list[np.ndarray] | None = None,
     cuts_b: list[float] | None = None,
+    duals: np.ndarray | None = None,
 ) -> ConeResult:
+    """Kelley loop; `duals` warm-starts the first LP (later LPs reuse the previous multipliers,
+    zero for new cuts), which lets HiGHS solve a small restricted LP (LPModel._restricted)."""
     cuts_a = list(cuts_a or [])
     cuts_b = list(cuts_b or [])
     scale = constraint_scale(lin)
@@ -64,8 +68,12 @@ def solve_cone(
     it = 0
     for it in range(1, max_iter + 1):
         res = model.solve(
-            np.array(cuts_a) if cuts_a else None, np.array(cuts_b) if cuts_b else None, pure=pure
+            np.array(cuts_a) if cuts_a else None,
+            np.array(cuts_b) if cuts_b else None,
+            pure=pure,
+            duals=duals,
         )
+        duals = res.duals
         lp_iter += res.iterations
         if res.x is None:
             return ConeResult(None, it, lp_iter, cuts_a, cuts_b)
@@ -86,4 +94,4 @@ def solve_cone(
         over = f > lin.rhs
         lam = float(np.min(lin.rhs[over] / f[over]))
         x = lin.b + lam * (x - lin.b)
-    return ConeResult(x, it, lp_iter, cuts_a, cuts_b, worst, lam)
+    return ConeResult(x, it, lp_iter, cuts_a, cuts_b, worst, lam, duals)

@@ -26,6 +26,8 @@ class LPResult:
     status: int  # 0 optimal, 2 infeasible, other: solver trouble
     iterations: int
     message: str
+    duals: np.ndarray | None = None  # (R,) >= 0 multipliers of the coupling rows (scaled rows)
+    restricted: int = 0  # pricing rounds of the restricted LP (0: the full LP was solved)
 
 
 class LPModel:
@@ -74,7 +76,10 @@ class LPModel:
         *,
         pure: bool = False,
         cost: np.ndarray | None = None,
+        duals: np.ndarray | None = None,
     ) -> LPResult:
+        """Solve the LP (or the MILP when `pure`). `duals`: warm multipliers of the coupling rows
+        (guardrails, then cuts) from a nearby problem, which enable the restricted solve."""
         a_ub, b_ub = self._rows(cuts_a, cuts_b)
         cost = self.cost if cost is None else cost
         c, j = self.shape
@@ -91,25 +96,94 @@ class LPModel:
             nit = int(getattr(res, "mip_node_count", 0) or 0)
             status = 0 if res.status == 0 else (2 if res.status == 2 else int(res.status))
         else:
-            res = linprog(
-                cost,
-                A_ub=a_ub if a_ub.shape[0] else None,
-                b_ub=b_ub if a_ub.shape[0] else None,
-                A_eq=self.a_eq,
-                b_eq=np.ones(c),
-                bounds=np.column_stack([np.zeros(c * j), self.upper]),
-                method="highs-ds",
-                options={"presolve": self.presolve},
-            )
-            nit = int(res.nit)
-            status = int(res.status)
+            if duals is not None and a_ub.shape[0] and c > 64:
+                warm = np.zeros(a_ub.shape[0])
+                m = min(len(duals), a_ub.shape[0])
+                warm[:m] = np.asarray(duals, dtype=np.float64)[:m]
+                out = self._restricted(cost, a_ub, b_ub, warm)
+                if out is not None:
+                    return out
+            return self._full(cost, a_ub, b_ub)
         if status != 0 or res.x is None:
             return LPResult(None, status, nit, str(res.message))
-        x = np.clip(res.x.reshape(c, j), 0.0, None)
-        if pure:
-            x = np.round(x)
+        x = np.round(np.clip(res.x.reshape(c, j), 0.0, None))
         x = x / x.sum(axis=1, keepdims=True)
         return LPResult(x, 0, nit, str(res.message))
+
+    def _linprog(self, cost, a_ub, b_ub, a_eq, upper):
+        return linprog(
+            cost,
+            A_ub=a_ub if a_ub.shape[0] else None,
+            b_ub=b_ub if a_ub.shape[0] else None,
+            A_eq=a_eq,
+            b_eq=np.ones(a_eq.shape[0]),
+            bounds=np.column_stack([np.zeros(cost.size), upper]),
+            method="highs-ds",
+            options={"presolve": self.presolve},
+        )
+
+    def _full(self, cost, a_ub, b_ub) -> LPResult:
+        c, j = self.shape
+        res = self._linprog(cost, a_ub, b_ub, self.a_eq, self.upper)
+        if res.status != 0 or res.x is None:
+            return LPResult(None, int(res.status), int(res.nit), str(res.message))
+        x = np.clip(res.x.reshape(c, j), 0.0, None)
+        x = x / x.sum(axis=1, keepdims=True)
+        duals = -res.ineqlin.marginals if a_ub.shape[0] else np.zeros(0)
+        return LPResult(x, 0, int(res.nit), str(res.message), np.maximum(duals, 0.0))
+
+    def _restricted(self, cost, a_ub, b_ub, duals) -> LPResult | None:
+        """Exact LP solve by a restricted problem and a pricing check (LP duality; e.g.
+        Bertsimas and Tsitsiklis 1997, ch. 4 and 6): with multipliers lambda of the R coupling
+        rows, each cohort's best arm minimizes cost_cj + lambda . a_cj. Cohorts with a clear best
+        arm under warm multipliers (from a nearby problem) are fixed to it; the LP over the
+        others gives new multipliers; if every fixed cohort's arm is still a minimizer of its
+        reduced cost, primal and dual feasibility with complementary slackness hold, so the
+        combined point is optimal for the full LP. Otherwise the offenders are freed and the
+        loop repeats; None (fall back to the full LP) if it does not settle."""
+        c, j = self.shape
+        big = np.where(self.upper.reshape(c, j) > 0, 0.0, np.inf)
+        cost2 = cost.reshape(c, j)
+        a3 = a_ub.reshape(a_ub.shape[0], c, j)
+        score = cost2 + np.einsum("r,rcj->cj", duals, a3) + big
+        order = np.sort(score, axis=1)
+        margin = order[:, 1] - order[:, 0] if j > 1 else np.full(c, np.inf)
+        n_free = min(c, max(4 * a_ub.shape[0] + 32, c // 20))
+        free = np.zeros(c, dtype=bool)
+        free[np.argsort(margin)[:n_free]] = True
+        tol = 1e-7 * max(1.0, float(np.abs(cost).max(initial=0.0)))  # HiGHS dual tolerance
+        nit = 0
+        for rounds in range(1, 9):
+            fixed_arm = np.argmin(score, axis=1)
+            fixed = ~free
+            fx = np.flatnonzero(fixed)
+            used = a3[:, fx, fixed_arm[fx]].sum(axis=1) if fx.size else np.zeros(a3.shape[0])
+            fr = np.flatnonzero(free)
+            cols = (fr[:, None] * j + np.arange(j)).ravel()
+            res = self._linprog(
+                cost[cols], a_ub[:, cols], b_ub - used, simplex_rows(fr.size, j), self.upper[cols]
+            )
+            nit += int(res.nit)
+            if res.status != 0 or res.x is None:
+                if free.all():
+                    return None
+                free |= margin <= np.sort(margin)[min(c - 1, 2 * free.sum())]
+                continue
+            lam = np.maximum(-res.ineqlin.marginals, 0.0)
+            score = cost2 + np.einsum("r,rcj->cj", lam, a3) + big
+            best = score.min(axis=1)
+            chosen = score[fx, fixed_arm[fx]]
+            bad = fx[chosen > best[fx] + tol]
+            if bad.size == 0:
+                x = np.zeros((c, j))
+                x[fx, fixed_arm[fx]] = 1.0
+                x[fr] = np.clip(res.x.reshape(fr.size, j), 0.0, None)
+                x[fr] /= x[fr].sum(axis=1, keepdims=True)
+                return LPResult(x, 0, nit, str(res.message), lam, rounds)
+            free[bad] = True
+            score_margin = np.sort(score, axis=1)
+            margin = score_margin[:, 1] - score_margin[:, 0] if j > 1 else margin
+        return None
 
 
 def simplex_rows(c: int, j: int) -> sp.csr_matrix:
