@@ -10,7 +10,7 @@ back, verify the audit chain, and print a report that compares the plan with the
 scenario's effect functions evaluated on the plan's allocation per learner (`true_lifts`), the
 oracle plan and the best single arm that meets the guardrails.
 
-    python -m service.demo.run [--learners 200000] [--seed 7] [--serve] [--port 8000]
+    python -m service.demo.run [--learners 200000] [--seed 1] [--serve] [--port 8000]
 """
 
 from __future__ import annotations
@@ -199,7 +199,7 @@ def truth_table(
 def run_demo(
     *,
     learners: int = 200_000,
-    seed: int = 7,
+    seed: int = 1,
     port: int = 8000,
     draws: int = 200,
     serve: bool = False,
@@ -470,7 +470,7 @@ def main(argv: list[str] | None = None) -> int:
         prog="python -m service.demo.run", description=__doc__.split("\n")[0]
     )
     p.add_argument("--learners", type=int, default=200_000, help="simulated learners")
-    p.add_argument("--seed", type=int, default=7)
+    p.add_argument("--seed", type=int, default=1)
     p.add_argument("--port", type=int, default=8000, help="default 8000, or a free one if taken")
     p.add_argument("--draws", type=int, default=200, help="bootstrap draws of the impact report")
     p.add_argument(
