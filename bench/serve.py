@@ -10,15 +10,20 @@ an approver who is not the author, activate. Then, with the load generator `wrk`
 - `POST /v1/plans/{plan}/assign`, cycling through `--members` different learners' bodies;
 - `GET /v1/bare`, a constant body through the same app and middleware: the reference.
 
-Both runs hit the same process with the same settings, so `assign_over_bare_rps` and
-`assign_p99_over_bare_p99` say what the lookup itself costs on top of the HTTP stack. Then the
-10,000-member `POST .../assign/batch` end to end (median of `--repeats`, body pre-encoded; the time
-is send + full response received), then, with the server stopped, bench/serve_inprocess.py's
-`measure()` (single assign median, 10k batch) in this process.
+Both routes hit the same process with the same settings, in `--rounds` alternating bare/assign
+pairs (machine load drifts; the medians over rounds are reported, the ratios are medians of the
+per-round ratios), so `assign_over_bare_rps` and `assign_p99_over_bare_p99` say what the lookup
+costs on top of the HTTP stack. `*_server_cpu_us` is the server's CPU time (/proc, all threads)
+per request during the run: less sensitive to other work on the machine than requests/s.
+`loadavg_1m_before` records how busy the machine already was. Then the 10,000-member
+`POST .../assign/batch` end to end (median of `--repeats`, body pre-encoded; the time is send +
+full response received), then, with the server stopped, bench/serve_inprocess.py's `measure()`
+(single assign median, 10k batch on its random depth-8 tree) in this process.
 
 Prints ONE JSON line. Needs `wrk` on PATH (Debian package `wrk`); the server and wrk share the
 machine's cores, so the figures are for that shared setting. `--profile DIR` also records the
-server with py-spy (if installed) during an extra assign run and writes collapsed stacks there.
+server with py-spy (wall time; if installed) during one extra run of each route and writes
+collapsed stacks DIR/serve_bare.collapsed and DIR/serve_assign.collapsed.
 """
 
 from __future__ import annotations
@@ -233,37 +238,43 @@ def http_batch(c: httpx.Client, h: dict[str, str], members: list[dict], repeats:
     return {"median_ms": statistics.median(times), "min_ms": min(times)}
 
 
-def profile_assign(
-    pid: int, out_dir: Path, url: str, auth: str, seconds: int, conns: int, bodies: Path
-) -> str | None:
+def profile_runs(
+    pid: int, out_dir: Path, runs: dict[str, tuple[str, Path | None]], auth: str, a: Any
+) -> dict[str, Any] | None:
+    """py-spy the server (wall time, 200 Hz, native frames off) during one extra wrk run per
+    route; collapsed stacks go to DIR/serve_<route>.collapsed. Returns requests and samples."""
     spy = shutil.which("py-spy") or str(ROOT / ".venv" / "bin" / "py-spy")
     if not Path(spy).exists():
         return None
     out_dir.mkdir(parents=True, exist_ok=True)
-    dest = out_dir / "serve_assign.collapsed"
-    rec = subprocess.Popen(
-        [
-            spy,
-            "record",
-            "-p",
-            str(pid),
-            "-d",
-            str(seconds + 1),
-            "-r",
-            "200",
-            "-f",
-            "raw",
-            "-o",
-            str(dest),
-            "--nonblocking",
-        ],  # fmt: skip
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    time.sleep(1.0)
-    run_wrk(url, auth, seconds, conns, bodies)
-    rec.wait(timeout=seconds + 60)
-    return str(dest)
+    out: dict[str, Any] = {}
+    for name, (url, bodies) in runs.items():
+        dest = out_dir / f"serve_{name}.collapsed"
+        rec = subprocess.Popen(
+            [
+                spy,
+                "record",
+                "-p",
+                str(pid),
+                "-d",
+                str(a.seconds),
+                "-r",
+                "200",
+                "-f",
+                "raw",
+                "-o",
+                str(dest),
+                "--nonblocking",
+            ],  # fmt: skip
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
+        time.sleep(0.5)
+        r = run_wrk(url, auth, a.seconds - 1, a.connections, bodies, pid)
+        rec.wait(timeout=a.seconds + 60)
+        samples = sum(int(line.rsplit(" ", 1)[1]) for line in dest.read_text().splitlines())
+        out[name] = {"file": str(dest), "requests": r["requests"], "samples": samples}
+    return out
 
 
 def main() -> None:
@@ -324,9 +335,8 @@ def main() -> None:
             batch = http_batch(c, keys["reader"], members[: a.batch], a.repeats)
             prof = None
             if a.profile is not None:
-                prof = profile_assign(
-                    server.pid, a.profile, assign_url, auth, a.seconds, a.connections, bodies
-                )
+                runs = {"bare": (bare_url, None), "assign": (assign_url, bodies)}
+                prof = profile_runs(server.pid, a.profile, runs, auth, a)
     finally:
         _stop(server)
     for s, b in rounds:
