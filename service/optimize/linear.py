@@ -183,11 +183,12 @@ def linearize(
         harm[i] = 1.0 if m.direction == "lower" else -1.0
         W[i] = harm[i] * weights(m, t_abs)
         rhs[i] = harm[i] * t_abs
-    G = np.einsum("kq,cjq->kcj", W, mu)
-    wc = np.einsum("kq,cjqr->cjkr", W, cov, optimize=True)  # (C, J, K, Q)
-    V = np.einsum("cjkr,kr,cj->kcj", wc, W, inv_n, optimize=True)
+    c, j = avail.shape
+    G = (mu.reshape(c * j, q) @ W.T).T.reshape(k, c, j)
+    wc = np.matmul(cov.reshape(c * j, q, q), W.T)  # (CJ, Q, K): cov W'
+    V = (np.einsum("nqk,kq->kn", wc, W) * inv_n.reshape(-1)).reshape(k, c, j)
     cellcov = (
-        np.einsum("cjkr,lr,cj->cjkl", wc, W, inv_n, optimize=True)
+        (np.matmul(W[None], wc) * inv_n.reshape(-1, 1, 1)).reshape(c, j, k, k)
         if with_cellcov
         else np.empty((0,))
     )
