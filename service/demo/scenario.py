@@ -58,10 +58,15 @@ COMPONENTS = (
     "support_contacts",
 )
 
+# Confidence 0.8 per guardrail (the scenario leaves it to us). With 200,000 learners and the honest
+# half for estimation, the sd of switching everyone is about 3.2 % of the support baseline, so a
+# 95 % plan spends z * sd = 5.2 % of a 5 % allowance on noise alone and keeps most learners on
+# control; at 0.8 the chance plan still broke no true guardrail in 10 of 10 seeds (measured with
+# tests/optimize/test_scenario.py; 0.95 reached 80 % of the oracle in 3 of 10 seeds, 0.8 in 9).
 GUARDRAILS: list[dict[str, Any]] = [
-    {"metric": "abandon_rate", "threshold": 0.01, "unit": "absolute", "confidence": 0.95},
-    {"metric": "cancelled", "threshold": 0.003, "unit": "absolute", "confidence": 0.95},
-    {"metric": "support_contacts", "threshold": 5, "unit": "relative", "confidence": 0.95},
+    {"metric": "abandon_rate", "threshold": 0.01, "unit": "absolute", "confidence": 0.8},
+    {"metric": "cancelled", "threshold": 0.003, "unit": "absolute", "confidence": 0.8},
+    {"metric": "support_contacts", "threshold": 5, "unit": "relative", "confidence": 0.8},
 ]
 
 # Missing values: a small share of the two effect-free features is blanked in the observed data so
