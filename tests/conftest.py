@@ -5,12 +5,11 @@ from __future__ import annotations
 
 import os
 from collections.abc import Iterator
-from dataclasses import dataclass
 
 import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import create_engine, text
-from support import make_settings
+from support import Keys, make_keys, make_settings
 
 PG_URL = os.environ.get("APPORTION_TEST_DATABASE_URL")
 BACKENDS = ["sqlite"] + (["postgresql"] if PG_URL else [])
@@ -35,19 +34,6 @@ def db_url(request: pytest.FixtureRequest, tmp_path) -> str:  # type: ignore[no-
     return _reset_postgres(PG_URL)
 
 
-@dataclass
-class Keys:
-    admin: str
-    approver: str
-    approver2: str
-    analyst: str
-    reader: str
-
-    @staticmethod
-    def h(secret: str) -> dict[str, str]:
-        return {"Authorization": f"Bearer {secret}"}
-
-
 @pytest.fixture
 def app(db_url: str):  # type: ignore[no-untyped-def]
     from service.app import create_app
@@ -63,18 +49,4 @@ def client(app) -> Iterator[TestClient]:  # type: ignore[no-untyped-def]
 
 @pytest.fixture
 def keys(client: TestClient) -> Keys:
-    from service.usecases.auth import SYSTEM, create_key
-
-    services = client.app.state.services  # type: ignore[attr-defined]
-    made = {}
-    for name, role in [
-        ("admin", "admin"),
-        ("approver", "approver"),
-        ("approver2", "approver"),
-        ("analyst", "analyst"),
-        ("reader", "reader"),
-    ]:
-        _, secret = create_key(services.db, name=f"t-{name}", role=role, actor=SYSTEM)
-        made[name] = secret
-    services.keys.refresh()
-    return Keys(**made)
+    return make_keys(client.app.state.services)  # type: ignore[attr-defined]

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from service.config import Settings
@@ -115,3 +117,31 @@ def draft_plan(client, keys, model_id: int, plan: str = "lesson-length", **overr
     r = client.post(f"/v1/plans/{plan}/versions", json=body, headers=keys.h(keys.analyst))
     assert r.status_code == 201, r.text
     return r.json()
+
+
+@dataclass
+class Keys:
+    """One secret per role (approver2 is a second approver, for the author-may-not-approve rule)."""
+
+    admin: str
+    approver: str
+    approver2: str
+    analyst: str
+    reader: str
+
+    @staticmethod
+    def h(secret: str) -> dict[str, str]:
+        return {"Authorization": f"Bearer {secret}"}
+
+
+def make_keys(services, prefix: str = "t") -> Keys:  # type: ignore[no-untyped-def]
+    """Keys of every role made directly in the app's database, named `{prefix}-{role}`."""
+    from service.usecases.auth import SYSTEM, create_key
+
+    made = {}
+    for name in ("admin", "approver", "approver2", "analyst", "reader"):
+        _, made[name] = create_key(
+            services.db, name=f"{prefix}-{name}", role=name.rstrip("2"), actor=SYSTEM
+        )
+    services.keys.refresh()
+    return Keys(**made)

@@ -8,7 +8,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import pytest
-from support import make_settings
+from support import make_keys, make_settings
 
 from service.cli.main import main
 
@@ -24,21 +24,11 @@ class Live:
 def live(db_url: str) -> Iterator[Live]:
     from service.app import create_app
     from service.demo.run import serve_in_thread
-    from service.usecases.auth import SYSTEM, create_key
 
     app = create_app(make_settings(db_url))
     running = serve_in_thread(app, port=0)
     services = app.state.services
-    keys = {}
-    for name, role in [
-        ("admin", "admin"),
-        ("approver", "approver"),
-        ("approver2", "approver"),
-        ("analyst", "analyst"),
-        ("reader", "reader"),
-    ]:
-        _, keys[name] = create_key(services.db, name=f"cli-{name}", role=role, actor=SYSTEM)
-    services.keys.refresh()
+    keys = vars(make_keys(services, prefix="cli"))
     try:
         yield Live(running.url, keys, services)
     finally:

@@ -35,23 +35,10 @@ SKIP_REASON = (
 
 
 @dataclass
-class Keys:
-    admin: str
-    approver: str
-    approver2: str
-    analyst: str
-    reader: str
-
-    @staticmethod
-    def h(secret: str) -> dict[str, str]:
-        return {"Authorization": f"Bearer {secret}"}
-
-
-@dataclass
 class Live:
     base: str
     client: httpx.Client
-    keys: Keys
+    keys: Any  # support.Keys
     services: Any
 
 
@@ -59,10 +46,9 @@ class Live:
 def live_server(db_url: str) -> Iterator[Live]:
     """Start the app on a free port; yield when it answers /healthz; stop it on exit."""
     import uvicorn
-    from support import make_settings
+    from support import make_keys, make_settings
 
     from service.app import create_app
-    from service.usecases.auth import SYSTEM, create_key
 
     app = create_app(make_settings(db_url))
     sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
@@ -79,15 +65,10 @@ def live_server(db_url: str) -> Iterator[Live]:
             raise RuntimeError("the test server did not start")
         time.sleep(0.02)
     services = app.state.services
-    made = {}
-    for role in ("admin", "approver", "approver2", "analyst", "reader"):
-        _, made[role] = create_key(
-            services.db, name=f"t-{role}", role=role.rstrip("2"), actor=SYSTEM
-        )
-    services.keys.refresh()
+    keys = make_keys(services)
     client = httpx.Client(base_url=base, timeout=60)
     try:
-        yield Live(base=base, client=client, keys=Keys(**made), services=services)
+        yield Live(base=base, client=client, keys=keys, services=services)
     finally:
         client.close()
         server.should_exit = True
