@@ -23,7 +23,8 @@ from __future__ import annotations
 from bisect import bisect_right
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from itertools import repeat
+from itertools import compress, repeat
+from operator import itemgetter
 from types import MappingProxyType
 from typing import Any
 
@@ -372,15 +373,37 @@ class CompiledPlan:
         self, member_ids: Sequence[Any], features: Sequence[Mapping[str, Any]]
     ) -> list[Assignment]:
         """One assignment per member, equal to `assign` member by member (row-wise input)."""
+        return _expand(*self.assign_batch_compact(member_ids, features))
+
+    def assign_batch_compact(
+        self, member_ids: Sequence[Any], features: Sequence[Mapping[str, Any]]
+    ) -> tuple[list[Assignment], np.ndarray]:
+        """`assign_batch` as (distinct answers (k,), index (n,) intp): member i's assignment is
+        `distinct[index[i]]`. Lets a caller encode or count each distinct answer once."""
         n = len(member_ids)
         if len(features) != n:
             raise InvalidInput(
                 f"got {n} member ids but {len(features)} feature objects",
                 errors=[{"field": "features", "expected": n, "got": len(features)}],
             )
-        rows = list(features)
-        if set(map(type, rows)) <= {dict}:
-            columns = {k: list(map(dict.get, rows, repeat(k, n))) for k in self._feature_keys}
+        rows = features if type(features) is list else list(features)
+        keys = self._feature_keys
+        if len(keys) > 1 and set(map(type, rows)) <= {dict}:
+            # one pass over the dicts (row by row: each dict is touched once, while it is in
+            # cache), all keys of a row in one C call; a row lacking a key takes dict.get
+            pick = itemgetter(*keys)
+            values: list[tuple[Any, ...]] = []
+            append = values.append
+            for r in rows:
+                try:
+                    append(pick(r))
+                except KeyError:
+                    append(tuple(map(r.get, keys)))
+            columns: Mapping[str, Sequence[Any]] = dict(
+                zip(keys, zip(*values, strict=True), strict=False)
+            )
+        elif set(map(type, rows)) <= {dict}:
+            columns = {k: list(map(dict.get, rows, repeat(k, n))) for k in keys}
         else:
             for i, m in enumerate(rows):
                 if not isinstance(m, Mapping):
@@ -389,8 +412,8 @@ class CompiledPlan:
                         f"got {type(m).__name__}",
                         errors=[{"field": "features", "index": i}],
                     )
-            columns = {k: [m.get(k) for m in rows] for k in self._feature_keys}
-        return self.assign_columns(member_ids, columns)
+            columns = {k: [m.get(k) for m in rows] for k in keys}
+        return self.assign_columns_compact(member_ids, columns)
 
     def assign_columns(
         self, member_ids: Sequence[Any], columns: Mapping[str, Sequence[Any]]
@@ -398,6 +421,13 @@ class CompiledPlan:
         """The batch path on columnar input: `columns[key][i]` is member i's value (None or NaN
         for missing; an absent column is missing for everyone). Columns not in the plan are
         ignored."""
+        return _expand(*self.assign_columns_compact(member_ids, columns))
+
+    def assign_columns_compact(
+        self, member_ids: Sequence[Any], columns: Mapping[str, Sequence[Any]]
+    ) -> tuple[list[Assignment], np.ndarray]:
+        """`assign_columns` as (distinct answers (k,), index (n,) intp), see
+        `assign_batch_compact`."""
         n = len(member_ids)
         members = _normalise_ids(member_ids)
         for key, col in columns.items():
@@ -407,22 +437,26 @@ class CompiledPlan:
                     errors=[{"field": f"features.{key}", "expected": n, "got": len(col)}],
                 )
         if n == 0:
-            return []
+            return [], np.zeros(0, dtype=np.intp)
         xnum, xcat = self._encode_columns(members, columns, n)
         cohort, used = self._walk(xnum, xcat, n)
 
-        encoded = [m.encode("utf-8") for m in members]
-        holdout = np.zeros(n, dtype=bool)
+        encoded = list(map(str.encode, members))  # UTF-8
+        arm = np.full(n, self._holdout_index, dtype=np.intp)
         if self.holdout_share > 0.0:
             holdout = uniforms_from_state(self._holdout_state, encoded) < self.holdout_share
-        arm = np.full(n, self._holdout_index, dtype=np.intp)
-        rest = np.flatnonzero(~holdout)
+            rest = np.flatnonzero(~holdout)
+            plan_ids: Any = compress(encoded, (~holdout).tolist())
+        else:
+            holdout = np.zeros(n, dtype=bool)
+            rest = np.arange(n, dtype=np.intp)
+            plan_ids = encoded
         if rest.size:
-            u2 = uniforms_from_state(self._arm_state, [encoded[i] for i in rest.tolist()])
+            u2 = uniforms_from_state(self._arm_state, plan_ids)
             cum = self.cumulative[cohort[rest]]  # (r, J)
             arm[rest] = (u2[:, None] >= cum).sum(axis=1)  # = bisect_right per row
 
-        return self._materialise(arm, cohort, holdout, used, n)
+        return self._distinct(arm, cohort, holdout, used, n)
 
     def _encode_columns(
         self, members: list[str], columns: Mapping[str, Sequence[Any]], n: int
@@ -437,7 +471,8 @@ class CompiledPlan:
             col = columns.get(key)
             if col is None:
                 continue
-            col = list(col)
+            if type(col) is not list and type(col) is not tuple:
+                col = list(col)
             kinds = set(map(type, col))
             if numeric:
                 if kinds <= {float, int, _NoneType}:
@@ -482,44 +517,52 @@ class CompiledPlan:
             node = child.take(2 * node + go_left)
         return self.node_cohort[node], used
 
-    def _materialise(
+    def _distinct(
         self, arm: np.ndarray, cohort: np.ndarray, holdout: np.ndarray, used: np.ndarray, n: int
-    ) -> list[Assignment]:
-        """Assignment objects; equal answers share one immutable object, so a batch builds only
-        as many objects as it has distinct (arm, cohort, holdout, defaults) combinations."""
+    ) -> tuple[list[Assignment], np.ndarray]:
+        """Distinct Assignment objects (ascending by (defaults pattern, cohort, holdout, arm))
+        and each member's index into them: a batch builds only as many immutable objects as it
+        has distinct answers, and equal answers share one object. Integer codes are grouped
+        with a dense table (O(n)) when their range is small, else with np.unique."""
         keys = self._feature_keys
+        nf = len(keys)
         names: list[tuple[str, ...]] = [()]
         pattern = np.zeros(n, dtype=np.intp)
         if used.any():
             rows = np.packbits(used, axis=0, bitorder="little")  # (ceil(F / 8), n) uint8
-            if rows.shape[0] <= 7:  # the bit pattern as one int64: a cheap 1-d unique
-                packed = np.zeros(n, dtype=np.int64)
-                for b in range(rows.shape[0]):
+            if rows.shape[0] <= 7:  # the bit pattern as one int64: bit j = feature j
+                packed = rows[0].astype(np.int64)
+                for b in range(1, rows.shape[0]):
                     packed |= rows[b].astype(np.int64) << (8 * b)
-                _, first_p, pattern = np.unique(packed, return_index=True, return_inverse=True)
+                bits, pattern = _group(packed, 1 << nf)
+                names = [tuple(keys[j] for j in range(nf) if p >> j & 1) for p in bits.tolist()]
             else:
                 _, first_p, pattern = np.unique(
                     used.T, axis=0, return_index=True, return_inverse=True
                 )
-            pattern = pattern.reshape(-1)
-            names = [
-                tuple(keys[j] for j in np.flatnonzero(used[:, i]).tolist())
-                for i in first_p.tolist()
-            ]
-        code = ((pattern * self.n_cohorts + cohort) * 2 + holdout) * len(self.arm_keys) + arm
-        _, first, inverse = np.unique(code, return_index=True, return_inverse=True)
+                pattern = pattern.reshape(-1)
+                names = [
+                    tuple(keys[j] for j in np.flatnonzero(used[:, i]).tolist())
+                    for i in first_p.tolist()
+                ]
+        n_arms, n_cohorts = len(self.arm_keys), self.n_cohorts
+        code = ((pattern * n_cohorts + cohort) * 2 + holdout) * n_arms + arm
+        vals, inverse = _group(code, len(names) * n_cohorts * 2 * n_arms)
+        rest, a_of = np.divmod(vals, n_arms)  # undo the code: arm, holdout, cohort, pattern
+        rest, h_of = np.divmod(rest, 2)
+        p_of, c_of = np.divmod(rest, n_cohorts)
         arm_keys, version = self.arm_keys, self.version
         objs = [
             Assignment(arm_keys[a], c, version, h, names[p])
             for a, c, h, p in zip(
-                arm[first].tolist(),
-                cohort[first].tolist(),
-                holdout[first].tolist(),
-                pattern[first].tolist(),
+                a_of.tolist(),
+                c_of.tolist(),
+                h_of.astype(bool).tolist(),
+                p_of.tolist(),
                 strict=True,
             )
         ]
-        return [objs[i] for i in inverse.reshape(-1).tolist()]
+        return objs, inverse
 
 
 def compile_plan(
@@ -558,6 +601,28 @@ def _frozen(a: np.ndarray) -> np.ndarray:
     a = np.array(a, copy=True)
     a.setflags(write=False)
     return a
+
+
+def _group(code: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """(ascending distinct values, inverse (n,) intp) of non-negative int codes below `size`:
+    `np.unique(code, return_inverse=True)`, in O(n + size) by a table when `size` is small."""
+    n = code.shape[0]
+    if size <= max(1 << 16, 4 * n):
+        seen = np.zeros(size, dtype=bool)
+        seen[code] = True
+        vals = np.flatnonzero(seen)
+        remap = np.zeros(size, dtype=np.intp)
+        remap[vals] = np.arange(vals.size, dtype=np.intp)
+        return vals, remap.take(code)
+    vals, inverse = np.unique(code, return_inverse=True)
+    return vals, inverse.reshape(-1).astype(np.intp, copy=False)
+
+
+def _expand(distinct: list[Assignment], index: np.ndarray) -> list[Assignment]:
+    """[distinct[i] for i in index], gathered by numpy on an object array."""
+    table = np.empty(len(distinct), dtype=object)
+    table[:] = distinct
+    return table.take(index).tolist()
 
 
 def _normalise_ids(member_ids: Sequence[Any]) -> list[str]:
