@@ -14,8 +14,8 @@ fifteen_min effect between the two children over its standard error:
 
 * `tenure_days < 30`, cancelled, at the root: difference 0.0050, se 0.0047, z = 1.06. No tree can
   find it at this size (z = 4 needs about 14 times the learners, ~2.9 million).
-* `streak_days >= 7` inside the advanced learners: difference 0.45 days, se 0.065, z = 6.9; it wins
-  clearly once a node holds only advanced learners (neighbouring thresholds: z = 6.0 at 6, 6.2 at 8).
+* `streak_days >= 7` inside the advanced learners: difference 0.45 days, se 0.065, z = 6.9; it
+  wins clearly once a node holds only advanced learners (neighbours: z = 6.0 at 6, 6.2 at 8).
 * But reaching that node needs a split with little power: advanced against intermediate, z = 3.7
   (or streak >= 7 on intermediate and advanced together, z = 3.7, diluted by the intermediates).
   The honest criterion (Athey and Imbens 2016) charges every split the estimation variance it adds
@@ -24,10 +24,10 @@ fifteen_min effect between the two children over its standard error:
   z^2 = 13.7 signal in one pair against a penalty of 12 has an expected net gain near 0, and the
   11 pairs without heterogeneity add chi-square noise (sd sqrt(2 * 11) = 4.7 units) to it.
   Measured at 200,000 learners, default settings: a streak threshold in [5, 9] in 3 of 10 seeds
-  (thresholds seen 3..17). Other settings, measured the same way (streak in [5, 9] / device used / decoys, of 10):
-  success-metric weight 2: 5 / 8 / 1; weight 3: 4 / 5 / 1; weight 6: 4 / 1 / 0; max_bins 16 or 32:
-  3 / 10 / 1 or 0; min_units_per_arm 250 or 500: 4 / 10 / 1; cv_folds 10: 5 / 9 / 3. None reaches
-  9 of 10 without losing `device` or adding decoys, so the defaults stay.
+  (thresholds seen 3..17). Other settings, measured the same way (streak in [5, 9] / device used /
+  decoys, of 10): success-metric weight 2: 5 / 8 / 1; weight 3: 4 / 5 / 1; weight 6: 4 / 1 / 0;
+  max_bins 16 or 32: 3 / 10 / 1 or 0; min_units_per_arm 250 or 500: 4 / 10 / 1; cv_folds 10:
+  5 / 9 / 3. None reaches 9 of 10 without losing `device` or adding decoys: the defaults stay.
   At 800,000 learners the advanced split has z = 7.4 (z^2 = 55 >> 12) and the streak threshold
   landed in [5, 9] in 5 of 5 seeds measured (seeds 0-4).
 """
