@@ -97,7 +97,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.services = services
     problems.install(app)
-    for r in (health, keys, audit, experiments, models, jobs, plans, assign, watch, ui):
+    # the lookup routes first: route matching walks the routers in this order
+    for r in (assign, health, keys, audit, experiments, models, jobs, plans, watch, ui):
         app.include_router(r.router)
     app.add_middleware(RequestContextMiddleware)
     return app

@@ -6,8 +6,10 @@ a second; the request schema is still declared for the OpenAPI document."""
 from __future__ import annotations
 
 import json
+from itertools import repeat
 from typing import Any
 
+import numpy as np
 from fastapi import APIRouter, Request
 from fastapi.responses import Response
 from pydantic import BaseModel, Field
@@ -41,13 +43,61 @@ class BatchOut(BaseModel):
     assignments: list[AssignOut]
 
 
-def _body_schema(model: type[BaseModel]) -> dict[str, Any]:
+# `plan` is read from request.path_params (a declared path parameter costs FastAPI a validation
+# pass per request); the OpenAPI document still describes it, as FastAPI would.
+_PLAN_PARAMETER = {
+    "in": "path",
+    "name": "plan",
+    "required": True,
+    "schema": {"title": "Plan", "type": "string"},
+}
+_VALIDATION_RESPONSE = {
+    "description": "Validation Error",
+    "content": {
+        "application/json": {"schema": {"$ref": "#/components/schemas/HTTPValidationError"}}
+    },
+}
+
+
+def _openapi(model: type[BaseModel]) -> dict[str, Any]:
     return {
+        "parameters": [_PLAN_PARAMETER],
         "requestBody": {
             "required": True,
             "content": {"application/json": {"schema": model.model_json_schema()}},
-        }
+        },
+        "responses": {"422": _VALIDATION_RESPONSE},
     }
+
+
+_JSON_HEADER = (b"content-type", b"application/json")
+
+
+class _JsonBytes(Response):
+    """A 200 JSON response from ready bytes, skipping Response's header building."""
+
+    def __init__(self, body: bytes) -> None:
+        self.status_code = 200
+        self.background = None
+        self.body = body
+        self.raw_headers = [(b"content-length", str(len(body)).encode("latin-1")), _JSON_HEADER]
+
+
+# (plan, version, arm) -> the counter child; `labels()` costs more than the increment itself.
+_COUNTERS: dict[tuple[str, int, str], Any] = {}
+# (plan, version, arm, cohort, holdout, defaults) -> (JSON body, counter child) for single lookups.
+_ANSWERS: dict[tuple[Any, ...], tuple[bytes, Any]] = {}
+_MAX_CACHED = 65_536  # both caches are cleared when full (old plan versions drop out)
+
+
+def _counter(plan: str, version: int, arm: str) -> Any:
+    key = (plan, version, arm)
+    child = _COUNTERS.get(key)
+    if child is None:
+        if len(_COUNTERS) >= _MAX_CACHED:
+            _COUNTERS.clear()
+        child = _COUNTERS[key] = ASSIGNMENTS.labels(plan, str(version), arm)
+    return child
 
 
 async def _json(request: Request) -> Any:
@@ -62,8 +112,14 @@ async def _json(request: Request) -> Any:
 
 
 def _compiled(request: Request, plan: str) -> Any:
-    services = request.app.state.services
-    actor = services.keys.authenticate_cached(request.headers.get("authorization"))
+    scope = request.scope
+    header = None
+    for k, v in scope["headers"]:  # what request.headers.get does, without building Headers
+        if k == b"authorization":
+            header = v.decode("latin-1")
+            break
+    services = scope["app"].state.services
+    actor = services.keys.authenticate_cached(header)
     check_role(actor, "reader")
     compiled = services.plans.get(plan)
     if compiled is None:
@@ -90,29 +146,59 @@ def _member(item: Any, where: str) -> tuple[str, dict[str, Any]]:
     return str(member), features
 
 
+_ABSENT = object()
+
+
+def _members(items: list[Any]) -> tuple[list[str], list[dict[str, Any]]]:
+    """Ids and feature objects of a batch, checked as `_member` checks each item: whole-list
+    type checks first, and the item-by-item loop only to name the first bad item."""
+    n = len(items)
+    if set(map(type, items)) <= {dict}:
+        ids = list(map(dict.get, items, repeat("member_id", n)))
+        feats = list(map(dict.get, items, repeat("features", n), repeat(_ABSENT, n)))
+        if set(map(type, ids)) <= {str} and all(ids):
+            if _ABSENT in feats:  # "features" may be left out: no features
+                feats = [{} if f is _ABSENT else f for f in feats]
+            if set(map(type, feats)) <= {dict}:
+                return ids, feats
+    pairs = [_member(item, f"members[{i}]") for i, item in enumerate(items)]
+    return [p[0] for p in pairs], [p[1] for p in pairs]
+
+
 @router.post(
     "/v1/plans/{plan}/assign",
     summary="Assign one member",
     response_model=AssignOut,
-    openapi_extra=_body_schema(AssignIn),
+    openapi_extra=_openapi(AssignIn),
     responses={404: {"description": "no live version"}},
 )
-async def assign(plan: str, request: Request) -> Response:
+async def assign(request: Request) -> Response:
+    plan = request.path_params["plan"]
     compiled = _compiled(request, plan)
     member, features = _member(await _json(request), "body")
     a = compiled.assign(member, features)
-    ASSIGNMENTS.labels(plan, str(a.plan_version), a.arm).inc()
-    return Response(json.dumps(a.to_dict()), media_type="application/json")
+    key = (plan, a.plan_version, a.arm, a.cohort, a.holdout, a.defaults_used)
+    hit = _ANSWERS.get(key)
+    if hit is None:
+        if len(_ANSWERS) >= _MAX_CACHED:
+            _ANSWERS.clear()
+        hit = _ANSWERS[key] = (
+            json.dumps(a.to_dict()).encode(),
+            _counter(plan, a.plan_version, a.arm),
+        )
+    hit[1].inc()
+    return _JsonBytes(hit[0])
 
 
 @router.post(
     "/v1/plans/{plan}/assign/batch",
     summary="Assign up to 10,000 members in one call",
     response_model=BatchOut,
-    openapi_extra=_body_schema(BatchIn),
+    openapi_extra=_openapi(BatchIn),
     responses={404: {"description": "no live version"}},
 )
-async def assign_batch(plan: str, request: Request) -> Response:
+async def assign_batch(request: Request) -> Response:
+    plan = request.path_params["plan"]
     compiled = _compiled(request, plan)
     body = await _json(request)
     items = body.get("members") if isinstance(body, dict) else None
@@ -126,16 +212,19 @@ async def assign_batch(plan: str, request: Request) -> Response:
             f"a batch holds at most {MAX_BATCH} members; got {len(items)}",
             errors=[{"field": "members"}],
         )
-    pairs = [_member(item, f"members[{i}]") for i, item in enumerate(items)]
-    out = compiled.assign_batch([p[0] for p in pairs], [p[1] for p in pairs])
+    ids, feats = _members(items)
+    distinct, index = compiled.assign_batch_compact(ids, feats)
     counts: dict[str, int] = {}
-    for a in out:
-        counts[a.arm] = counts.get(a.arm, 0) + 1
-    for arm, n in counts.items():
-        ASSIGNMENTS.labels(plan, str(compiled.version), arm).inc(n)
-    return Response(
-        json.dumps({"assignments": [a.to_dict() for a in out]}), media_type="application/json"
-    )
+    for a, k in zip(distinct, np.bincount(index, minlength=len(distinct)).tolist(), strict=True):
+        counts[a.arm] = counts.get(a.arm, 0) + k
+    for arm, k in counts.items():
+        _counter(plan, compiled.version, arm).inc(k)
+    # each distinct answer is encoded once; the body is byte for byte what
+    # json.dumps({"assignments": [a.to_dict() for a in out]}) gives
+    parts = np.empty(len(distinct), dtype=object)
+    parts[:] = [json.dumps(a.to_dict()) for a in distinct]
+    body_out = '{"assignments": [' + ", ".join(parts.take(index).tolist()) + "]}"
+    return _JsonBytes(body_out.encode())
 
 
 @router.get("/v1/bare", include_in_schema=False)
