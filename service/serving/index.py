@@ -22,7 +22,7 @@ from __future__ import annotations
 
 from bisect import bisect_right
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from itertools import compress, repeat
 from operator import itemgetter
 from types import MappingProxyType
@@ -73,6 +73,29 @@ class Assignment:
             "holdout": self.holdout,
             "defaults_used": list(self.defaults_used),
         }
+
+
+_FIELDS = tuple(f.name for f in fields(Assignment))
+
+
+def _new_assignment(
+    arm: str, cohort: int, plan_version: int, holdout: bool, defaults_used: tuple[str, ...]
+) -> Assignment:
+    """`Assignment(...)`, three times cheaper: the frozen dataclass's __init__ sets each field
+    through object.__setattr__; this fills the instance dict directly (the batch path builds one
+    object per distinct answer, often a thousand)."""
+    a = object.__new__(Assignment)
+    d = a.__dict__
+    d["arm"] = arm
+    d["cohort"] = cohort
+    d["plan_version"] = plan_version
+    d["holdout"] = holdout
+    d["defaults_used"] = defaults_used
+    return a
+
+
+if _FIELDS != ("arm", "cohort", "plan_version", "holdout", "defaults_used"):  # kept in step
+    raise RuntimeError(f"_new_assignment does not fill the fields {_FIELDS} of Assignment")
 
 
 # ---- value checks shared by the single and the batch path ---------------------------------------
@@ -552,16 +575,16 @@ class CompiledPlan:
         rest, h_of = np.divmod(rest, 2)
         p_of, c_of = np.divmod(rest, n_cohorts)
         arm_keys, version = self.arm_keys, self.version
-        objs = [
-            Assignment(arm_keys[a], c, version, h, names[p])
-            for a, c, h, p in zip(
-                a_of.tolist(),
+        objs = list(
+            map(
+                _new_assignment,
+                map(arm_keys.__getitem__, a_of.tolist()),
                 c_of.tolist(),
+                repeat(version, vals.size),
                 h_of.astype(bool).tolist(),
-                p_of.tolist(),
-                strict=True,
+                map(names.__getitem__, p_of.tolist()),
             )
-        ]
+        )
         return objs, inverse
 
 
@@ -628,7 +651,7 @@ def _expand(distinct: list[Assignment], index: np.ndarray) -> list[Assignment]:
 def _normalise_ids(member_ids: Sequence[Any]) -> list[str]:
     ids = list(member_ids)
     if set(map(type, ids)) <= {str}:
-        out = [m.strip() for m in ids]
+        out = list(map(str.strip, ids))
         if all(out):
             return out
     out = []
