@@ -13,6 +13,7 @@ import numpy as np
 from fastapi import APIRouter, Request
 from fastapi.responses import Response
 from pydantic import BaseModel, Field
+from starlette.requests import ClientDisconnect
 
 from service.errors import InvalidInput, NotFound
 from service.observability import ASSIGNMENTS
@@ -100,8 +101,26 @@ def _counter(plan: str, version: int, arm: str) -> Any:
     return child
 
 
+async def _body(request: Request) -> bytes:
+    """The request body, read straight from the ASGI receive channel (what `request.body()`
+    does, without its async generator); kept on the request so a later `body()` still works."""
+    receive = request.receive
+    chunks: list[bytes] = []
+    while True:
+        message = await receive()
+        if message["type"] == "http.request":
+            chunks.append(message.get("body", b""))
+            if not message.get("more_body", False):
+                break
+        elif message["type"] == "http.disconnect":
+            raise ClientDisconnect()
+    raw = chunks[0] if len(chunks) == 1 else b"".join(chunks)
+    request._body = raw  # Starlette's own cache of the body
+    return raw
+
+
 async def _json(request: Request) -> Any:
-    raw = await request.body()
+    raw = await _body(request)
     try:
         return json.loads(raw)
     except ValueError as exc:
