@@ -413,18 +413,21 @@ class CompiledPlan:
         keys = self._feature_keys
         if len(keys) > 1 and set(map(type, rows)) <= {dict}:
             # one pass over the dicts (row by row: each dict is touched once, while it is in
-            # cache), all keys of a row in one C call; a row lacking a key takes dict.get
-            pick = itemgetter(*keys)
-            values: list[tuple[Any, ...]] = []
-            append = values.append
+            # cache), all keys of a row in one C call; a row lacking a key takes dict.get. The
+            # values go into one flat row-major list, so no object per row outlives the loop
+            # (10,000 live tuples would set off the garbage collector a dozen times).
+            pick, nk = itemgetter(*keys), len(keys)
+            flat: list[Any] = []
+            extend = flat.extend
             for r in rows:
+                if len(r) < nk:  # certainly lacks a key: skip the KeyError
+                    extend(map(r.get, keys))
+                    continue
                 try:
-                    append(pick(r))
+                    extend(pick(r))
                 except KeyError:
-                    append(tuple(map(r.get, keys)))
-            columns: Mapping[str, Sequence[Any]] = dict(
-                zip(keys, zip(*values, strict=True), strict=False)
-            )
+                    extend(map(r.get, keys))
+            columns: Mapping[str, Sequence[Any]] = {k: flat[j::nk] for j, k in enumerate(keys)}
         elif set(map(type, rows)) <= {dict}:
             columns = {k: list(map(dict.get, rows, repeat(k, n))) for k in keys}
         else:
