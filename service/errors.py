@@ -2,7 +2,8 @@
 
     ApportionError
     ├── InvalidInput        422  a request or an upload that cannot be accepted (carries `errors`)
-    │   └── Infeasible      422  no allocation satisfies the guardrails (carries per-guardrail bests)
+    │   ├── Infeasible      422  no allocation satisfies the guardrails (carries per-guardrail bests)
+    │   └── UnsupportedMediaType 415  an upload in a format we do not read
     ├── PayloadTooLarge     413
     ├── Unauthenticated     401
     ├── Forbidden           403
@@ -40,6 +41,12 @@ class InvalidInput(ApportionError):
 class Infeasible(InvalidInput):
     title = "No allocation satisfies the guardrails"
     slug = "infeasible"
+
+
+class UnsupportedMediaType(InvalidInput):
+    status = 415
+    title = "Unsupported media type"
+    slug = "unsupported-media-type"
 
 
 class PayloadTooLarge(ApportionError):

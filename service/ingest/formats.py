@@ -18,7 +18,7 @@ import pyarrow.csv as pacsv
 import pyarrow.json as pajson
 import pyarrow.parquet as pq
 
-from service.errors import InvalidInput
+from service.errors import InvalidInput, UnsupportedMediaType
 
 from .problems import Problems
 
@@ -47,11 +47,11 @@ _JSON_MIXED = re.compile(r"Column\(/([^)]*)\) changed from (\w+) to (\w+) in row
 def media_format(content_type: str | None) -> str:
     """'csv', 'parquet' or 'ndjson' for a Content-Type header; parameters (charset...) are ignored.
 
-    Raises InvalidInput carrying `unsupported_media_type` in `extra` (the API answers 415)."""
+    Raises UnsupportedMediaType (an InvalidInput; the API answers 415)."""
     media = (content_type or "").split(";", 1)[0].strip().lower()
     fmt = CONTENT_TYPES.get(media)
     if fmt is None:
-        raise InvalidInput(
+        raise UnsupportedMediaType(
             f"unsupported content type '{media}'; send text/csv, "
             "application/vnd.apache.parquet or application/x-ndjson",
             errors=[

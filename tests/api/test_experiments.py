@@ -169,3 +169,14 @@ def test_unknown_route_and_method_are_problems(client: TestClient, keys) -> None
     assert r.status_code == 404 and r.headers["content-type"].startswith("application/problem+json")
     r = client.put("/v1/experiments", headers=keys.h(keys.reader))
     assert r.status_code == 405 and r.json()["status"] == 405
+
+
+def test_unknown_upload_format_is_415(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
+    _declare(client, keys)
+    r = client.post(
+        "/v1/experiments/checkout-copy/readouts",
+        content=b"<rows/>",
+        headers={**keys.h(keys.analyst), "content-type": "application/xml"},
+    )
+    assert r.status_code == 415 and r.headers["content-type"].startswith("application/problem+json")
+    assert "application/xml" in r.json()["detail"]
