@@ -8,7 +8,8 @@ an approver who is not the author, activate. Then, with the load generator `wrk`
 `--connections` keep-alive connections, `--seconds` each, after a short warm-up):
 
 - `POST /v1/plans/{plan}/assign`, cycling through `--members` different learners' bodies;
-- `GET /v1/bare`, a constant body through the same app and middleware: the reference.
+- `POST /v1/bare` with the same bodies and header, a constant answer through the same app and
+  middleware that does no lookup: the reference.
 
 Both routes hit the same process with the same settings, in `--rounds` alternating bare/assign
 pairs (machine load drifts; the medians over rounds are reported, the ratios are medians of the
@@ -325,17 +326,17 @@ def main() -> None:
             assign_url = f"{base}/v1/plans/{PLAN}/assign"
             bare_url = f"{base}/v1/bare"
             # warm both, then measure alternately bare / assign
-            run_wrk(bare_url, auth, a.warmup, a.connections, None)
+            run_wrk(bare_url, auth, a.warmup, a.connections, bodies)
             run_wrk(assign_url, auth, a.warmup, a.connections, bodies)
             rounds = []
             for _ in range(a.rounds):  # alternate, so drifting machine load hits both alike
-                b = run_wrk(bare_url, auth, a.seconds, a.connections, None, server.pid)
+                b = run_wrk(bare_url, auth, a.seconds, a.connections, bodies, server.pid)
                 s = run_wrk(assign_url, auth, a.seconds, a.connections, bodies, server.pid)
                 rounds.append((s, b))
             batch = http_batch(c, keys["reader"], members[: a.batch], a.repeats)
             prof = None
             if a.profile is not None:
-                runs = {"bare": (bare_url, None), "assign": (assign_url, bodies)}
+                runs = {"bare": (bare_url, bodies), "assign": (assign_url, bodies)}
                 prof = profile_runs(server.pid, a.profile, runs, auth, a)
     finally:
         _stop(server)

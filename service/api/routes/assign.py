@@ -246,9 +246,10 @@ async def assign_batch(request: Request) -> Response:
     return _JsonBytes(body_out.encode())
 
 
-@router.get("/v1/bare", include_in_schema=False)
+@router.api_route("/v1/bare", methods=["GET", "POST"], include_in_schema=False)
 async def bare(request: Request) -> Response:
-    """A constant answer through the same app and middleware: the reference of bench/serve.py."""
+    """A constant answer through the same app and middleware: the reference of bench/serve.py,
+    which POSTs it the same bodies and header as the assign route (the body is not read)."""
     return Response(
         b'{"arm":"control","cohort":0,"plan_version":1,"holdout":false,"defaults_used":[]}',
         media_type="application/json",
