@@ -85,3 +85,18 @@ def test_pure_chance_plan_meets_cones_exactly():
     assert set(np.unique(sol.allocation)) <= {0.0, 1.0}
     assert (cone_values(lin, sol.allocation, lin.z) <= lin.rhs + 1e-12).all()
     assert sol.objective <= solve(problem, "chance").objective + 1e-12
+
+
+def test_chance_plan_holds_by_the_reports_exact_delta_method_check():
+    # a ratio guardrail is linearized with its rate fixed at R(b) + t; the plan is re-solved until
+    # the exact delta-method check (Deng, Knoblich and Lu 2018) that the impact report shows holds
+    # too, within a ten-thousandth of each allowance
+    from service.optimize.linear import linearize
+    from service.optimize.solve import exact_excess
+
+    problem = random_problem(3, n_cohorts=10, n_arms=4, n_guardrails=4)
+    sol = solve(problem, "chance")
+    lin = linearize(problem)
+    excess = exact_excess(problem, sol.allocation)
+    assert (excess <= 1e-4 * abs(lin.rhs) + 1e-15).all(), excess
+    assert any(problem.metric(g.metric).kind == "ratio" for g in problem.guardrails)
