@@ -76,12 +76,15 @@ def live_server(db_url: str) -> Iterator[Live]:
         sock.close()
 
 
-def build_plan(live: Live, *, n: int = 40000, **draft: Any) -> tuple[int, dict[str, Any]]:
-    """The scenario's causal-tree model and a first draft of plan lesson-length (tests/support.py
-    defaults, overridden by `draft`): (model id, version)."""
+def build_plan(
+    live: Live, *, n: int = 40000, params: dict[str, Any] | None = None, **draft: Any
+) -> tuple[int, dict[str, Any]]:
+    """The scenario's causal-tree model (tree `params`, default tests/support.py's) and a first
+    draft of plan lesson-length (tests/support.py defaults, overridden by `draft`): (model id,
+    version)."""
     from support import draft_plan, scenario_model
 
-    model_id = scenario_model(live.client, live.keys, n=n, seed=1)
+    model_id = scenario_model(live.client, live.keys, n=n, seed=1, params=params)
     return model_id, draft_plan(live.client, live.keys, model_id, **draft)
 
 
