@@ -221,6 +221,32 @@ class Api:
     def assign_batch(self, plan: str, members: list[dict[str, Any]]) -> list[dict[str, Any]]:
         return self._post(f"/v1/plans/{plan}/assign/batch", {"members": members})["assignments"]
 
+    # the guardrail watch
+    def monitor(
+        self, plan: str, data: bytes, content_type: str = "text/csv", version: int | None = None
+    ) -> dict[str, Any]:
+        """Upload post-launch rows (member_id, features, holdout, metric columns)."""
+        params = {"version": version} if version is not None else None
+        _, body = self.request(
+            "POST",
+            f"/v1/plans/{plan}/monitor",
+            content=data,
+            headers={"Content-Type": content_type},
+            params=params,
+        )
+        return body
+
+    def watch(self, plan: str) -> dict[str, Any]:
+        return self._get(f"/v1/plans/{plan}/watch")
+
+    def set_auto_rollback(
+        self, plan: str, *, enabled: bool, min_units_per_group: int, reason: str
+    ) -> dict[str, Any]:
+        return self._post(
+            f"/v1/plans/{plan}/auto-rollback",
+            {"enabled": enabled, "min_units_per_group": min_units_per_group, "reason": reason},
+        )
+
     # audit and keys
     def audit(
         self,
@@ -915,6 +941,101 @@ def cmd_assign(args: argparse.Namespace) -> int:
     return 0
 
 
+def watch_rows(w: dict[str, Any]) -> str:
+    """The watch as a table: one row per metric with its latest interval and status."""
+    rows = []
+    for m in w.get("metrics", []):
+        last = m["history"][-1] if m.get("history") else {}
+        rows.append(
+            [
+                m["metric"],
+                m["role"],
+                m.get("status") or "-",
+                fmt_num(last.get("estimate")),
+                f"[{fmt_num(last.get('lower'))}, {fmt_num(last.get('upper'))}]",
+                fmt_num(m.get("threshold")),
+                last.get("n_plan"),
+                last.get("n_holdout"),
+            ]
+        )
+    return format_table(
+        rows,
+        [
+            "metric",
+            "role",
+            "status",
+            "plan - holdout",
+            "always-valid interval",
+            "limit",
+            "plan n",
+            "holdout n",
+        ],
+    )
+
+
+@_command
+def cmd_watch_upload(args: argparse.Namespace) -> int:
+    path = Path(args.file)
+    ctype = args.content_type or CONTENT_TYPES.get(path.suffix.lower())
+    if ctype is None:
+        raise LocalError(
+            f"cannot tell the format of '{path.name}' from its extension; give --content-type"
+        )
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise LocalError(f"cannot read {path}: {exc.strerror or exc}") from exc
+    with _api(args) as api:
+        got = api.monitor(args.plan, data, ctype, args.version)
+
+    def human() -> str:
+        head = (
+            f"upload {got['upload']} to {got['plan']} v{got['version']}: {got['rows']} rows, "
+            f"{got['members']} members ({got['replaced']} replaced); holdout flags that disagree "
+            f"with the lookup: {got['holdout_flag_disagreement']:.1%}\n"
+        )
+        rolled = got.get("rolled_back")
+        tail = f"\nrolled back automatically: {rolled}" if rolled else ""
+        return (
+            head + watch_rows({"metrics": [{**m, "history": [m]} for m in got["metrics"]]}) + tail
+        )
+
+    _emit(args, got, human)
+    return 0
+
+
+@_command
+def cmd_watch_show(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        got = api.watch(args.plan)
+    _emit(
+        args,
+        got,
+        lambda: (
+            f"{got['plan']} v{got['version']}: {got['uploads']} uploads, {got['members']} members\n"
+            + watch_rows(got)
+        ),
+    )
+    return 0
+
+
+@_command
+def cmd_watch_auto_rollback(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        got = api.set_auto_rollback(
+            args.plan,
+            enabled=args.state == "on",
+            min_units_per_group=args.min_units,
+            reason=args.reason,
+        )
+    _emit(
+        args,
+        got,
+        lambda: f"{got['plan']}: automatic rollback {args.state} ({got['auto_rollback']})",
+    )
+    return 0
+
+
 @_command
 def cmd_audit_show(args: argparse.Namespace) -> int:
     with _api(args) as api:
@@ -1101,6 +1222,35 @@ def add_commands(sub: argparse._SubParsersAction, *, audit: argparse._SubParsers
         help="a feature value (repeatable); numbers parse as numbers, quote to force text",
     )
     p.add_argument("--batch", default=None, help="JSON file of members [{member_id, features}]")
+
+    wt = sub.add_parser("watch", help="the guardrail watch of a live plan (HTTP)")
+    wsub = wt.add_subparsers(dest="watch_action", required=True)
+    p = leaf(
+        wsub,
+        "upload",
+        cmd_watch_upload,
+        "upload post-launch rows (member_id, features, holdout, metrics)",
+    )
+    p.add_argument("plan")
+    p.add_argument("file")
+    p.add_argument("--version", type=int, default=None, help="default: the live version")
+    p.add_argument("--content-type", default=None, help="default: from the file extension")
+    p = leaf(
+        wsub, "show", cmd_watch_show, "each guardrail's status and latest always-valid interval"
+    )
+    p.add_argument("plan")
+    p = leaf(
+        wsub,
+        "auto-rollback",
+        cmd_watch_auto_rollback,
+        "turn automatic rollback on or off (approver key)",
+    )
+    p.add_argument("plan")
+    p.add_argument("state", choices=["on", "off"])
+    p.add_argument(
+        "--min-units", type=int, default=1000, help="members per group before it may act"
+    )
+    p.add_argument("--reason", required=True)
 
     p = leaf(audit, "show", cmd_audit_show, "the audit trail, oldest first (HTTP)")
     p.add_argument("--entity", default=None)

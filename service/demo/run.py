@@ -130,6 +130,46 @@ def member_features(fv: dict[str, np.ndarray], i: int) -> dict[str, Any]:
     return out
 
 
+def watch_with_harm(
+    api: Api, *, learners: int, seed: int, out: TextIO, batches: int = 4
+) -> dict[str, Any]:
+    """Post-launch batches of learners, assigned through the HTTP lookup and simulated with an
+    invented harm (+5 points of abandonment for beginners on every non-control arm), uploaded to
+    the watch until it rolls the plan back by itself (or the batches run out)."""
+    from service.demo.postlaunch import harm_to_beginners, rows_csv
+
+    harm = harm_to_beginners(0.05)
+    last: dict[str, Any] = {}
+    for b in range(batches):
+        bseed = seed + b
+        _, fv = sc.simulate_features(learners, bseed)
+        ids = np.array([f"p{b}-{i}" for i in range(learners)], dtype=object)
+        answers: list[dict[str, Any]] = []
+        for lo in range(0, learners, 10_000):
+            members = [
+                {"member_id": ids[i], "features": member_features(fv, i)}
+                for i in range(lo, min(lo + 10_000, learners))
+            ]
+            answers += api.assign_batch(PLAN, members)
+        codes = np.array([sc.ARMS.index(a["arm"]) for a in answers])
+        holdout = np.array([a["holdout"] for a in answers])
+        last = api.monitor(PLAN, rows_csv(ids, learners, bseed, codes, holdout, harm=harm))
+        abandon = next(m for m in last["metrics"] if m["metric"] == "abandon_rate")
+        out.write(
+            f"        upload {last['upload']}: {last['members']:,} members; abandon_rate plan - holdout "
+            f"{fmt_num(abandon['estimate'])} in [{fmt_num(abandon['lower'])}, {fmt_num(abandon['upper'])}]"
+            f" against +{abandon['threshold']:.4f}: {abandon['status']}\n"
+        )
+        if last.get("rolled_back"):
+            rb = last["rolled_back"]
+            out.write(
+                f"        the watch rolled the plan back to version {rb.get('to_version')} by itself\n"
+            )
+            break
+    trail = api.audit(entity="plan", entity_id=PLAN, actor="guardrail-watch")
+    return {"last_upload": last, "rollback_entries": trail}
+
+
 def plan_probabilities(
     version: dict[str, Any], model: dict[str, Any], fv: dict[str, np.ndarray]
 ) -> np.ndarray:
@@ -226,7 +266,8 @@ def run_demo(
     app = create_app(settings)
     running = serve_in_thread(app, port=port)
     url = running.url
-    steps = _Steps(out, 13)
+    steps = _Steps(out, 14)
+    post_launch = max(2_000, learners // 10)
     report: dict[str, Any] = {"url": url, "database": str(db_path), "learners": learners}
     try:
         out.write(f"Server: {url} (uvicorn in a background thread)\n\n")
@@ -282,7 +323,7 @@ def run_demo(
             "baseline": "control",
             "draws": draws,
             "seed": seed,
-            "notes": "demo: chance-constrained plan with the three guardrails at 95 %",
+            "notes": "demo: chance-constrained plan with the three guardrails at 80 % each",
         }
         with steps.step("draft version 1: a chance-constrained plan (POST /v1/plans/.../versions)"):
             v1 = finish_report(analyst, analyst.draft_plan(PLAN, spec), bar=None)
@@ -336,6 +377,14 @@ def run_demo(
             plan_state = analyst.get_plan(PLAN)
             report["activations"] = [act1, act2, back]
             report["live_version"] = plan_state["live_version"]
+
+        with steps.step("turn on automatic rollback (approver), launch rows with an injected harm"):
+            approver.set_auto_rollback(
+                PLAN, enabled=True, min_units_per_group=500, reason="demo: protect the launch"
+            )
+            watch = watch_with_harm(analyst, learners=post_launch, seed=seed + 5, out=out)
+            report["watch"] = watch
+            report["live_version"] = analyst.get_plan(PLAN)["live_version"]
 
         with steps.step("verify the audit chain (GET /v1/audit/verify, admin key)"):
             chain = admin.audit_verify()
@@ -447,8 +496,24 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
     w(
         f"Activations: v{acts[0]['to_version']} (rev {acts[0]['revision']}), "
         f"v{acts[1]['to_version']} (rev {acts[1]['revision']}), rolled back to "
-        f"v{acts[2]['to_version']} (rev {acts[2]['revision']}); live now: v{r['live_version']}.\n"
+        f"v{acts[2]['to_version']} (rev {acts[2]['revision']}).\n"
     )
+    entries = r.get("watch", {}).get("rollback_entries") or []
+    if entries:
+        e = entries[-1]
+        ev = e["payload"].get("evidence", {})
+        w(
+            f"Guardrail watch: after launch, an injected harm to beginners broke {ev.get('guardrail')}; "
+            f"its always-valid interval [{fmt_num(ev.get('interval', [None])[0])}, "
+            f"{fmt_num(ev.get('interval', [None, None])[1])}] lay wholly past the limit "
+            f"+{ev.get('threshold', 0):.4f} ({ev.get('units', {}).get('plan')} plan-exposed, "
+            f"{ev.get('units', {}).get('holdout')} holdout members), so the watch rolled back from "
+            f"v{e['payload']['from_version']} to v{e['payload']['to_version']} by itself "
+            f"(audit entry {e['id']}, actor {e['actor_name']}).\n"
+        )
+    else:
+        w("Guardrail watch: no automatic rollback happened (the harm was not confirmed in time).\n")
+    w(f"Live now: v{r['live_version']}.\n")
     a = r["audit"]
     w(f"Audit chain: {'intact' if a['intact'] else 'BROKEN'}, {a['entries']} entries.\n")
     w(f"Finished in {r['seconds']} s.\n\nKeys made (secrets are shown once):\n")

@@ -12,7 +12,7 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, scenario_model
 
-from service.demo.postlaunch import post_launch_csv
+from service.demo.postlaunch import harm_to_beginners, post_launch_csv
 
 CSV = {"content-type": "text/csv"}
 
@@ -41,9 +41,8 @@ def live_plan(client: TestClient, keys):  # type: ignore[no-untyped-def]
     return client.app.state.services  # type: ignore[attr-defined]
 
 
-def _harm_beginners(fv, arm):  # type: ignore[no-untyped-def]
-    # after launch, every non-control arm raises abandonment of beginners by 15 points (invented)
-    return {"abandon_rate": np.where((fv["level"] == 0) & (arm != 0), 0.15, 0.0)}
+# after launch, every non-control arm raises abandonment of beginners by 15 points (invented)
+_harm_beginners = harm_to_beginners(0.15)
 
 
 def test_uploads_accumulate_and_duplicates_count_once(client: TestClient, keys, live_plan) -> None:  # type: ignore[no-untyped-def]

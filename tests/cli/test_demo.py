@@ -36,13 +36,29 @@ def test_demo_end_to_end(tmp_path: Path) -> None:
     # lifecycle: v1 live, v2 live, rolled back to v1; the chain verifies through the API
     a1, a2, back = r["activations"]
     assert (a1["to_version"], a2["to_version"], back["to_version"]) == (1, 2, 1)
-    assert back["from_version"] == 2 and back["revision"] == 3 and r["live_version"] == 1
-    assert r["plan_audit_actions"] == ["plan.activate", "plan.activate", "plan.rollback"]
+    assert back["from_version"] == 2 and back["revision"] == 3
+    # then the guardrail watch sees the injected harm and rolls v1 back to v2 by itself, once
+    (entry,) = r["watch"]["rollback_entries"]
+    assert (
+        entry["actor_name"] == "guardrail-watch"
+        and entry["payload"]["evidence"]["guardrail"] == "abandon_rate"
+    )
+    assert (entry["payload"]["from_version"], entry["payload"]["to_version"]) == (1, 2) and r[
+        "live_version"
+    ] == 2
+    assert r["plan_audit_actions"] == [
+        "plan.activate",
+        "plan.activate",
+        "plan.rollback",
+        "plan.auto_rollback",
+        "plan.rollback",
+    ]
     assert r["audit"]["intact"] is True and r["audit"]["entries"] >= 12
     assert len(r["assignments"]) == 5 and all(a["arm"] in sc.ARMS for a in r["assignments"])
 
     # the printed report
     assert "The plan BEATS the best safe single arm" in text
+    assert "so the watch rolled back from v1 to v2 by itself" in text
     assert f"Review page: {r['url']}/ui/plans/lesson-length/versions/1" in text
     for name, k in r["keys"].items():
         assert name in text and k["secret"] in text

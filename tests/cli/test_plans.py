@@ -202,3 +202,37 @@ def test_large_report_runs_as_a_job_and_draft_waits(cli, model, spec) -> None:  
     assert r.code == 0, r.err
     assert "impact report lesson-length/2" in r.err and "100% done" in r.err  # the bar
     assert "report          complete" in r.out
+
+
+def test_watch_upload_show_and_auto_rollback(cli, model, spec, live, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    from service.demo.postlaunch import harm_to_beginners, post_launch_csv
+
+    for _ in range(2):
+        _draft(cli, model, spec)
+    for v in (1, 2):
+        assert cli("approver", "plan", "approve", PLAN, str(v), "--reason", "ok").code == 0
+    for v in (1, 2):
+        assert cli("approver", "plan", "activate", PLAN, str(v), "--reason", "go").code == 0
+    r = cli("analyst", "watch", "auto-rollback", PLAN, "on", "--min-units", "200", "--reason", "x")
+    assert r.code == 1 and "approver" in r.err  # an analyst may not set it
+    r = cli(
+        "approver",
+        "watch",
+        "auto-rollback",
+        PLAN,
+        "on",
+        "--min-units",
+        "200",
+        "--reason",
+        "protect",
+    )
+    assert r.code == 0, r.err
+    rows = tmp_path / "post.csv"
+    compiled = live.services.plans.get(PLAN)
+    rows.write_bytes(post_launch_csv(compiled, 6000, seed=11, harm=harm_to_beginners(0.2)))
+    r = cli("analyst", "watch", "upload", PLAN, str(rows), "--json")
+    assert r.code == 0, r.err
+    got = r.json()
+    assert got["version"] == 2 and got["rows"] == 6000 and got["rolled_back"]["to_version"] == 1
+    table = cli("reader", "watch", "show", PLAN)
+    assert table.code == 0 and "abandon_rate" in table.out and "breached" in table.out
