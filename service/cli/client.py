@@ -680,19 +680,24 @@ def _readout_human(got: dict[str, Any], created: bool | None = None) -> str:
     return "\n".join(lines)
 
 
-@_command
-def cmd_readout_upload(args: argparse.Namespace) -> int:
-    path = Path(args.file)
-    ctype = args.content_type or CONTENT_TYPES.get(path.suffix.lower())
+def read_upload(file: str, content_type: str | None) -> tuple[bytes, str]:
+    """(bytes, content type) of an upload file; the type from the extension unless given."""
+    path = Path(file)
+    ctype = content_type or CONTENT_TYPES.get(path.suffix.lower())
     if ctype is None:
         raise LocalError(
             f"cannot tell the format of '{path.name}' from its extension; give --content-type "
             f"({', '.join(sorted(set(CONTENT_TYPES.values())))})"
         )
     try:
-        data = path.read_bytes()
+        return path.read_bytes(), ctype
     except OSError as exc:
         raise LocalError(f"cannot read {path}: {exc.strerror or exc}") from exc
+
+
+@_command
+def cmd_readout_upload(args: argparse.Namespace) -> int:
+    data, ctype = read_upload(args.file, args.content_type)
     with _api(args) as api:
         got, created = api.upload_readout(args.key, data, ctype)
     _emit(args, {**got, "created": created}, lambda: _readout_human(got, created))
@@ -975,16 +980,7 @@ def watch_rows(w: dict[str, Any]) -> str:
 
 @_command
 def cmd_watch_upload(args: argparse.Namespace) -> int:
-    path = Path(args.file)
-    ctype = args.content_type or CONTENT_TYPES.get(path.suffix.lower())
-    if ctype is None:
-        raise LocalError(
-            f"cannot tell the format of '{path.name}' from its extension; give --content-type"
-        )
-    try:
-        data = path.read_bytes()
-    except OSError as exc:
-        raise LocalError(f"cannot read {path}: {exc.strerror or exc}") from exc
+    data, ctype = read_upload(args.file, args.content_type)
     with _api(args) as api:
         got = api.monitor(args.plan, data, ctype, args.version)
 
