@@ -8,50 +8,15 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1] / "service"
+_WEB = ("fastapi", "starlette", "service.api", "service.app")
+_PURE = (*_WEB, "pydantic", "sqlalchemy", "service.store", "service.usecases")
 FORBIDDEN = {
-    "stats": (
-        "fastapi",
-        "pydantic",
-        "sqlalchemy",
-        "starlette",
-        "service.api",
-        "service.store",
-        "service.usecases",
-        "service.serving",
-        "service.app",
-    ),
-    "optimize": (
-        "fastapi",
-        "pydantic",
-        "sqlalchemy",
-        "starlette",
-        "service.api",
-        "service.store",
-        "service.usecases",
-        "service.serving",
-        "service.app",
-    ),
-    "serving": (
-        "fastapi",
-        "pydantic",
-        "sqlalchemy",
-        "starlette",
-        "service.api",
-        "service.store",
-        "service.usecases",
-        "service.app",
-    ),
-    "ingest": (
-        "fastapi",
-        "sqlalchemy",
-        "starlette",
-        "service.api",
-        "service.store",
-        "service.usecases",
-        "service.app",
-    ),
-    "store": ("fastapi", "starlette", "service.api", "service.usecases", "service.app"),
-    "usecases": ("fastapi", "starlette", "service.api", "service.app"),
+    "stats": (*_PURE, "service.serving"),
+    "optimize": (*_PURE, "service.serving"),
+    "serving": _PURE,
+    "ingest": (*_WEB, "sqlalchemy", "service.store", "service.usecases"),
+    "store": (*_WEB, "service.usecases"),
+    "usecases": _WEB,
 }
 
 
