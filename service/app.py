@@ -101,4 +101,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     for r in (assign, health, keys, audit, experiments, models, jobs, plans, watch, ui):
         app.include_router(r.router)
     app.add_middleware(RequestContextMiddleware)
+    # outermost: the lookups skip the shared middleware and the router (routes/assign.py)
+    app.add_middleware(assign.LookupGateway)
     return app

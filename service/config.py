@@ -22,6 +22,15 @@ class Settings(BaseSettings):
     max_upload_bytes: int = Field(
         512 * 1024 * 1024, gt=0, description="largest accepted upload body"
     )
+    max_assign_bytes: int = Field(
+        64 * 1024, gt=0, description="largest accepted body of POST /v1/plans/{plan}/assign (413)"
+    )
+    max_assign_batch_bytes: int = Field(
+        16 * 1024 * 1024,
+        gt=0,
+        description="largest accepted body of POST /v1/plans/{plan}/assign/batch (413); "
+        "10,000 members with ten features take about 2.5 MB",
+    )
     poll_interval_seconds: float = Field(
         1.0, gt=0, description="how often each process checks for plan changes"
     )

@@ -52,6 +52,7 @@ __all__ = [
 ]
 
 _NoneType = type(None)
+_EXACT_INT = 2**53  # ints up to this size compare with a float64 threshold as their double does
 _SHARE_TOL = 1e-6  # an allocation row may miss 1 by this much (solver rounding); it is renormalised
 
 
@@ -111,8 +112,12 @@ def _type_error(
     }
     if index is not None:
         err["index"] = index
+    try:
+        shown = f"{value!r:.60}"
+    except ValueError:  # an int too long for str() (Python's digit limit)
+        shown = "(too many digits to show)"
     return InvalidInput(
-        f"feature '{key}' of {where} must be {expected}, got {type(value).__name__} {value!r:.60}",
+        f"feature '{key}' of {where} must be {expected}, got {type(value).__name__} {shown}",
         errors=[err],
     )
 
@@ -123,7 +128,10 @@ def _numeric_value(key: str, v: Any, member: str, index: int | None = None) -> f
         return np.nan
     if isinstance(v, bool | np.bool_) or not isinstance(v, int | float | np.integer | np.floating):
         raise _type_error(key, member, "a number", v, index)
-    return float(v)
+    try:
+        return float(v)
+    except OverflowError:  # an integer beyond the float64 range
+        raise _type_error(key, member, "a number within the float64 range", v, index) from None
 
 
 def _categorical_value(key: str, v: Any, member: str, index: int | None = None) -> str | None:
@@ -179,6 +187,7 @@ class CompiledPlan:
         "_missing_code",
         "_is_leaf",
         "_children",
+        "_portable",
     )
 
     def __init__(
@@ -220,6 +229,7 @@ class CompiledPlan:
         s(self, "_checks", tuple((f.key, f.kind == "numeric") for f in feats))
         self._compile_single(partition)
         self._compile_flat(partition)
+        s(self, "_portable", [])  # the portable document, made on first request (portable.py)
 
     def __setattr__(self, name: str, value: Any) -> None:
         raise AttributeError(f"CompiledPlan is immutable; cannot set {name!r}")
@@ -339,9 +349,11 @@ class CompiledPlan:
                 continue
             t = type(v)
             if numeric:
-                if t is float or t is int:
+                if t is float or (t is int and -_EXACT_INT <= v <= _EXACT_INT):
                     continue
-                norm: Any = _numeric_value(key, v, member)  # e.g. a numpy scalar -> float
+                # a numpy scalar, or an int that float64 would round: compared as the double
+                # the batch path and the portable evaluators compare
+                norm: Any = _numeric_value(key, v, member)
             elif t is str:
                 continue
             else:
