@@ -29,6 +29,8 @@ demo: $(STAMP)
 test: $(DEVSTAMP)
 	$(BIN)/ruff check service tests bench migrations
 	$(BIN)/python -m pytest
+	@command -v node >/dev/null || { echo "make test: the JavaScript evaluator's tests need Node.js >= 18 (Debian: apt-get install nodejs)"; exit 1; }
+	node --test js/test/
 
 lint: $(DEVSTAMP)
 	$(BIN)/ruff check service tests bench migrations

@@ -1,30 +1,27 @@
-"""Assignment over HTTP against the bare route, plus in-process lookups and batches.
+"""Lookups over HTTP against a pure ASGI reference on the same server, plus in-process figures.
 
-Starts one `apportion serve` process (uvicorn, one worker) on 127.0.0.1 with a fresh SQLite store,
-makes keys with `apportion keys create`, and brings a plan live through the API the way an analyst
-would: declare the invented scenario, upload a readout of `--units` learners, fit a causal tree with
-`max_depth=8` (cv off, small `min_units_per_arm`, so the tree reaches depth 8), draft, approve with
-an approver who is not the author, activate. Then, with the load generator `wrk` (1 thread,
-`--connections` keep-alive connections, `--seconds` each, after a short warm-up):
+Starts `apportion serve --workers N` (uvicorn with httptools and uvloop, the project's keep-alive
+and backlog) on a fresh SQLite store, makes keys with `apportion keys create`, and brings a plan
+live through the API the way an analyst would: declare the invented scenario, upload a readout of
+`--units` learners, fit a causal tree with `max_depth=8` (cv off, small `min_units_per_arm`, so
+the tree reaches depth 8), draft, approve with an approver who is not the author, activate. Beside
+it runs bench/serve_reference.py: a pure ASGI callable that reads the same body, parses it as JSON
+and answers a constant object, served by the same uvicorn with the same settings and worker count.
 
-- `POST /v1/plans/{plan}/assign`, cycling through `--members` different learners' bodies;
-- `POST /v1/bare` with the same bodies and header, a constant answer through the same app and
-  middleware that does no lookup: the reference.
+For N in `--workers` (default 1 and 2), `wrk` (`--threads`, `--connections` keep-alive
+connections, `--seconds` per run, after a warm-up) sends both servers the same `--members`
+different assign bodies with the same header, in `--rounds` alternating reference / lookup pairs,
+so drifting machine load (other work on a shared machine) hits both alike. Reported per N: medians
+over rounds of requests/s, p50 and p99 latency, and the server's CPU per request (from /proc, all
+processes of the server); `lookup_over_reference_rps` and `lookup_p99_over_reference_p99` are
+medians of the per-round ratios; `lookup_rps_2_over_1` compares the two worker counts' lookup
+medians. Then the 10,000-member `POST .../assign/batch` end to end (median of `--repeats`), and,
+with the servers stopped, bench/serve_inprocess.py's `measure()` in this process (single lookup
+median, 10k batch, the portable evaluator's rate and the compiled document's size).
 
-Both routes hit the same process with the same settings, in `--rounds` alternating bare/assign
-pairs (machine load drifts; the medians over rounds are reported, the ratios are medians of the
-per-round ratios), so `assign_over_bare_rps` and `assign_p99_over_bare_p99` say what the lookup
-costs on top of the HTTP stack. `*_server_cpu_us` is the server's CPU time (/proc, all threads)
-per request during the run: less sensitive to other work on the machine than requests/s.
-`loadavg_1m_before` records how busy the machine already was. Then the 10,000-member
-`POST .../assign/batch` end to end (median of `--repeats`, body pre-encoded; the time is send +
-full response received), then, with the server stopped, bench/serve_inprocess.py's `measure()`
-(single assign median, 10k batch on its random depth-8 tree) in this process.
-
-Prints ONE JSON line. Needs `wrk` on PATH (Debian package `wrk`); the server and wrk share the
-machine's cores, so the figures are for that shared setting. `--profile DIR` also records the
-server with py-spy (wall time; if installed) during one extra run of each route and writes
-collapsed stacks DIR/serve_bare.collapsed and DIR/serve_assign.collapsed.
+Prints ONE JSON line. Needs `wrk` on PATH (Debian package `wrk`). wrk and the servers share the
+machine's cores, so the figures are for that shared setting; `loadavg_1m_before` says how busy
+the machine already was.
 """
 
 from __future__ import annotations
@@ -80,33 +77,48 @@ def _cli(env: dict[str, str], *args: str) -> str:
     return out.stdout.strip().splitlines()[-1]
 
 
-def _start_server(env: dict[str, str], port: int, log: Path) -> subprocess.Popen:
-    exe = ROOT / ".venv" / "bin" / "apportion"
+def _start(cmd: list[str], env: dict[str, str], ready: str, log: Path) -> subprocess.Popen:
     with log.open("wb") as fh:
         proc = subprocess.Popen(
-            [str(exe), "serve", "--host", "127.0.0.1", "--port", str(port)],
-            env=env,
-            stdout=fh,
-            stderr=subprocess.STDOUT,
-            start_new_session=True,
+            cmd, env=env, stdout=fh, stderr=subprocess.STDOUT, start_new_session=True
         )
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:
         if proc.poll() is not None:
             raise RuntimeError(f"server exited with {proc.returncode}: {log.read_text()[-2000:]}")
         try:
-            if httpx.get(f"http://127.0.0.1:{port}/readyz", timeout=1).status_code == 200:
-                return proc
+            httpx.get(ready, timeout=1)
+            return proc
         except httpx.HTTPError:
             pass
         time.sleep(0.2)
-    proc.terminate()
-    raise RuntimeError("server did not become ready in 60 s")
+    _stop(proc)
+    raise RuntimeError(f"{cmd} did not answer in 60 s")
+
+
+def _start_servers(env: dict[str, str], workers: int, tmp: Path) -> tuple[Any, Any, int, int]:
+    """(lookup server, reference server, their ports), both with `workers` processes."""
+    exe = ROOT / ".venv" / "bin" / "apportion"
+    p1, p2 = _free_port(), _free_port()
+    lookup = _start(
+        [str(exe), "serve", "--host", "127.0.0.1", "--port", str(p1), "--workers", str(workers)],
+        env,
+        f"http://127.0.0.1:{p1}/readyz",
+        tmp / f"serve-{workers}.log",
+    )
+    ref = _start(
+        [sys.executable, str(ROOT / "bench" / "serve_reference.py"), "--port", str(p2),
+         "--workers", str(workers)],
+        env,
+        f"http://127.0.0.1:{p2}/",
+        tmp / f"reference-{workers}.log",
+    )  # fmt: skip
+    return lookup, ref, p1, p2
 
 
 def _stop(proc: subprocess.Popen) -> None:
     if proc.poll() is None:
-        proc.send_signal(signal.SIGINT)
+        os.killpg(proc.pid, signal.SIGINT)  # the server and its worker processes
         try:
             proc.wait(timeout=15)
         except subprocess.TimeoutExpired:
@@ -189,17 +201,34 @@ def member_bodies(n: int, seed: int) -> list[dict[str, Any]]:
 
 
 def _cpu_seconds(pid: int) -> float:
-    """User + system CPU time of a process (all threads) from /proc, in seconds."""
-    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
-    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    """User + system CPU time of a process and its children (uvicorn's worker processes; all
+    threads) from /proc, in seconds."""
+    total = 0.0
+    todo = [pid]
+    while todo:
+        p = todo.pop()
+        try:
+            fields = Path(f"/proc/{p}/stat").read_text().rsplit(")", 1)[1].split()
+            kids = Path(f"/proc/{p}/task/{p}/children").read_text().split()
+        except OSError:
+            continue
+        total += (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+        todo += [int(k) for k in kids]
+    return total
 
 
 def run_wrk(
-    url: str, auth: str, seconds: int, conns: int, body_file: Path | None, pid: int | None = None
+    url: str,
+    auth: str,
+    seconds: int,
+    conns: int,
+    body_file: Path | None,
+    pid: int | None = None,
+    threads: int = 1,
 ) -> dict[str, Any]:
     cmd = [
         "wrk",
-        "-t1",
+        f"-t{threads}",
         f"-c{conns}",
         f"-d{seconds}s",
         "--timeout",
@@ -239,43 +268,67 @@ def http_batch(c: httpx.Client, h: dict[str, str], members: list[dict], repeats:
     return {"median_ms": statistics.median(times), "min_ms": min(times)}
 
 
-def profile_runs(
-    pid: int, out_dir: Path, runs: dict[str, tuple[str, Path | None]], auth: str, a: Any
-) -> dict[str, Any] | None:
-    """py-spy the server (wall time, 200 Hz, native frames off) during one extra wrk run per
-    route; collapsed stacks go to DIR/serve_<route>.collapsed. Returns requests and samples."""
-    spy = shutil.which("py-spy") or str(ROOT / ".venv" / "bin" / "py-spy")
-    if not Path(spy).exists():
-        return None
-    out_dir.mkdir(parents=True, exist_ok=True)
-    out: dict[str, Any] = {}
-    for name, (url, bodies) in runs.items():
-        dest = out_dir / f"serve_{name}.collapsed"
-        rec = subprocess.Popen(
-            [
-                spy,
-                "record",
-                "-p",
-                str(pid),
-                "-d",
-                str(a.seconds),
-                "-r",
-                "200",
-                "-f",
-                "raw",
-                "-o",
-                str(dest),
-                "--nonblocking",
-            ],  # fmt: skip
-            stdout=subprocess.DEVNULL,
-            stderr=subprocess.DEVNULL,
-        )
-        time.sleep(0.5)
-        r = run_wrk(url, auth, a.seconds - 1, a.connections, bodies, pid)
-        rec.wait(timeout=a.seconds + 60)
-        samples = sum(int(line.rsplit(" ", 1)[1]) for line in dest.read_text().splitlines())
-        out[name] = {"file": str(dest), "requests": r["requests"], "samples": samples}
-    return out
+def _live_everywhere(c: httpx.Client, h: dict[str, str], body: dict, tries: int = 40) -> None:
+    """Wait until every worker process answers 200 (each loads the plan by polling)."""
+    ok = 0
+    for _ in range(tries * 10):
+        r = c.post(f"/v1/plans/{PLAN}/assign", json=body, headers=h)
+        ok = ok + 1 if r.status_code == 200 else 0
+        if ok >= tries:
+            return
+        time.sleep(0.02)
+    raise RuntimeError("the plan did not become live in every worker")
+
+
+def compare(
+    a: Any, workers: int, env: dict, keys: dict, bodies: Path, members: list, tmp: Path
+) -> dict:
+    """Alternating reference / lookup rounds on `workers` processes each."""
+    lookup, ref, p1, p2 = _start_servers(env, workers, tmp)
+    auth = keys["reader"]["Authorization"]
+    try:
+        with httpx.Client(base_url=f"http://127.0.0.1:{p1}", timeout=600) as c:
+            _live_everywhere(c, keys["reader"], members[0])
+        urls = {
+            "lookup": (f"http://127.0.0.1:{p1}/v1/plans/{PLAN}/assign", lookup.pid),
+            "reference": (f"http://127.0.0.1:{p2}/v1/plans/{PLAN}/assign", ref.pid),
+        }
+        for url, _ in urls.values():
+            run_wrk(url, auth, a.warmup, a.connections, bodies, threads=a.threads)
+        rounds = []
+        for _ in range(a.rounds):
+            r = run_wrk(*[urls["reference"][0], auth, a.seconds, a.connections, bodies],
+                        urls["reference"][1], a.threads)  # fmt: skip
+            s = run_wrk(*[urls["lookup"][0], auth, a.seconds, a.connections, bodies],
+                        urls["lookup"][1], a.threads)  # fmt: skip
+            for name, res in (("lookup", s), ("reference", r)):
+                if res["non_2xx"] or res["socket_errors"]:
+                    raise RuntimeError(f"{name} run had errors: {res}")
+            rounds.append((s, r))
+    finally:
+        _stop(lookup)
+        _stop(ref)
+
+    def med(which: int, key: str) -> float:
+        return statistics.median(x[which][key] for x in rounds)
+
+    return {
+        "lookup_rps": round(med(0, "rps"), 1),
+        "reference_rps": round(med(1, "rps"), 1),
+        "lookup_over_reference_rps": round(
+            statistics.median(s["rps"] / r["rps"] for s, r in rounds), 3
+        ),
+        "lookup_p50_ms": round(med(0, "p50_us") / 1e3, 3),
+        "lookup_p99_ms": round(med(0, "p99_us") / 1e3, 3),
+        "reference_p50_ms": round(med(1, "p50_us") / 1e3, 3),
+        "reference_p99_ms": round(med(1, "p99_us") / 1e3, 3),
+        "lookup_p99_over_reference_p99": round(
+            statistics.median(s["p99_us"] / r["p99_us"] for s, r in rounds), 3
+        ),
+        "lookup_server_cpu_us": round(med(0, "server_cpu_us_per_request"), 1),
+        "reference_server_cpu_us": round(med(1, "server_cpu_us_per_request"), 1),
+        "rounds_rps": [[round(s["rps"]), round(r["rps"])] for s, r in rounds],
+    }
 
 
 def main() -> None:
@@ -283,19 +336,20 @@ def main() -> None:
     ap.add_argument("--units", type=int, default=200_000, help="readout size for the fit")
     ap.add_argument("--members", type=int, default=2000, help="distinct assign bodies cycled")
     ap.add_argument("--seconds", type=int, default=10, help="each measured wrk run")
-    ap.add_argument("--rounds", type=int, default=3, help="bare/assign pairs; medians reported")
+    ap.add_argument("--rounds", type=int, default=3, help="reference/lookup pairs per N")
     ap.add_argument("--warmup", type=int, default=2)
-    ap.add_argument("--connections", type=int, default=8)
+    ap.add_argument("--connections", type=int, default=16)
+    ap.add_argument("--threads", type=int, default=1, help="wrk threads")
+    ap.add_argument("--workers", type=int, nargs="+", default=[1, 2])
     ap.add_argument("--batch", type=int, default=10_000)
     ap.add_argument("--repeats", type=int, default=7, help="HTTP batch calls timed")
     ap.add_argument("--seed", type=int, default=3)
-    ap.add_argument("--profile", type=Path, default=None, help="py-spy the server into DIR")
     ap.add_argument("--skip-inprocess", action="store_true")
     a = ap.parse_args()
     if shutil.which("wrk") is None:
         sys.exit("wrk is not on PATH (Debian: apt-get install wrk)")
 
-    load_before = round(os.getloadavg()[0], 2)  # other work on the machine skews both routes
+    load_before = round(os.getloadavg()[0], 2)  # other work on the machine skews both sides
     tmp = Path(tempfile.mkdtemp(prefix="apportion-bench-serve-"))
     env = {
         **os.environ,
@@ -308,94 +362,59 @@ def main() -> None:
         }
         for role, r in (("analyst", "analyst"), ("approver", "approver"), ("reader", "reader"))
     }
-    port = _free_port()
-    base = f"http://127.0.0.1:{port}"
-    server = _start_server(env, port, tmp / "server.log")
+    lookup, ref, port, _ = _start_servers(env, 1, tmp)
+    _stop(ref)
     result: dict[str, Any] = {"bench": "serve"}
     try:
-        with httpx.Client(base_url=base, timeout=600) as c:
+        with httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=600) as c:
             facts = live_plan(c, keys, a.units, a.seed)
             members = member_bodies(max(a.members, a.batch), a.seed + 1)
             probe = _ok(
                 c.post(f"/v1/plans/{PLAN}/assign", json=members[0], headers=keys["reader"]), 200
             )
             assert probe["plan_version"] == 1, probe
-            bodies = tmp / "bodies.jsonl"
-            bodies.write_text("\n".join(json.dumps(m) for m in members[: a.members]) + "\n")
-            auth = keys["reader"]["Authorization"]
-            assign_url = f"{base}/v1/plans/{PLAN}/assign"
-            bare_url = f"{base}/v1/bare"
-            # warm both, then measure alternately bare / assign
-            run_wrk(bare_url, auth, a.warmup, a.connections, bodies)
-            run_wrk(assign_url, auth, a.warmup, a.connections, bodies)
-            rounds = []
-            for _ in range(a.rounds):  # alternate, so drifting machine load hits both alike
-                b = run_wrk(bare_url, auth, a.seconds, a.connections, bodies, server.pid)
-                s = run_wrk(assign_url, auth, a.seconds, a.connections, bodies, server.pid)
-                rounds.append((s, b))
             batch = http_batch(c, keys["reader"], members[: a.batch], a.repeats)
-            prof = None
-            if a.profile is not None:
-                runs = {"bare": (bare_url, bodies), "assign": (assign_url, bodies)}
-                prof = profile_runs(server.pid, a.profile, runs, auth, a)
     finally:
-        _stop(server)
-    for s, b in rounds:
-        for name, r in (("assign", s), ("bare", b)):
-            if r["non_2xx"] or r["socket_errors"]:
-                raise RuntimeError(f"{name} run had errors: {r}")
-
-    def med(which: int, key: str) -> float:
-        return statistics.median(r[which][key] for r in rounds)
-
-    rps_ratio = statistics.median(s["rps"] / b["rps"] for s, b in rounds)
-    p99_ratio = statistics.median(s["p99_us"] / b["p99_us"] for s, b in rounds)
+        _stop(lookup)
+    bodies = tmp / "bodies.jsonl"
+    bodies.write_text("\n".join(json.dumps(m) for m in members[: a.members]) + "\n")
+    per_workers = {str(n): compare(a, n, env, keys, bodies, members, tmp) for n in a.workers}
     result.update(
         {
             "partition_depth": facts["depth"],
             "partition_leaves": facts["leaves"],
             "partition_cohorts": facts["cohorts"],
             "readout_units": a.units,
-            "load": f"wrk -t1 -c{a.connections} -d{a.seconds}s x {a.rounds} rounds alternating,"
-            " 127.0.0.1, server and wrk share the cores",
+            "load": f"wrk -t{a.threads} -c{a.connections} -d{a.seconds}s x {a.rounds} rounds"
+            " alternating per worker count, 127.0.0.1, servers and wrk share the cores",
             "loadavg_1m_before": load_before,
-            "assign_rps": round(med(0, "rps"), 1),
-            "assign_p50_ms": round(med(0, "p50_us") / 1e3, 3),
-            "assign_p99_ms": round(med(0, "p99_us") / 1e3, 3),
-            "bare_rps": round(med(1, "rps"), 1),
-            "bare_p50_ms": round(med(1, "p50_us") / 1e3, 3),
-            "bare_p99_ms": round(med(1, "p99_us") / 1e3, 3),
-            "assign_server_cpu_us": round(med(0, "server_cpu_us_per_request"), 1),
-            "bare_server_cpu_us": round(med(1, "server_cpu_us_per_request"), 1),
-            "bare_over_assign_server_cpu": round(
-                med(1, "server_cpu_us_per_request") / med(0, "server_cpu_us_per_request"), 3
-            ),
-            "assign_over_bare_rps": round(rps_ratio, 3),
-            "assign_p99_over_bare_p99": round(p99_ratio, 3),
-            "rounds_rps": [[round(s["rps"]), round(b["rps"])] for s, b in rounds],
+            "cpus": os.cpu_count(),
+            "workers": per_workers,
             "http_batch_members": a.batch,
             "http_batch_median_ms": round(batch["median_ms"], 2),
             "targets": {
-                "assign_over_bare_rps_min": 0.8,
-                "assign_p99_over_bare_p99_max": 2.0,
-                "inprocess_single_median_us_max": 10.0,
-                "batch_10k_ms_max": 20.0,
+                "lookup_over_reference_rps_min": 0.5,
+                "lookup_p99_over_reference_p99_max": 2.0,
+                "lookup_rps_2_over_1_min": 1.7,
+                "inprocess_single_median_us_max": 5.0,
+                "batch_10k_ms_max": 10.0,
+                "http_batch_10k_ms_max": 40.0,
+                "evaluator_lookups_per_s_min": 200_000,
+                "document_kb_max": 100,
             },
         }
     )
-    if prof:
-        result["profile"] = prof
+    if "1" in per_workers and "2" in per_workers:
+        result["lookup_rps_2_over_1"] = round(
+            per_workers["2"]["lookup_rps"] / per_workers["1"]["lookup_rps"], 3
+        )
+        result["reference_rps_2_over_1"] = round(
+            per_workers["2"]["reference_rps"] / per_workers["1"]["reference_rps"], 3
+        )
+    result["loadavg_1m_after"] = round(os.getloadavg()[0], 2)
     if not a.skip_inprocess:
         ip = measure_inprocess(batch=a.batch)
-        result.update(
-            {
-                "inprocess_depth": ip["depth"],
-                "inprocess_single_median_us": ip["single_median_us"],
-                "inprocess_single_p99_us": ip["single_p99_us"],
-                "inprocess_batch_10k_ms": ip["batch_median_ms"],
-                "inprocess_batch_columns_10k_ms": ip["batch_columns_median_ms"],
-            }
-        )
+        result.update({f"inprocess_{k}": v for k, v in ip.items() if k != "bench"})
     shutil.rmtree(tmp, ignore_errors=True)
     print(json.dumps(result))
 

@@ -142,12 +142,6 @@ class Plan:
         assert root is not None
         return root
 
-    @staticmethod
-    def _draw(state: Any, member: bytes) -> float:
-        h = state.copy()
-        h.update(member)
-        return (int.from_bytes(h.digest(), "big") >> 11) * _SCALE
-
     def assign(self, member_id: str | int, features: Mapping[str, Any] | None = None) -> Answer:
         """The answer for one member. Raises LookupError for an empty or non-string id and for a
         feature value of the wrong type (a string for a numeric feature, a number for a
@@ -160,43 +154,63 @@ class Plan:
             raise LookupError(f"member_id must be a string, got {type(member_id).__name__}")
         if not member:
             raise LookupError("member_id must not be empty")
-        get = (features or {}).get
+        features = features or {}
+        get = features.get
+        fixed: dict[str, Any] | None = None
         for key, numeric in self.features:
             v = get(key)
             if v is None:
                 continue
+            t = type(v)
             if numeric:
+                if t is float or (t is int and -_EXACT_INT <= v <= _EXACT_INT):
+                    continue
                 if isinstance(v, bool) or not isinstance(v, int | float):
-                    raise LookupError(f"feature '{key}' must be a number, got {type(v).__name__}")
-                if isinstance(v, int) and not -_EXACT_INT <= v <= _EXACT_INT:
-                    try:
-                        float(v)
-                    except OverflowError:
-                        raise LookupError(f"feature '{key}' is beyond the float64 range") from None
-                    get = {**(features or {}), key: float(v)}.get  # compared as its double
-            elif not isinstance(v, str) and not (isinstance(v, float) and math.isnan(v)):
-                raise LookupError(f"feature '{key}' must be a string level, got {type(v).__name__}")
+                    raise LookupError(f"feature '{key}' must be a number, got {t.__name__}")
+                try:  # an int beyond 2**53 is compared as its double, as the server does
+                    x: Any = float(v)
+                except OverflowError:
+                    raise LookupError(f"feature '{key}' is beyond the float64 range") from None
+            elif t is str:
+                continue
+            elif isinstance(v, str):
+                x = str(v)
+            elif isinstance(v, float) and math.isnan(v):
+                x = None
+            else:
+                raise LookupError(f"feature '{key}' must be a string level, got {t.__name__}")
+            fixed = {key: x} if fixed is None else {**fixed, key: x}
+        if fixed is not None:
+            get = {**features, **fixed}.get
 
         node = self._root
-        defaults: set[int] = set()
-        while node[0] is not None:
-            v = get(node[0])
-            side: bool | None
-            if node[1]:
+        defaults: list[int] | None = None
+        while True:
+            key = node[0]
+            if key is None:
+                break
+            v = get(key)
+            if node[1]:  # numeric: x < threshold goes left; missing or NaN take the default
                 side = None if v is None or v != v else v < node[2]
-            else:
-                side = node[3].get(v) if isinstance(v, str) else None
+            else:  # categorical: a level the node saw; anything else takes the default
+                side = node[3].get(v)
             if side is None:
                 side = node[6]
-                defaults.add(node[7])
+                if defaults is None:
+                    defaults = [node[7]]
+                else:
+                    defaults.append(node[7])
             node = node[4] if side else node[5]
         cohort = node[8]
-        used = tuple(self._keys[i] for i in sorted(defaults))
+        used = () if defaults is None else tuple(self._keys[i] for i in sorted(set(defaults)))
         encoded = member.encode("utf-8")
-        if (
-            self.holdout_share > 0.0
-            and self._draw(self._holdout_state, encoded) < self.holdout_share
-        ):
-            return Answer(self.holdout_arm, cohort, self.version, True, used)
-        arm = bisect_right(self._cumulative[cohort], self._draw(self._arm_state, encoded))
+        if self.holdout_share > 0.0:
+            h = self._holdout_state.copy()
+            h.update(encoded)
+            if (int.from_bytes(h.digest(), "big") >> 11) * _SCALE < self.holdout_share:
+                return Answer(self.holdout_arm, cohort, self.version, True, used)
+        h = self._arm_state.copy()
+        h.update(encoded)
+        u = (int.from_bytes(h.digest(), "big") >> 11) * _SCALE
+        arm = bisect_right(self._cumulative[cohort], u)  # the first j with cumulative > u
         return Answer(self.arms[arm], cohort, self.version, False, used)

@@ -17,13 +17,35 @@ def _db():  # type: ignore[no-untyped-def]
     return Database.connect(settings.database_url)
 
 
+# Keep-alive: callers and load balancers reuse connections, and a proxy whose idle timeout
+# (commonly 60 s) outlives the server's sends requests onto sockets the server is closing, which
+# the caller sees as a failed lookup; so the server waits longer than such a proxy. Backlog: the
+# kernel queue of connections not yet accepted, for bursts while every worker is busy (the
+# kernel caps it at net.core.somaxconn, 4096 on current Linux).
+KEEP_ALIVE_SECONDS = 75
+BACKLOG = 2048
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
+    """uvicorn with its standard extras: httptools (a C HTTP parser) and uvloop. Each of
+    `--workers` processes builds its own app (key cache, live plans, poller) from the settings."""
     import uvicorn
 
-    from service.app import create_app
-
-    app = create_app()
-    uvicorn.run(app, host=args.host, port=args.port, log_level="warning", access_log=False)
+    if args.workers < 1:
+        raise SystemExit("--workers must be at least 1")
+    uvicorn.run(
+        "service.app:create_app",
+        factory=True,
+        host=args.host,
+        port=args.port,
+        workers=args.workers,
+        http="httptools",
+        loop="uvloop",
+        timeout_keep_alive=args.keep_alive,
+        backlog=args.backlog,
+        log_level="warning",
+        access_log=False,
+    )
     return 0
 
 
@@ -129,6 +151,16 @@ def build_parser() -> argparse.ArgumentParser:
     )
     s.add_argument("--host", default="127.0.0.1")
     s.add_argument("--port", type=int, default=8000)
+    s.add_argument(
+        "--workers", type=int, default=1, help="server processes sharing the port (one per core)"
+    )
+    s.add_argument(
+        "--keep-alive",
+        type=int,
+        default=KEEP_ALIVE_SECONDS,
+        help="seconds an idle connection stays open (longer than the load balancer's idle timeout)",
+    )
+    s.add_argument("--backlog", type=int, default=BACKLOG, help="pending-connection queue length")
     s.set_defaults(func=cmd_serve)
 
     w = sub.add_parser("worker", help="run job workers as separate processes")

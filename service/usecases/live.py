@@ -13,6 +13,7 @@ import numpy as np
 
 from service.observability import LIVE_VERSION
 from service.serving.index import CompiledPlan, compile_plan
+from service.serving.portable import document_bytes
 from service.serving.registry import PlanRegistry, RevisionPoller
 from service.stats.partition import Partition
 from service.store import models as model_repo
@@ -21,6 +22,12 @@ from service.store.db import Database
 from service.usecases.context import Services
 
 log = logging.getLogger("apportion.live")
+
+
+def portable_document(compiled: CompiledPlan) -> tuple[bytes, str]:
+    """The live version as the portable JSON document (docs/compiled-plan.md) and its content
+    hash; made once per compiled version."""
+    return document_bytes(compiled)
 
 
 def new_registry() -> PlanRegistry:

@@ -32,8 +32,8 @@ from typing_extensions import TypedDict
 
 from service.errors import ApportionError, InvalidInput, NotFound, PayloadTooLarge
 from service.observability import ASSIGNMENTS, LATENCY, REQUESTS
-from service.serving.portable import document_bytes
 from service.usecases.auth import check_role
+from service.usecases.live import portable_document
 
 router = APIRouter(tags=["assignment"])
 log = logging.getLogger("apportion.errors")
@@ -413,7 +413,7 @@ async def assign_batch(request: Request) -> Response:
 async def compiled_plan(request: Request, plan: str) -> Response:
     services = request.app.state.services
     compiled = _compiled(services, plan, request.headers.get("authorization"))
-    body, content_hash = document_bytes(compiled)
+    body, content_hash = portable_document(compiled)
     etag = f'"{content_hash}"'
     headers = {"ETag": etag, "Cache-Control": "no-cache"}
     sent = request.headers.get("if-none-match")
