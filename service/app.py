@@ -6,6 +6,8 @@ from __future__ import annotations
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from functools import partial
+from typing import Any
 
 from fastapi import FastAPI
 
@@ -74,6 +76,16 @@ def stop(services: Services) -> None:
     services.db.dispose()
 
 
+class ApportionApp(FastAPI):
+    """FastAPI whose ASGI entry point is `front`: the lookup gateway, which hands every request
+    that is not a lookup to FastAPI itself."""
+
+    front: Any = None
+
+    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
+        await self.front(scope, receive, send)
+
+
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or get_settings()
     configure_logging(settings.log_level)
@@ -87,7 +99,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         finally:
             stop(services)
 
-    app = FastAPI(
+    app = ApportionApp(
         title="Apportion",
         version=__version__,
         description=DESCRIPTION,
@@ -101,6 +113,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     for r in (assign, health, keys, audit, experiments, models, jobs, plans, watch, ui):
         app.include_router(r.router)
     app.add_middleware(RequestContextMiddleware)
-    # outermost: the lookups skip the shared middleware and the router (routes/assign.py)
-    app.add_middleware(assign.LookupGateway)
+    # in front of everything, FastAPI's own per-request work included: the lookups skip the
+    # shared middleware and the router (routes/assign.py says what the gateway does instead)
+    app.front = assign.LookupGateway(partial(FastAPI.__call__, app), services)
     return app

@@ -18,6 +18,7 @@ document and answer with the same functions when the gateway is not in front.
 
 from __future__ import annotations
 
+import itertools
 import json
 import logging
 import secrets
@@ -262,11 +263,17 @@ class _Disconnected(Exception):
 
 
 class LookupGateway:
-    """Pure ASGI middleware answering `POST /v1/plans/{plan}/assign[/batch]` (see the module
-    docstring); every other request passes through to the app untouched."""
+    """Pure ASGI front answering `POST /v1/plans/{plan}/assign[/batch]` (see the module
+    docstring); every other request (and the lifespan) passes to `app` untouched. `create_app`
+    puts it in front of FastAPI's own per-request work."""
 
-    def __init__(self, app: Any) -> None:
+    def __init__(self, app: Any, services: Any) -> None:
         self.app = app
+        self.services = services
+        # request ids: a random per-process prefix and a counter (unique, and cheaper than a
+        # random draw per request; ids need not be secret)
+        self._rid_prefix = secrets.token_hex(6) + "-"
+        self._rid_next = itertools.count(1).__next__
 
     async def __call__(self, scope: dict[str, Any], receive: Any, send: Any) -> None:
         if scope["type"] == "http" and scope["method"] == "POST":
@@ -295,8 +302,8 @@ class LookupGateway:
                 rid = v.decode("latin-1")[:100]
             elif k == b"content-length":
                 length = v
-        rid = rid or secrets.token_hex(16)
-        services = scope["app"].state.services
+        rid = rid or f"{self._rid_prefix}{self._rid_next():x}"
+        services = self.services
         settings = services.settings
         route = _BATCH_ROUTE if batch else _SINGLE_ROUTE
         extra: list[tuple[bytes, bytes]] = []
