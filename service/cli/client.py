@@ -26,6 +26,11 @@ from typing import Any, TextIO
 
 import httpx
 
+# the model methods the server offers (service.stats.models.METHODS; a test keeps them equal)
+MODEL_METHODS = (
+    "global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree",
+)  # fmt: skip
+
 ENV_URL, ENV_KEY = "APPORTION_URL", "APPORTION_KEY"
 DEFAULT_URL = "http://127.0.0.1:8000"
 CONTENT_TYPES = {
@@ -1149,7 +1154,7 @@ def add_commands(sub: argparse._SubParsersAction, *, audit: argparse._SubParsers
     p.add_argument(
         "--method",
         default="causal_tree",
-        choices=["global", "segments", "causal_tree", "intersect"],
+        choices=list(MODEL_METHODS),
     )
     p.add_argument(
         "--param", action="append", metavar="NAME=VALUE", help="method parameter (repeatable)"

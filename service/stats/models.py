@@ -18,6 +18,7 @@ import numpy as np
 
 from service.errors import InvalidInput
 from service.stats.binning import FeatureBins, bin_features
+from service.stats.decision import DECISION_METHODS, fit_decision
 from service.stats.estimates import CellMoments, MetricEstimates, cell_moments, metric_estimates
 from service.stats.honest import (
     criterion_outcomes,
@@ -34,8 +35,9 @@ from service.stats.tree import GrowSpec, Tree, grow
 
 __all__ = ["METHODS", "CohortModelFit", "fit_cohort_model", "honest_split", "validate_params"]
 
-METHODS = ("global", "segments", "causal_tree", "intersect")
+METHODS = ("global", "segments", "causal_tree", "intersect", *DECISION_METHODS)
 MAX_SEGMENT_CELLS = 4096
+_HONEST = ("causal_tree", "intersect", *DECISION_METHODS)
 
 
 @dataclass(frozen=True)
@@ -93,6 +95,41 @@ PARAMS: dict[str, dict[str, _Param]] = {
     },
     "intersect": {**_COMMON, **_TREE, "max_depth": _Param("int", 2, lo=1, hi=4)},
 }
+# decision-focused partitions (service.stats.decision): a shallow policy tree on doubly robust
+# Lagrangian scores; the three methods differ in the outcome model inside the scores
+_DECISION = {
+    **_COMMON,
+    "estimation_fraction": _TREE["estimation_fraction"],
+    "max_bins": _TREE["max_bins"],
+    "max_depth": _Param("int", 3, lo=1, hi=6),
+    "guardrails": _Param("guardrails", None),
+    "rounds": _Param("int", 3, lo=1, hi=10),
+    "split_z": _Param("float", 2.0, lo=0.0, hi=10.0),
+    "folds": _Param("int", 3, lo=2, hi=10),
+}
+_BOOST = {
+    "learning_rate": _Param("float", 0.05, lo=0.0, hi=1.0, lo_open=True),
+    "max_iter": _Param("int", 300, lo=10, hi=2000),
+    "max_leaf_nodes": _Param("int", 15, lo=2, hi=255),
+    "min_samples_leaf": _Param("int", 200, lo=1, hi=100_000),
+    "l2_regularization": _Param("float", 1.0, lo=0.0, hi=1e6),
+    "max_train_rows": _Param("int", 100_000, lo=1_000, hi=100_000_000),
+}
+PARAMS["two_model"] = {**_DECISION, **_BOOST}
+PARAMS["forest"] = {
+    **_DECISION,
+    "n_trees": _Param("int", 100, lo=1, hi=2000),
+    "sample_fraction": _Param("float", 0.5, lo=0.0, hi=1.0, lo_open=True),
+    "max_tree_units": _Param("int", 40_000, lo=100, hi=100_000_000),
+    "forest_max_depth": _Param("int", 8, lo=1, hi=16),
+    "forest_min_units": _Param("int", 25, lo=2, hi=100_000),
+    "mtry": _Param("int", 0, lo=0, hi=10_000, note="0 (automatic) or the features per tree"),
+}
+PARAMS["policy_tree"] = {
+    **_DECISION,
+    **_BOOST,
+    "outcome_model": _Param("choice", "arm_means", choices=("arm_means", "boosted")),
+}
 
 
 def _specs(table_or_specs: Any) -> tuple[tuple[FeatureSpec, ...], tuple[MetricSpec, ...]]:
@@ -141,6 +178,46 @@ def validate_params(method: str, params: dict | None, table_or_specs: Any) -> di
         out["metric_weights"] = w
     if method == "segments":
         out["bins"] = _segment_bins(out, features)
+    if "guardrails" in out:
+        out["guardrails"] = _guardrail_list(out["guardrails"], out["success_metric"], metrics)
+    return out
+
+
+def _guardrail_list(v: Any, success: str | None, metrics: tuple[MetricSpec, ...]) -> list[dict]:
+    """The guardrails whose prices shape a decision-focused partition, in the plan's shape:
+    [{metric, threshold, unit}] with the plan's sign rule (a lower-is-better metric's threshold
+    is an allowed rise >= 0, a higher-is-better one's an allowed drop <= 0)."""
+    name = "guardrails"
+    if v is None:
+        return []
+    if not isinstance(v, list):
+        raise _bad(name, "must be a list of {metric, threshold, unit}", v)
+    spec = {m.key: m for m in metrics}
+    out: list[dict] = []
+    for i, g in enumerate(v):
+        if not isinstance(g, dict) or "metric" not in g or "threshold" not in g:
+            raise _bad(name, f"item {i} must be an object with 'metric' and 'threshold'", g)
+        extra = sorted(set(g) - {"metric", "threshold", "unit"})
+        if extra:
+            raise _bad(name, f"item {i} has unknown keys {extra} (known: metric, threshold, unit)", g)
+        m, t, unit = g["metric"], g["threshold"], g.get("unit", "absolute")
+        if m not in spec:
+            raise _bad(name, f"item {i} names unknown metric {m!r} (known: {sorted(spec)})", g)
+        if m == (success or metrics[0].key):
+            raise _bad(name, f"item {i} names the success metric {m!r}", g)
+        if any(o["metric"] == m for o in out):
+            raise _bad(name, f"item {i} repeats metric {m!r}", g)
+        if isinstance(t, bool) or not isinstance(t, int | float) or not math.isfinite(t):
+            raise _bad(name, f"item {i} needs a finite number as threshold", g)
+        if unit not in ("absolute", "relative"):
+            raise _bad(name, f"item {i} has unit {unit!r}; must be absolute or relative", g)
+        if spec[m].direction == "lower" and t < 0:
+            raise _bad(name, f"item {i}: {m!r} is lower-is-better, so its threshold (allowed rise) "
+                       "must be >= 0", g)  # fmt: skip
+        if spec[m].direction == "higher" and t > 0:
+            raise _bad(name, f"item {i}: {m!r} is higher-is-better, so its threshold (allowed drop) "
+                       "must be <= 0", g)  # fmt: skip
+        out.append({"metric": m, "threshold": float(t), "unit": unit})
     return out
 
 
@@ -164,6 +241,8 @@ def _check(name: str, p: _Param, v: Any, fkeys: list[str], mkeys: list[str]) -> 
         if len(set(v)) != len(v):
             raise _bad(name, "must not repeat a feature", v)
         return list(v)
+    if p.kind == "guardrails":
+        return v  # checked with the metric specs in validate_params
     if p.kind == "choice":
         if v not in p.choices:
             raise _bad(name, f"must be one of {list(p.choices)}", v)
@@ -254,6 +333,12 @@ def fit_cohort_model(
         cohort = cnode[leaf]
         est = np.ones(n, dtype=bool)
         diag.update(_tree_diag(tree, bins))
+    elif method in DECISION_METHODS:
+        tree, cnode, n_coh, cohort, est, bins, diag = fit_decision(
+            table, method, p, lambda f: report(0.95 * f)
+        )
+        partition = tree.to_partition(features, cnode, n_coh)
+        diag.update(_tree_diag(tree, bins))
     else:
         partition, cohort, est, diag = _fit_honest(table, method, p, features, report)
     C = partition.n_cohorts
@@ -269,7 +354,7 @@ def fit_cohort_model(
         depth=partition.depth(),
         features_used=partition.used_features(),
         n_estimation=int(est.sum()),
-        n_structure=int(n - est.sum()) if method in ("causal_tree", "intersect") else n,
+        n_structure=int(n - est.sum()) if method in _HONEST else n,
         seconds=time.perf_counter() - t0,
     )
     report(1.0)

@@ -30,8 +30,13 @@ def readout(client: TestClient, keys) -> int:  # type: ignore[no-untyped-def]
         ("segments", {"features": ["plan", "age_days"], "bins": {"age_days": 2}}),
         ("causal_tree", {"max_depth": 2, "min_units_per_arm": 30, "cv_folds": 0}),
         ("intersect", {"max_depth": 1, "min_units_per_arm": 30}),
+        ("two_model", {"max_depth": 2, "min_units_per_arm": 30, "max_iter": 20, "folds": 2,
+                       "min_samples_leaf": 50}),  # fmt: skip
+        ("forest", {"max_depth": 2, "min_units_per_arm": 30, "n_trees": 4}),
+        ("policy_tree", {"max_depth": 2, "min_units_per_arm": 30,
+                         "guardrails": [{"metric": "refund", "threshold": 0.01}]}),  # fmt: skip
     ],
-    ids=["global", "segments", "causal_tree", "intersect"],
+    ids=["global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree"],
 )
 def test_every_method_fits_as_a_job(
     client: TestClient, keys, readout: int, method: str, params: dict

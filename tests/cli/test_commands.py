@@ -233,3 +233,12 @@ def test_format_table_aligns_columns() -> None:
 def test_parse_pairs_types() -> None:
     got = parse_pairs(["level=beginner", "tenure_days=40", "x=null", 'code="10"', "a=b=c"], "--f")
     assert got == {"level": "beginner", "tenure_days": 40, "x": None, "code": "10", "a": "b=c"}
+
+
+def test_cli_api_and_fitter_offer_the_same_model_methods():
+    from service.api.routes.models import FitIn
+    from service.cli.client import MODEL_METHODS
+    from service.stats.models import METHODS
+
+    assert MODEL_METHODS == METHODS
+    assert tuple(FitIn.model_fields["method"].annotation.__args__) == METHODS

@@ -15,6 +15,12 @@ FAST = {
     "segments": {"features": ["level", "device", "tenure_days"], "bins": {"tenure_days": 3}},
     "causal_tree": {"cv_folds": 2, "max_depth": 3},
     "intersect": {"max_depth": 1},
+    "two_model": {"max_iter": 30, "folds": 2, "min_samples_leaf": 50, "max_depth": 2},
+    "forest": {"n_trees": 5, "max_tree_units": 5000, "max_depth": 2},
+    "policy_tree": {
+        "max_depth": 2,
+        "guardrails": [{"metric": "cancelled", "threshold": 0.003}],
+    },
 }
 
 
@@ -74,7 +80,7 @@ def test_shares_and_masks(table, fits, method):
     assert np.array_equal(
         np.bincount(cohort, minlength=fit.partition.n_cohorts) / table.n, fit.shares
     )
-    honest = method in ("causal_tree", "intersect")
+    honest = method not in ("global", "segments")
     if not honest:  # no search to be honest about: every row estimates
         assert fit.estimation_mask.all()
     else:  # half of every arm, within rounding
@@ -159,6 +165,18 @@ def test_params_are_resolved_and_a_refit_repeats(table, fits):
         ("global", {"seed": -1}, "seed"),
         ("global", {"success_metric": "revenue"}, "success_metric"),
         ("lottery", {}, "method"),
+        ("policy_tree", {"guardrails": {"metric": "cancelled"}}, "guardrails"),
+        ("policy_tree", {"guardrails": [{"metric": "nope", "threshold": 0}]}, "guardrails"),
+        ("policy_tree", {"guardrails": [{"metric": "cancelled", "threshold": -0.1}]}, "guardrails"),
+        ("policy_tree", {"guardrails": [{"metric": "active_days", "threshold": 0}]}, "guardrails"),
+        ("policy_tree", {"guardrails": [{"metric": "cancelled", "threshold": 0, "confidence": 0.9}]},
+         "guardrails"),  # fmt: skip
+        ("policy_tree", {"guardrails": [{"metric": "cancelled", "threshold": 0, "unit": "pct"}]},
+         "guardrails"),  # fmt: skip
+        ("policy_tree", {"outcome_model": "oracle"}, "outcome_model"),
+        ("two_model", {"learning_rate": 0}, "learning_rate"),
+        ("forest", {"n_trees": 0}, "n_trees"),
+        ("forest", {"sample_fraction": 1.5}, "sample_fraction"),
     ],
 )
 def test_bad_parameters_name_the_parameter(table, method, params, name):

@@ -19,7 +19,9 @@ class Override(BaseModel):
 
 class FitIn(BaseModel):
     readout_version: int = Field(ge=1)
-    method: Literal["global", "segments", "causal_tree", "intersect"] = "causal_tree"
+    method: Literal[
+        "global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree"
+    ] = "causal_tree"
     params: dict[str, Any] = Field(
         default_factory=dict, description="method parameters; see the README"
     )
