@@ -13,6 +13,7 @@ import numpy as np
 from service.errors import Forbidden, InvalidInput, InvalidTransition, NotFound
 from service.optimize.problem import Guardrail, build_problem
 from service.optimize.report import impact_report
+from service.optimize.sensitivity import guardrail_sensitivity
 from service.optimize.solve import Solution, solve
 from service.serving.columns import lookup_columns
 from service.serving.index import new_salt
@@ -238,7 +239,8 @@ def draft_version(
         }
     )
     if draws <= INLINE_MAX_DRAWS:
-        report = _full_report(services, ctx, problem, sol, method, allocation, draws, seed)
+        report = _full_report(services, ctx, problem, sol, method, allocation, draws, seed,
+                              options=body.get("options") or {})  # fmt: skip
         job_id = None
     else:
         report = {"status": "pending"}
@@ -298,6 +300,7 @@ def _full_report(
     draws: int,
     seed: int,
     progress: Any = None,
+    options: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     on_draw = (lambda done, total: progress(done / max(total, 1))) if progress is not None else None
     report = impact_report(problem, sol, draws=draws, seed=seed, progress=on_draw)
@@ -316,6 +319,7 @@ def _full_report(
     return {
         **report,
         "status": "complete",
+        "guardrail_prices": guardrail_sensitivity(problem, sol, seed=seed, options=options),
         "held_out": held_out,
         "method": method,
         "allocation": allocation,
@@ -366,6 +370,7 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
         spec["draws"],
         spec["seed"],
         progress,
+        options=spec.get("options") or {},
     )
     with services.db.write() as s:
         row = repo.get_version(session=s, plan=plan, version=version)

@@ -37,7 +37,17 @@ def test_policy_tree_model_feeds_plans_and_lookups(client: TestClient, keys) -> 
     assert version["allocation"]["matrix"] and len(version["allocation"]["cohorts"]) == len(
         model["cohorts"]
     )
-    assert version["report"]["status"] == "complete"
+    report = version["report"]
+    assert report["status"] == "complete"
+    # item 4: every guardrail's price and the lift at five thresholds around the chosen one
+    prices = {row["metric"]: row for row in report["guardrail_prices"]}
+    assert set(prices) == {g["metric"] for g in guard}
+    for g in guard:
+        row = prices[g["metric"]]
+        assert [p["offset"] for p in row["points"]] == [-2, -1, 0, 1, 2]
+        assert row["points"][2]["threshold"] == g["threshold"]
+        assert row["points"][2]["lift"] == version["report"]["solution"]["objective"]
+        assert row["step"] > 0
 
 
 def test_bad_guardrail_parameter_is_a_422_naming_it(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
