@@ -469,13 +469,13 @@ def _history_section(history: list[dict[str, Any]], plan: dict[str, Any], v: dic
 
 def _decision_section(v: dict[str, Any], plan: dict[str, Any], viewer: dict[str, str]) -> str:
     status = v["status"]
-    actions: list[tuple[str, str]] = []
+    actions: list[str] = []  # review.js labels them
     if status == "draft":
-        actions = [("approve", "Approve"), ("reject", "Reject")]
+        actions = ["approve", "reject"]
     elif status in ("approved", "superseded"):
-        actions = [("activate", "Make live")]
+        actions = ["activate"]
     elif status == "active" and len(plan.get("activations") or []) > 1:
-        actions = [("rollback", "Roll back to the previous version")]
+        actions = ["rollback"]
     head = '<section id="decision" class="decision"><h2>Decision</h2>'
     if not actions:
         return (
@@ -493,15 +493,14 @@ def _decision_section(v: dict[str, Any], plan: dict[str, Any], viewer: dict[str,
         if own
         else ""
     )
-    buttons = "".join(
-        f'<button type="button" data-action="{a}" class="act act-{a}">{label}</button>'
-        for a, label in actions
-    )
+    # The buttons are not in the HTML: review.js creates them from data-actions and binds its
+    # handlers to those elements only, so markup that reached a page some other way (a version's
+    # notes, a forged fragment) can never trigger a decision.
     return head + (
         f'<form id="decide" class="decide" data-plan="{e(v["plan"])}" data-version="{e(v["version"])}" '
-        f'data-revision="{e(plan.get("revision"))}">{warn}'
+        f'data-revision="{e(plan.get("revision"))}" data-actions="{" ".join(actions)}">{warn}'
         f'<label for="reason">Reason (kept in the audit trail)</label>'
         f'<textarea id="reason" name="reason" rows="3" required="required" minlength="3" maxlength="5000"></textarea>'
-        f'<div class="buttons">{buttons}</div>'
+        f'<div class="buttons"></div>'
         f'<p id="decision-message" role="alert" aria-live="assertive"></p></form></section>'
     )

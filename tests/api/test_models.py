@@ -140,7 +140,11 @@ def test_a_failing_fit_leaves_a_readable_failed_job(
 
 def test_unknown_model_and_job_are_404(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
     assert client.get("/v1/models/77", headers=keys.h(keys.reader)).status_code == 404
+    unknown = "00000000-0000-4000-8000-000000000000"
     assert (
-        client.get("/v1/jobs/nope", headers=keys.h(keys.reader)).json()["detail"]
-        == "no job with id 'nope'"
+        client.get(f"/v1/jobs/{unknown}", headers=keys.h(keys.reader)).json()["detail"]
+        == f"no job with id '{unknown}'"
     )
+    # a segment that is not a job id at all is refused by its declared pattern
+    r = client.get("/v1/jobs/nope", headers=keys.h(keys.reader))
+    assert r.status_code == 422 and r.json()["errors"][0]["field"] == "path.job_id"

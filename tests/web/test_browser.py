@@ -4,6 +4,7 @@ activating) through the page changes the version's state in the API."""
 
 from __future__ import annotations
 
+import json
 from collections.abc import Iterator
 from typing import Any
 
@@ -169,3 +170,109 @@ def test_an_analyst_key_can_view_but_not_decide(page: Any, live: Live) -> None:
     assert page.locator("tr.cohort").count() >= 2
     assert page.locator("#decision button").count() == 0
     assert "deciding needs an approver key" in page.locator("#decision").inner_text()
+
+
+# ---- the forged activation (issue: a crafted link made the page render JSON as HTML) -----------
+
+FORGED_PLAN = "..%5C..%5C..%5Cv1%5Cplans%5Clesson-length"
+
+
+def _bait(version: int, revision: int) -> str:
+    """The notes of the attacker's draft: a form that looks like the page's decision form."""
+    return (
+        f"<form data-plan=lesson-length data-version={version} data-revision={revision}>"
+        "<textarea>ok</textarea><p id=decision-message></p>"
+        "<button data-action=activate>Approve version</button></form>"
+    )
+
+
+def _plan(live: Live) -> dict[str, Any]:
+    r = live.client.get("/v1/plans/lesson-length", headers=live.keys.h(live.keys.reader))
+    assert r.status_code == 200, r.text
+    return r.json()
+
+
+def _click_bait_if_shown(pg: Any) -> None:
+    """What the victim does: press the button labelled 'Approve version' if the page shows one."""
+    bait = pg.locator("button", has_text="Approve version")
+    if bait.count():
+        if pg.locator("textarea").count():
+            pg.locator("textarea").first.fill("Looks fine")
+        bait.first.click(no_wait_after=True)  # a submit button: CSP blocks the form post
+    pg.wait_for_timeout(500)  # room for any request the click would send
+
+
+def test_the_forged_activation_link_activates_nothing(page: Any, live: Live) -> None:
+    """The reproducer step by step: an analyst drafts a version whose notes hold a decision form
+    aimed at another approved version; an approver who is signed in opens a link whose plan
+    segment holds backslashes, and presses the button the page shows."""
+    h = live.keys.h
+    target = draft_plan(live.client, live.keys, live.model_id)["version"]  # type: ignore[attr-defined]
+    r = live.client.post(
+        f"/v1/plans/lesson-length/versions/{target}/approve",
+        json={"reason": "fine on its own"},
+        headers=h(live.keys.approver),
+    )
+    assert r.status_code == 200, r.text
+    before = _plan(live)
+    bait = draft_plan(
+        live.client,
+        live.keys,
+        live.model_id,  # type: ignore[attr-defined]
+        notes=_bait(target, before["revision"]),
+    )["version"]
+
+    page.goto(f"{live.base}/ui/plans/lesson-length/versions/1")
+    _sign_in(page, live.keys.approver)  # the key now sits in this tab's sessionStorage
+    answer = page.goto(f"{live.base}/ui/plans/{FORGED_PLAN}/versions/{bait}")
+    assert answer is not None and answer.status == 422  # the segment is no plan key
+    assert answer.headers["content-type"].startswith("application/problem+json")
+    _click_bait_if_shown(page)
+
+    after = _plan(live)
+    assert (after["live_version"], after["revision"]) == (
+        before["live_version"],
+        before["revision"],
+    )
+    assert not [u for u in page.requested if u.endswith("/activate")], page.requested
+
+
+def test_the_page_renders_no_answer_but_a_marked_html_fragment(page: Any, live: Live) -> None:
+    """Were a fragment URL ever to answer with the JSON API's body (here: the route is faked to
+    do so), the script shows an error instead of inserting the text as HTML."""
+    bait = json.dumps({"spec": {"notes": _bait(1, 0)}})
+    page.route(
+        "**/ui/fragments/plans/lesson-length/versions/1",
+        lambda route: route.fulfill(status=200, content_type="application/json", body=bait),
+    )
+    page.goto(f"{live.base}/ui/plans/lesson-length/versions/1")
+    page.fill("#apikey", live.keys.approver)
+    page.click("#keyform button[type=submit]")
+    page.locator("#content .error").wait_for()
+    assert "something other than a review page" in page.locator("#content").inner_text()
+    assert page.locator("#content button").count() == 0
+
+
+def test_buttons_the_page_did_not_make_start_no_decision(page: Any, live: Live) -> None:
+    """Markup inside a genuine-looking fragment (a faked answer with the right type and marker)
+    holding its own decision button: the page binds nothing to it, so clicking sends nothing."""
+    fragment = (
+        '<div class="fragment" data-viewer="t-approver" data-role="approver">'
+        f'<p class="notes">{_bait(1, 0)}</p></div>'
+    )
+    page.route(
+        "**/ui/fragments/plans/lesson-length/versions/1",
+        lambda route: route.fulfill(
+            status=200,
+            content_type="text/html; charset=utf-8",
+            headers={"X-Apportion-Fragment": "1"},
+            body=fragment,
+        ),
+    )
+    page.goto(f"{live.base}/ui/plans/lesson-length/versions/1")
+    _sign_in(page, live.keys.approver)
+    assert page.locator("button", has_text="Approve version").count() == 1
+    before = _plan(live)
+    _click_bait_if_shown(page)
+    assert not [u for u in page.requested if "/v1/" in u], page.requested
+    assert _plan(live)["revision"] == before["revision"]

@@ -127,7 +127,12 @@ def test_without_a_live_version_the_diff_says_so() -> None:
 
 
 def _buttons(html: str) -> list[str]:
-    return [b.get("data-action") for b in _tree(html).iter("button")]
+    """The actions the page's script will offer: named by the decision form, never as buttons in
+    the fragment itself (review.js creates and binds the buttons)."""
+    root = _tree(html)
+    assert not list(root.iter("button"))
+    forms = _by_attr(root, "id", "decide")
+    return forms[0].get("data-actions").split() if forms else []
 
 
 @pytest.mark.parametrize(

@@ -24,6 +24,62 @@ def test_shell_needs_no_key_and_allows_only_this_origin(client: TestClient) -> N
     assert client.get("/ui", follow_redirects=False).headers["location"] == "/ui/"
 
 
+# The plan segment of the forged-activation reproducer: backslashes that a browser turns into
+# slashes when the page builds its fragment URL, walking it over to the JSON API.
+FORGED_PLAN = "..%5C..%5C..%5Cv1%5Cplans%5Clesson-length"
+
+
+@pytest.mark.parametrize(
+    "path",
+    [
+        f"/ui/plans/{FORGED_PLAN}/versions/3",
+        f"/ui/fragments/plans/{FORGED_PLAN}/versions/3",
+        "/ui/plans/Lesson.Length/versions/3",
+        "/ui/plans/lesson%00length/versions/3",
+    ],
+)
+def test_a_page_for_a_segment_that_is_no_plan_key_is_refused(
+    client: TestClient, keys, path: str
+) -> None:  # type: ignore[no-untyped-def]
+    r = client.get(path, headers=keys.h(keys.reader))
+    assert r.status_code == 422, r.text
+    assert r.headers["content-type"].startswith("application/problem+json")
+    assert r.json()["errors"][0]["field"] == "path.plan"
+    assert "data-fragment" not in r.text
+
+
+@pytest.mark.parametrize(
+    ("method", "path"),
+    [
+        ("GET", f"/v1/plans/{FORGED_PLAN}"),
+        ("GET", f"/v1/plans/{FORGED_PLAN}/versions/1"),
+        ("POST", f"/v1/plans/{FORGED_PLAN}/activate"),
+        ("GET", f"/v1/plans/{FORGED_PLAN}/watch"),
+        ("GET", "/v1/experiments/a%5Cb"),
+        ("POST", "/v1/experiments/a%5Cb/models"),
+    ],
+)
+def test_every_route_checks_its_key_segment(
+    client: TestClient, keys, method: str, path: str
+) -> None:  # type: ignore[no-untyped-def]
+    r = client.request(method, path, headers=keys.h(keys.admin), json={})
+    assert r.status_code == 422, r.text
+    fields = [e["field"] for e in r.json()["errors"]]
+    assert "path.plan" in fields or "path.key" in fields, fields
+
+
+def test_fragments_carry_the_marker_the_page_script_requires(
+    client: TestClient, keys, drafted: dict
+) -> None:  # type: ignore[no-untyped-def]
+    for path in ("/ui/fragments/plans", "/ui/fragments/plans/lesson-length/versions/1"):
+        r = client.get(path, headers=keys.h(keys.reader))
+        assert r.status_code == 200 and r.headers["x-apportion-fragment"] == "1"
+    shell = client.get("/ui/plans/lesson-length/versions/1")
+    assert "x-apportion-fragment" not in shell.headers  # the shell is no fragment
+    api = client.get("/v1/plans/lesson-length/versions/1", headers=keys.h(keys.reader))
+    assert "x-apportion-fragment" not in api.headers
+
+
 def test_fragment_without_a_key_is_401_problem_json(client: TestClient) -> None:
     r = client.get("/ui/fragments/plans/lesson-length/versions/1")
     assert r.status_code == 401

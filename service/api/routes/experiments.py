@@ -11,10 +11,10 @@ from starlette.concurrency import run_in_threadpool
 
 from service.api.body import UPLOAD_OPENAPI, read_limited
 from service.api.deps import AnalystDep, ReaderDep, ServicesDep
+from service.api.params import KEY_PATTERN, ExperimentKey
 from service.usecases import experiments as uc
 
 router = APIRouter(prefix="/v1/experiments", tags=["experiments"])
-KEY = r"^[a-z0-9][a-z0-9_-]{0,99}$"
 COLUMN = r"^[A-Za-z_][A-Za-z0-9_]{0,99}$"
 
 
@@ -42,7 +42,7 @@ class FeatureIn(BaseModel):
 
 
 class ExperimentIn(BaseModel):
-    key: str = Field(pattern=KEY)
+    key: str = Field(pattern=KEY_PATTERN)
     name: str | None = Field(None, max_length=200)
     arms: list[ArmIn] = Field(min_length=2, max_length=20)
     control: str
@@ -56,7 +56,7 @@ def declare(body: ExperimentIn, actor: AnalystDep, services: ServicesDep) -> dic
 
 
 @router.get("/{key}", summary="An experiment's declaration and its readouts")
-def get_experiment(key: str, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_experiment(key: ExperimentKey, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
     return uc.get(services.db, key=key)
 
 
@@ -72,7 +72,7 @@ def get_experiment(key: str, _: ReaderDep, services: ServicesDep) -> dict[str, A
     },
 )
 async def upload_readout(
-    key: str, request: Request, actor: AnalystDep, services: ServicesDep
+    key: ExperimentKey, request: Request, actor: AnalystDep, services: ServicesDep
 ) -> JSONResponse:
     body = await read_limited(request, services.settings.max_upload_bytes)
     ctype = request.headers.get("content-type", "")
@@ -86,5 +86,7 @@ async def upload_readout(
     "/{key}/readouts/{version}",
     summary="A readout's summary: per arm and metric n, mean, standard error",
 )
-def get_readout(key: str, version: int, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_readout(
+    key: ExperimentKey, version: int, _: ReaderDep, services: ServicesDep
+) -> dict[str, Any]:
     return uc.get_readout(services.db, key=key, version=version)

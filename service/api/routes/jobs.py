@@ -7,6 +7,7 @@ from typing import Any
 from fastapi import APIRouter
 
 from service.api.deps import ReaderDep, ServicesDep
+from service.api.params import JobId
 from service.usecases import jobs as uc
 
 router = APIRouter(tags=["jobs"])
@@ -16,5 +17,5 @@ router = APIRouter(tags=["jobs"])
     "/v1/jobs/{job_id}",
     summary="A job's state: queued, running, done or failed, with progress 0..1",
 )
-def get_job(job_id: str, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_job(job_id: JobId, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
     return uc.get_job(services, job_id)

@@ -8,6 +8,7 @@ from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
 from service.api.deps import AnalystDep, ReaderDep, ServicesDep
+from service.api.params import ExperimentKey
 from service.usecases import models as uc
 
 router = APIRouter(tags=["models"])
@@ -38,7 +39,9 @@ class FitIn(BaseModel):
     status_code=status.HTTP_202_ACCEPTED,
     summary="Fit a cohort model (runs as a job)",
 )
-def fit(key: str, body: FitIn, actor: AnalystDep, services: ServicesDep) -> dict[str, Any]:
+def fit(
+    key: ExperimentKey, body: FitIn, actor: AnalystDep, services: ServicesDep
+) -> dict[str, Any]:
     return uc.start_fit(
         services,
         key=key,

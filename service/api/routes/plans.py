@@ -2,18 +2,16 @@
 
 from __future__ import annotations
 
-import re
 from typing import Any, Literal
 
 from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
 from service.api.deps import AnalystDep, ApproverDep, ReaderDep, ServicesDep
-from service.errors import InvalidInput
+from service.api.params import PlanKey
 from service.usecases import plans as uc
 
 router = APIRouter(prefix="/v1/plans", tags=["plans"])
-PLAN = r"^[a-z0-9][a-z0-9_-]{0,99}$"
 
 
 class GuardrailIn(BaseModel):
@@ -94,16 +92,14 @@ def list_plans(_: ReaderDep, services: ServicesDep) -> dict[str, Any]:
     summary="Draft a plan version from a cohort model",
     responses={422: {"description": "invalid problem, or no allocation satisfies the guardrails"}},
 )
-def draft(plan: str, body: DraftIn, actor: AnalystDep, services: ServicesDep) -> dict[str, Any]:
-    if not re.match(PLAN, plan):
-        raise InvalidInput(f"plan key '{plan}' must match {PLAN}", errors=[{"field": "plan"}])
+def draft(plan: PlanKey, body: DraftIn, actor: AnalystDep, services: ServicesDep) -> dict[str, Any]:
     data = body.model_dump()
     data["holdout"] = {k: v for k, v in data["holdout"].items() if v is not None}
     return uc.draft_version(services, plan=plan, body=data, actor=actor)
 
 
 @router.get("/{plan}", summary="A plan: live version, revision, versions and activations")
-def get_plan(plan: str, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_plan(plan: PlanKey, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
     return uc.get_plan(services, plan=plan)
 
 
@@ -111,13 +107,13 @@ def get_plan(plan: str, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
     "/{plan}/versions/{version}",
     summary="A plan version with its report and its diff against the live version",
 )
-def get_version(plan: str, version: int, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_version(plan: PlanKey, version: int, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
     return uc.get_version(services, plan=plan, version=version)
 
 
 @router.post("/{plan}/versions/{version}/approve", summary="Approve a draft (not its author)")
 def approve(
-    plan: str, version: int, body: DecisionIn, actor: ApproverDep, services: ServicesDep
+    plan: PlanKey, version: int, body: DecisionIn, actor: ApproverDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.decide(
         services, plan=plan, version=version, approve=True, reason=body.reason, actor=actor
@@ -126,7 +122,7 @@ def approve(
 
 @router.post("/{plan}/versions/{version}/reject", summary="Reject a draft")
 def reject(
-    plan: str, version: int, body: DecisionIn, actor: ApproverDep, services: ServicesDep
+    plan: PlanKey, version: int, body: DecisionIn, actor: ApproverDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.decide(
         services, plan=plan, version=version, approve=False, reason=body.reason, actor=actor
@@ -139,7 +135,7 @@ def reject(
     responses={409: {"description": "stale revision"}},
 )
 def activate(
-    plan: str, body: ActivateIn, actor: ApproverDep, services: ServicesDep
+    plan: PlanKey, body: ActivateIn, actor: ApproverDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.activate(
         services,
@@ -155,7 +151,7 @@ def activate(
     "/{plan}/rollback", summary="Return to the previously live version (or a named approved one)"
 )
 def rollback(
-    plan: str, body: RollbackIn, actor: ApproverDep, services: ServicesDep
+    plan: PlanKey, body: RollbackIn, actor: ApproverDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.rollback(
         services,

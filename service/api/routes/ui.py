@@ -20,6 +20,7 @@ from fastapi import APIRouter
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from service.api.deps import ReaderDep, ServicesDep
+from service.api.params import PlanKey
 from service.errors import NotFound
 from service.usecases import review
 from service.web import pages
@@ -47,6 +48,12 @@ def _html(body: str) -> HTMLResponse:
     return HTMLResponse(body, headers=HEADERS)
 
 
+def _fragment(body: str) -> HTMLResponse:
+    """A fragment for review.js, which inserts a 200 answer only when it carries this marker and
+    the text/html type: no other route (the JSON API, an error) can be rendered into the page."""
+    return HTMLResponse(body, headers={**HEADERS, "X-Apportion-Fragment": "1"})
+
+
 @cache
 def _static(name: str) -> bytes:
     return (STATIC / name).read_bytes()
@@ -65,7 +72,7 @@ def index_page() -> HTMLResponse:
 
 
 @router.get("/plans/{plan}/versions/{version}", response_class=HTMLResponse)
-def version_page(plan: str, version: int) -> HTMLResponse:
+def version_page(plan: PlanKey, version: int) -> HTMLResponse:
     return _html(
         pages.shell(
             title=f"{plan} version {version}",
@@ -77,17 +84,17 @@ def version_page(plan: str, version: int) -> HTMLResponse:
 
 @router.get("/fragments/plans", response_class=HTMLResponse)
 def index_fragment(actor: ReaderDep, services: ServicesDep) -> HTMLResponse:
-    return _html(
+    return _fragment(
         pages.index_fragment(review.plans_index(services), {"name": actor.name, "role": actor.role})
     )
 
 
 @router.get("/fragments/plans/{plan}/versions/{version}", response_class=HTMLResponse)
 def version_fragment(
-    plan: str, version: int, actor: ReaderDep, services: ServicesDep
+    plan: PlanKey, version: int, actor: ReaderDep, services: ServicesDep
 ) -> HTMLResponse:
     data = review.review_page(services, plan=plan, version=version)
-    return _html(pages.version_fragment(data, {"name": actor.name, "role": actor.role}))
+    return _fragment(pages.version_fragment(data, {"name": actor.name, "role": actor.role}))
 
 
 @router.get("/static/{name}")

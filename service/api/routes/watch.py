@@ -10,6 +10,7 @@ from starlette.concurrency import run_in_threadpool
 
 from service.api.body import UPLOAD_OPENAPI, read_limited
 from service.api.deps import AnalystDep, ApproverDep, ReaderDep, ServicesDep
+from service.api.params import PlanKey
 from service.usecases import watch as uc
 
 router = APIRouter(prefix="/v1/plans", tags=["watch"])
@@ -34,7 +35,7 @@ class AutoRollbackIn(BaseModel):
     openapi_extra=UPLOAD_OPENAPI,
 )
 async def monitor(
-    plan: str,
+    plan: PlanKey,
     request: Request,
     actor: AnalystDep,
     services: ServicesDep,
@@ -54,14 +55,14 @@ async def monitor(
 
 @router.get("/{plan}/watch", summary="Guardrail status and interval history of the watched version")
 def get_watch(
-    plan: str, _: ReaderDep, services: ServicesDep, version: int | None = None
+    plan: PlanKey, _: ReaderDep, services: ServicesDep, version: int | None = None
 ) -> dict[str, Any]:
     return uc.get_watch(services, plan=plan, version=version)
 
 
 @router.post("/{plan}/auto-rollback", summary="Turn automatic rollback on or off (approver)")
 def auto_rollback(
-    plan: str, body: AutoRollbackIn, actor: ApproverDep, services: ServicesDep
+    plan: PlanKey, body: AutoRollbackIn, actor: ApproverDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.set_auto_rollback(
         services,
