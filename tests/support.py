@@ -141,7 +141,11 @@ def make_keys(services, prefix: str = "t") -> Keys:  # type: ignore[no-untyped-d
     made = {}
     for name in ("admin", "approver", "approver2", "analyst", "reader"):
         _, made[name] = create_key(
-            services.db, name=f"{prefix}-{name}", role=name.rstrip("2"), actor=SYSTEM
+            services.db,
+            name=f"{prefix}-{name}",
+            owner=f"{prefix}-{name}@people",
+            role=name.rstrip("2"),
+            actor=SYSTEM,
         )
     services.keys.refresh()
     return Keys(**made)

@@ -283,8 +283,8 @@ class Api:
     def audit_verify(self) -> dict[str, Any]:
         return self._get("/v1/audit/verify")
 
-    def create_key(self, name: str, role: str) -> dict[str, Any]:
-        return self._post("/v1/keys", {"name": name, "role": role})
+    def create_key(self, name: str, role: str, *, owner: str) -> dict[str, Any]:
+        return self._post("/v1/keys", {"name": name, "owner": owner, "role": role})
 
 
 class ProgressBar:
@@ -1088,12 +1088,13 @@ def cmd_audit_check(args: argparse.Namespace) -> int:
 @_command
 def cmd_key_issue(args: argparse.Namespace) -> int:
     with _api(args) as api:
-        got = api.create_key(args.name, args.role)
+        got = api.create_key(args.name, args.role, owner=args.owner)
     if args.json:
         print(json.dumps(got, indent=2))
     else:
         print(
-            f"created key {got['id']} '{got['name']}' with role {got['role']}; the secret is "
+            f"created key {got['id']} '{got['name']}' of {got['owner']} with role {got['role']}; "
+            "the secret is "
             "shown once:",
             file=sys.stderr,
         )
@@ -1270,4 +1271,7 @@ def add_commands(sub: argparse._SubParsersAction, *, audit: argparse._SubParsers
     if ksub is not None:
         p = leaf(ksub, "issue", cmd_key_issue, "create a key through the API (admin key)")
         p.add_argument("--name", required=True)
+        p.add_argument(
+            "--owner", required=True, help="the person or system identity the key belongs to"
+        )
         p.add_argument("--role", required=True, choices=["reader", "analyst", "approver", "admin"])

@@ -107,7 +107,9 @@ def cmd_keys(args: argparse.Namespace) -> int:
 
     db = _db()
     upgrade(db.engine)
-    rec, secret = create_key(db, name=args.name, role=args.role, actor=SYSTEM)
+    rec, secret = create_key(
+        db, name=args.name, owner=args.owner or args.name, role=args.role, actor=SYSTEM
+    )
     print(
         f"created key {rec.id} '{rec.name}' with role {rec.role}; the secret is shown once:",
         file=sys.stderr,
@@ -175,6 +177,12 @@ def build_parser() -> argparse.ArgumentParser:
     ksub = k.add_subparsers(dest="keys_action", required=True)
     kc = ksub.add_parser("create", help="create a key; prints the secret once, as the last line")
     kc.add_argument("--name", required=True)
+    kc.add_argument(
+        "--owner",
+        default=None,
+        help="the person or system identity the key belongs to (default: the name; the author "
+        "rule compares owners, so give every person's keys that person's owner)",
+    )
     kc.add_argument("--role", required=True, choices=["reader", "analyst", "approver", "admin"])
     kc.set_defaults(func=cmd_keys)
 

@@ -275,12 +275,21 @@ def run_demo(
             "create the keys (admin bootstrapped in the database, the rest via the API)"
         ):
             services = app.state.services
-            _, admin_secret = create_key(services.db, name="demo-admin", role="admin", actor=SYSTEM)
+            _, admin_secret = create_key(
+                services.db, name="demo-admin", owner="ops@demo", role="admin", actor=SYSTEM
+            )
             services.keys.refresh()
             admin = Api(url, admin_secret)
             made = {"demo-admin": {"role": "admin", "secret": admin_secret}}
-            for name, role in [("demo-analyst", "analyst"), ("demo-approver", "approver")]:
-                made[name] = {"role": role, "secret": admin.create_key(name, role)["secret"]}
+            people = [
+                ("demo-analyst", "analyst", "analyst@demo"),
+                ("demo-approver", "approver", "approver@demo"),
+            ]
+            for name, role, owner in people:
+                made[name] = {
+                    "role": role,
+                    "secret": admin.create_key(name, role, owner=owner)["secret"],
+                }
             analyst = Api(url, made["demo-analyst"]["secret"])
             approver = Api(url, made["demo-approver"]["secret"])
             report["keys"] = made

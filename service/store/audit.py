@@ -44,9 +44,17 @@ def _body(e: AuditEntry) -> dict[str, Any]:
 
 @dataclass(frozen=True)
 class Actor:
+    """Who acts: the key's name and role, and the owner (the person or system identity the key
+    belongs to; one owner may hold several keys). Separation of duties compares `identity`."""
+
     name: str
     role: str
     key_id: int | None = None
+    owner: str | None = None
+
+    @property
+    def identity(self) -> str:
+        return self.owner or self.name
 
 
 def append(

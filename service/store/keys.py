@@ -9,7 +9,7 @@ from dataclasses import dataclass
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from service.errors import NotFound
+from service.errors import Conflict, NotFound
 from service.store.db import utcnow
 from service.store.tables import ApiKey
 
@@ -25,6 +25,7 @@ def hash_secret(secret: str) -> str:
 class KeyRecord:
     id: int
     name: str
+    owner: str
     role: str
     secret_sha256: str
     created_at: str
@@ -35,6 +36,7 @@ class KeyRecord:
         return {
             "id": self.id,
             "name": self.name,
+            "owner": self.owner,
             "role": self.role,
             "created_at": self.created_at,
             "created_by": self.created_by,
@@ -46,6 +48,7 @@ def _record(row: ApiKey) -> KeyRecord:
     return KeyRecord(
         row.id,
         row.name,
+        row.owner,
         row.role,
         row.secret_sha256,
         row.created_at,
@@ -54,10 +57,13 @@ def _record(row: ApiKey) -> KeyRecord:
     )
 
 
-def create_key(*, session: Session, name: str, role: str, created_by: str) -> tuple[KeyRecord, str]:
+def create_key(
+    *, session: Session, name: str, owner: str, role: str, created_by: str
+) -> tuple[KeyRecord, str]:
     secret = SECRET_PREFIX + secrets.token_urlsafe(32)
     row = ApiKey(
         name=name,
+        owner=owner,
         role=role,
         secret_sha256=hash_secret(secret),
         created_at=utcnow(),
@@ -76,10 +82,29 @@ def find_by_hash(*, session: Session, secret_sha256: str) -> KeyRecord | None:
 
 
 def revoke_key(*, session: Session, key_id: int) -> KeyRecord:
+    """Revoke a key; never the last active admin key, which would leave nobody able to make or
+    revoke keys. The active admin rows are locked (in id order, the one order every caller uses)
+    before they are counted, so two admins revoking each other at once cannot both succeed."""
     row = session.get(ApiKey, key_id)
     if row is None:
         raise NotFound(f"no API key with id {key_id}")
     if row.revoked_at is None:
+        if row.role == "admin":
+            admins = (
+                session.execute(
+                    select(ApiKey.id)
+                    .where(ApiKey.role == "admin", ApiKey.revoked_at.is_(None))
+                    .order_by(ApiKey.id)
+                    .with_for_update()
+                )
+                .scalars()
+                .all()
+            )
+            if list(admins) == [key_id]:
+                raise Conflict(
+                    f"key {key_id} ('{row.name}') is the last active admin key; create another "
+                    "admin key before revoking it"
+                )
         row.revoked_at = utcnow()
         session.flush()
     return _record(row)

@@ -23,6 +23,7 @@ IMMUTABLE = (
     "salt",
     "content_hash",
     "author",
+    "author_owner",
     "created_at",
 )
 

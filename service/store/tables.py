@@ -94,6 +94,8 @@ class ApiKey(Base):
     __tablename__ = "api_keys"
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     name: Mapped[str] = mapped_column(String(100))
+    # the person or system identity the key belongs to; the author rule compares owners, not names
+    owner: Mapped[str] = mapped_column(String(100), index=True)
     role: Mapped[str] = mapped_column(String(20))
     secret_sha256: Mapped[str] = mapped_column(String(64), unique=True)
     created_at: Mapped[str] = mapped_column(String(40))
@@ -162,6 +164,7 @@ class PlanVersion(Base):
     salt: Mapped[str] = mapped_column(String(64))
     content_hash: Mapped[str] = mapped_column(String(64))
     author: Mapped[str] = mapped_column(String(100))
+    author_owner: Mapped[str] = mapped_column(String(100))  # the owner of the author's key
     created_at: Mapped[str] = mapped_column(String(40))
     decided_by: Mapped[str | None] = mapped_column(String(100), nullable=True)
     decided_at: Mapped[str | None] = mapped_column(String(40), nullable=True)

@@ -52,7 +52,7 @@ class KeyCache:
         rec = self._keys.get(digest)
         if rec is None or not hmac.compare_digest(rec.secret_sha256, digest):
             raise Unauthenticated("unknown or revoked API key")
-        return Actor(rec.name, rec.role, rec.id)
+        return Actor(rec.name, rec.role, rec.id, rec.owner)
 
     def authenticate(self, header: str | None) -> Actor:
         digest = keys_store.hash_secret(parse_bearer(header))
@@ -64,11 +64,11 @@ class KeyCache:
             or not hmac.compare_digest(rec.secret_sha256, digest)
         ):
             raise Unauthenticated("unknown or revoked API key")
-        return Actor(rec.name, rec.role, rec.id)
+        return Actor(rec.name, rec.role, rec.id, rec.owner)
 
 
 def create_key(
-    db: Database, *, name: str, role: str, actor: Actor
+    db: Database, *, name: str, owner: str, role: str, actor: Actor
 ) -> tuple[keys_store.KeyRecord, str]:
     if role not in ROLE_RANK:
         from service.errors import InvalidInput
@@ -78,14 +78,16 @@ def create_key(
             errors=[{"field": "role", "problem": f"unknown role '{role}'"}],
         )
     with db.write() as s:
-        rec, secret = keys_store.create_key(session=s, name=name, role=role, created_by=actor.name)
+        rec, secret = keys_store.create_key(
+            session=s, name=name, owner=owner, role=role, created_by=actor.name
+        )
         audit.append(
             s,
             actor=actor,
             action="key.create",
             entity="api_key",
             entity_id=rec.id,
-            payload={"name": name, "role": role},
+            payload={"name": name, "owner": owner, "role": role},
         )
     return rec, secret
 
@@ -101,10 +103,10 @@ def revoke_key(
             action="key.revoke",
             entity="api_key",
             entity_id=key_id,
-            payload={"name": rec.name, "role": rec.role},
+            payload={"name": rec.name, "owner": rec.owner, "role": rec.role},
             reason=reason,
         )
     return rec
 
 
-SYSTEM = Actor("system", "admin")
+SYSTEM = Actor("system", "admin", owner="system")

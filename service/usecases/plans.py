@@ -262,6 +262,7 @@ def draft_version(
             salt=salt,
             content_hash=hashlib.sha256(canonical_json(content).encode()).hexdigest(),
             author=actor.name,
+            author_owner=actor.identity,
         )
         if report.get("status") == "pending":
             job = job_repo.create_job(
@@ -442,6 +443,7 @@ def version_view(row: Any, *, live_version: int | None) -> dict[str, Any]:
         "live": live_version == row.version,
         "model_id": row.model_id,
         "author": row.author,
+        "author_owner": row.author_owner,
         "created_at": row.created_at,
         "decided_by": row.decided_by,
         "decided_at": row.decided_at,
@@ -539,9 +541,10 @@ def decide(
             raise InvalidTransition(
                 f"plan version {plan}/{version} is {row.status}; only a draft can be approved or rejected"
             )
-        if approve and row.author == actor.name:
+        if approve and row.author_owner == actor.identity:
             raise Forbidden(
-                f"'{actor.name}' drafted {plan}/{version}; another approver must approve it"
+                f"'{actor.identity}' drafted {plan}/{version} (key '{row.author}'); another "
+                "approver must approve it"
             )
         if approve and row.report.get("status") != "complete":
             raise InvalidTransition(

@@ -487,7 +487,9 @@ def _decision_section(v: dict[str, Any], plan: dict[str, Any], viewer: dict[str,
             f"<p>Your key ({e(viewer['name'])}, {e(viewer['role'])}) can view this page; deciding "
             "needs an approver key.</p></section>"
         )
-    own = status == "draft" and v.get("author") == viewer["name"]
+    own = status == "draft" and v.get("author_owner", v.get("author")) == viewer.get(
+        "owner", viewer["name"]
+    )
     warn = (
         '<p class="warn">You drafted this version: another approver must approve it.</p>'
         if own

@@ -11,7 +11,7 @@ from service.store.tables import AuditEntry
 def _make_entries(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
     for i in range(4):
         client.post(
-            "/v1/keys", json={"name": f"k{i}", "role": "reader"}, headers=keys.h(keys.admin)
+            "/v1/keys", json={"name": f"k{i}", "owner": f"k{i}@people", "role": "reader"}, headers=keys.h(keys.admin)
         )
 
 
@@ -25,7 +25,7 @@ def test_entries_carry_who_what_when_and_hashes(client: TestClient, keys) -> Non
     assert (
         e["actor_name"] == "t-admin" and e["actor_role"] == "admin" and e["action"] == "key.create"
     )
-    assert e["payload"] == {"name": "k0", "role": "reader"}
+    assert e["payload"] == {"name": "k0", "owner": "k0@people", "role": "reader"}
     assert entries[1]["prev_hash"] == entries[0]["hash"]
 
 

@@ -192,11 +192,15 @@ def test_audit_show_follows_pages(cli, files) -> None:  # type: ignore[no-untype
 
 
 def test_keys_issue_through_the_api(cli) -> None:  # type: ignore[no-untyped-def]
-    r = cli("admin", "keys", "issue", "--name", "new-reader", "--role", "reader")
+    r = cli(
+        "admin", "keys", "issue", "--name", "new-reader", "--owner", "nr@people", "--role", "reader"
+    )
     assert r.code == 0 and "the secret is shown once" in r.err
     secret = r.out.strip().splitlines()[-1]
     assert cli(None, "audit", "show", "--key", secret, "--json").code == 0
-    denied = cli("analyst", "keys", "issue", "--name", "x", "--role", "admin")
+    denied = cli(
+        "analyst", "keys", "issue", "--name", "x", "--owner", "x@people", "--role", "admin"
+    )
     assert denied.code == 1 and "(HTTP 403)" in denied.err
 
 

@@ -160,7 +160,7 @@ def test_a_refused_action_shows_the_services_reason(page: Any, live: Live) -> No
     page.click("button[data-action=approve]")
     message = page.locator("#decision-message")
     message.filter(has_text="another approver").wait_for()
-    assert "'t-approver' drafted" in message.inner_text()  # the service's own problem detail
+    assert "'t-approver@people' drafted" in message.inner_text()  # the service's own problem detail
     assert _version(live, v)["status"] == "draft"
 
 

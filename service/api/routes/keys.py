@@ -13,14 +13,30 @@ from service.usecases import auth
 router = APIRouter(prefix="/v1/keys", tags=["keys"])
 
 
+IDENTITY = r"^[A-Za-z0-9_.@-]+$"
+
+
 class KeyCreate(BaseModel):
-    name: str = Field(min_length=1, max_length=100, pattern=r"^[A-Za-z0-9_.@-]+$")
+    name: str = Field(
+        min_length=1,
+        max_length=100,
+        pattern=IDENTITY,
+        description="the key's label, e.g. 'ci-deploy'",
+    )
+    owner: str = Field(
+        min_length=1,
+        max_length=100,
+        pattern=IDENTITY,
+        description="the person or system identity the key belongs to (e.g. 'ana@example.org'); "
+        "separation of duties compares owners, so one owner's keys never approve that owner's drafts",
+    )
     role: Literal["reader", "analyst", "approver", "admin"]
 
 
 class KeyOut(BaseModel):
     id: int
     name: str
+    owner: str
     role: str
     created_at: str
     created_by: str
@@ -35,12 +51,18 @@ class KeyCreated(KeyOut):
     "", status_code=status.HTTP_201_CREATED, response_model=KeyCreated, summary="Create an API key"
 )
 def create_key(body: KeyCreate, actor: AdminDep, services: ServicesDep) -> KeyCreated:
-    rec, secret = auth.create_key(services.db, name=body.name, role=body.role, actor=actor)
+    rec, secret = auth.create_key(
+        services.db, name=body.name, owner=body.owner, role=body.role, actor=actor
+    )
     services.keys.refresh()
     return KeyCreated(**rec.public(), secret=secret)  # type: ignore[arg-type]
 
 
-@router.delete("/{key_id}", response_model=KeyOut, summary="Revoke an API key")
+@router.delete(
+    "/{key_id}",
+    response_model=KeyOut,
+    summary="Revoke an API key (never the last active admin key: 409)",
+)
 def revoke_key(key_id: int, actor: AdminDep, services: ServicesDep) -> KeyOut:
     rec = auth.revoke_key(services.db, key_id=key_id, actor=actor)
     services.keys.refresh()

@@ -85,7 +85,10 @@ def version_page(plan: PlanKey, version: int) -> HTMLResponse:
 @router.get("/fragments/plans", response_class=HTMLResponse)
 def index_fragment(actor: ReaderDep, services: ServicesDep) -> HTMLResponse:
     return _fragment(
-        pages.index_fragment(review.plans_index(services), {"name": actor.name, "role": actor.role})
+        pages.index_fragment(
+            review.plans_index(services),
+            {"name": actor.name, "role": actor.role, "owner": actor.identity},
+        )
     )
 
 
@@ -94,7 +97,11 @@ def version_fragment(
     plan: PlanKey, version: int, actor: ReaderDep, services: ServicesDep
 ) -> HTMLResponse:
     data = review.review_page(services, plan=plan, version=version)
-    return _fragment(pages.version_fragment(data, {"name": actor.name, "role": actor.role}))
+    return _fragment(
+        pages.version_fragment(
+            data, {"name": actor.name, "role": actor.role, "owner": actor.identity}
+        )
+    )
 
 
 @router.get("/static/{name}")
