@@ -12,7 +12,7 @@ from typing import Any
 from fastapi import FastAPI
 
 from service import __version__
-from service.api import problems
+from service.api import openapi, problems
 from service.api.routes import (
     assign,
     audit,
@@ -26,7 +26,7 @@ from service.api.routes import (
     watch,
 )
 from service.config import Settings, get_settings
-from service.observability import RequestContextMiddleware, configure_logging
+from service.observability import RequestContextMiddleware, configure_logging, show_labels
 from service.store.db import Database
 from service.store.migrate import is_current, upgrade
 from service.usecases import live
@@ -104,11 +104,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version=__version__,
         description=DESCRIPTION,
         lifespan=lifespan,
-        docs_url="/docs",
+        docs_url="/docs" if settings.api_docs else None,
         redoc_url=None,
     )
     app.state.services = services
+    show_labels(settings.metrics_labels)
     problems.install(app)
+    openapi.install(app)
     # the lookup routes first: route matching walks the routers in this order
     for r in (assign, health, keys, audit, experiments, models, jobs, plans, watch, ui):
         app.include_router(r.router)

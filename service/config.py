@@ -42,6 +42,17 @@ class Settings(BaseSettings):
     job_stale_seconds: float = Field(
         600.0, gt=0, description="a running job without a heartbeat this long is reclaimed"
     )
+    metrics_labels: list[Literal["plan", "version", "arm", "metric"]] = Field(
+        ["plan", "version", "arm", "metric"],
+        description="business labels /metrics reports (JSON list); the others read 'redacted'. "
+        "/metrics needs no key: keep it behind the cluster network",
+    )
+    api_docs: bool = Field(
+        False,
+        description="serve the interactive API docs at /docs; they load their script and style "
+        "from a public CDN, so leave this off outside a developer's machine (the schema itself "
+        "is always at /openapi.json)",
+    )
     db_pool_size: int = Field(
         40, gt=0, description="connection pool size (sized to the request threadpool)"
     )

@@ -13,6 +13,46 @@ from typing import Any
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
 
 REGISTRY = CollectorRegistry(auto_describe=True)
+
+# Business labels (plan names, versions, arms, guardrail metrics) reveal what is being tested to
+# anyone who can read /metrics, which needs no key: it belongs behind the cluster network. Each
+# may be turned off (APPORTION_METRICS_LABELS); a label that is off is reported as "redacted".
+BUSINESS_LABELS = ("plan", "version", "arm", "metric")
+REDACTED = "redacted"
+_shown_labels: set[str] = set(BUSINESS_LABELS)
+
+
+def show_labels(labels: list[str] | tuple[str, ...] | set[str]) -> None:
+    """Which business labels this process reports (set from the settings when the app is made;
+    process-wide like the registry itself)."""
+    unknown = set(labels) - set(BUSINESS_LABELS)
+    if unknown:
+        raise ValueError(f"unknown metric labels {sorted(unknown)}; known: {BUSINESS_LABELS}")
+    _shown_labels.clear()
+    _shown_labels.update(labels)
+
+
+def _redact(names: tuple[str, ...], values: tuple[str, ...]) -> tuple[str, ...]:
+    return tuple(
+        v if n not in BUSINESS_LABELS or n in _shown_labels else REDACTED
+        for n, v in zip(names, values, strict=True)
+    )
+
+
+class _RedactingCounter(Counter):
+    def labels(self, *values: Any, **kw: Any) -> Any:  # type: ignore[override]
+        if kw:
+            values = tuple(kw[n] for n in self._labelnames)
+        return super().labels(*_redact(self._labelnames, tuple(str(v) for v in values)))
+
+
+class _RedactingGauge(Gauge):
+    def labels(self, *values: Any, **kw: Any) -> Any:  # type: ignore[override]
+        if kw:
+            values = tuple(kw[n] for n in self._labelnames)
+        return super().labels(*_redact(self._labelnames, tuple(str(v) for v in values)))
+
+
 REQUESTS = Counter(
     "apportion_http_requests_total",
     "HTTP requests by route and status",
@@ -26,7 +66,7 @@ LATENCY = Histogram(
     registry=REGISTRY,
     buckets=(0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10),
 )
-ASSIGNMENTS = Counter(
+ASSIGNMENTS = _RedactingCounter(
     "apportion_assignments_total",
     "Assignments served by plan, version and arm",
     ["plan", "version", "arm"],
@@ -47,13 +87,13 @@ REFRESH_AGE = Gauge(
     "Seconds since this process last refreshed its live plans",
     registry=REGISTRY,
 )
-LIVE_VERSION = Gauge(
+LIVE_VERSION = _RedactingGauge(
     "apportion_live_plan_version",
     "The live version of each plan in this process",
     ["plan"],
     registry=REGISTRY,
 )
-WATCH_STATUS = Gauge(
+WATCH_STATUS = _RedactingGauge(
     "apportion_guardrail_breached",
     "1 when the watch finds a guardrail breached",
     ["plan", "metric"],
@@ -131,7 +171,7 @@ class RequestContextMiddleware:
             if (
                 access_log.isEnabledFor(logging.INFO)
                 and not label.endswith("/assign")
-                and label not in ("/v1/bare", "/healthz")
+                and label != "/healthz"
             ):
                 access_log.info(
                     "request",

@@ -14,3 +14,58 @@ def test_checked_in_schema_has_not_drifted() -> None:
     assert SPEC.read_text() == render(), (
         "openapi/openapi.json differs from the app: run `make openapi` and commit it"
     )
+
+
+def _refs(node: object) -> list[str]:
+    if isinstance(node, dict):
+        return [v for k, v in node.items() if k == "$ref"] + [
+            r for k, v in node.items() if k != "$ref" for r in _refs(v)
+        ]
+    if isinstance(node, list):
+        return [r for v in node for r in _refs(v)]
+    return []
+
+
+def test_the_document_passes_an_openapi_validator() -> None:
+    """openapi-spec-validator (the reference validator of the OpenAPI 3.x specification, an
+    outside check) accepts the document; it resolves every $ref on the way."""
+    from openapi_spec_validator import validate
+
+    from service.openapi_export import openapi_document
+
+    doc = openapi_document()
+    validate(doc)
+    for ref in _refs(doc):  # and each one points into this document's components
+        assert ref.startswith("#/components/schemas/"), ref
+        assert ref.rsplit("/", 1)[1] in doc["components"]["schemas"], ref
+
+
+def test_every_key_route_declares_its_security_and_its_problems() -> None:
+    from service.openapi_export import openapi_document
+
+    doc = openapi_document()
+    assert doc["components"]["securitySchemes"]["apiKey"] == {
+        **doc["components"]["securitySchemes"]["apiKey"],
+        "type": "http",
+        "scheme": "bearer",
+    }
+    assert "HTTPValidationError" not in doc["components"]["schemas"]
+    for path, item in doc["paths"].items():
+        for method, op in item.items():
+            responses = op["responses"]
+            for code, answer in responses.items():
+                if code.startswith(("4", "5")) and path != "/readyz":  # 422 included
+                    assert list(answer["content"]) == ["application/problem+json"], (
+                        method,
+                        path,
+                        code,
+                    )
+            if path.startswith("/v1/"):
+                assert op["security"] == [{"apiKey": []}], (method, path)
+                assert {"401", "403"} <= set(responses), (method, path)
+            if "{" in path:
+                assert "404" in responses, (method, path)
+            if "requestBody" in op:
+                assert "413" in responses, (method, path)
+    for route in ("activate", "rollback"):
+        assert "409" in doc["paths"][f"/v1/plans/{{plan}}/{route}"]["post"]["responses"]

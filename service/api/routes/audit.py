@@ -6,10 +6,10 @@ from typing import Any
 
 from fastapi import APIRouter, Query
 
-from service.api.deps import AdminDep, ReaderDep, ServicesDep
+from service.api.deps import AdminDep, AuthenticatedRoute, ReaderDep, ServicesDep
 from service.store import audit
 
-router = APIRouter(prefix="/v1/audit", tags=["audit"])
+router = APIRouter(prefix="/v1/audit", tags=["audit"], route_class=AuthenticatedRoute)
 
 
 @router.get("", summary="Audit entries, oldest first")

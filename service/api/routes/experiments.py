@@ -10,11 +10,11 @@ from pydantic import BaseModel, Field
 from starlette.concurrency import run_in_threadpool
 
 from service.api.body import UPLOAD_OPENAPI, read_limited
-from service.api.deps import AnalystDep, ReaderDep, ServicesDep
+from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
 from service.api.params import KEY_PATTERN, ExperimentKey
 from service.usecases import experiments as uc
 
-router = APIRouter(prefix="/v1/experiments", tags=["experiments"])
+router = APIRouter(prefix="/v1/experiments", tags=["experiments"], route_class=AuthenticatedRoute)
 COLUMN = r"^[A-Za-z_][A-Za-z0-9_]{0,99}$"
 
 

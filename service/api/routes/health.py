@@ -24,7 +24,12 @@ def healthz() -> dict[str, str]:
 @router.get(
     "/readyz",
     summary="Readiness: database reachable, migrations current, plans loaded",
-    responses={503: {"description": "not ready"}},
+    responses={
+        503: {
+            "description": "not ready: the same body, naming the check that failed",
+            "content": {"application/json": {}},
+        }
+    },
 )
 def readyz(services: ServicesDep) -> JSONResponse:
     checks: dict[str, bool] = {}

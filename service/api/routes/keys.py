@@ -7,10 +7,10 @@ from typing import Literal
 from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
-from service.api.deps import AdminDep, ServicesDep
+from service.api.deps import AdminDep, AuthenticatedRoute, ServicesDep
 from service.usecases import auth
 
-router = APIRouter(prefix="/v1/keys", tags=["keys"])
+router = APIRouter(prefix="/v1/keys", tags=["keys"], route_class=AuthenticatedRoute)
 
 
 IDENTITY = r"^[A-Za-z0-9_.@-]+$"

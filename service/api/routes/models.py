@@ -7,11 +7,11 @@ from typing import Any, Literal
 from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
-from service.api.deps import AnalystDep, ReaderDep, ServicesDep
+from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
 from service.api.params import ExperimentKey
 from service.usecases import models as uc
 
-router = APIRouter(tags=["models"])
+router = APIRouter(tags=["models"], route_class=AuthenticatedRoute)
 
 
 class Override(BaseModel):

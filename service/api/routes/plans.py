@@ -7,11 +7,11 @@ from typing import Any, Literal
 from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
-from service.api.deps import AnalystDep, ApproverDep, ReaderDep, ServicesDep
+from service.api.deps import AnalystDep, ApproverDep, AuthenticatedRoute, ReaderDep, ServicesDep
 from service.api.params import PlanKey
 from service.usecases import plans as uc
 
-router = APIRouter(prefix="/v1/plans", tags=["plans"])
+router = APIRouter(prefix="/v1/plans", tags=["plans"], route_class=AuthenticatedRoute)
 
 
 class GuardrailIn(BaseModel):
