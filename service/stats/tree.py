@@ -9,8 +9,9 @@ threshold of every node at once. Estimation rows are only counted (every arm mus
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
+from typing import Protocol
 
 import numpy as np
 
@@ -174,11 +175,31 @@ def grow(
     """Grow on `s_rows` (outcomes `y` (n, K) used) checking counts on `e_rows`.
 
     Returns the tree and the leaf of every structure row and every estimation row."""
-    J, K = spec.n_arms, y.shape[1]
-    codes_s, codes_e = bins.codes[:, s_rows], bins.codes[:, e_rows]
-    arm_s, arm_e, ys = arm[s_rows].astype(np.int64), arm[e_rows].astype(np.int64), y[s_rows]
-    node_s = np.zeros(s_rows.size, dtype=np.int64)
-    node_e = np.zeros(e_rows.size, dtype=np.int64)
+    rows = RowHistograms(bins, s_rows, e_rows, arm, y, spec.n_arms)
+    tree = grow_on(rows, bins, spec, progress)
+    node_s, node_e = rows.leaves(tree)
+    return tree, node_s, node_e
+
+
+class LevelHistograms(Protocol):
+    """Where the rows live. For the frontier nodes of `tree` (every row routed by the tree as it
+    stands) yields, per feature f with at least two non-missing bins, `(f, cnt, sums, sqs, cnt_e)`:
+    structure-row counts (S, nb, J), sums and sums of squares of the criterion outcomes
+    (S, nb, J, K) and estimation-row counts (S, nb, J), indexed (frontier slot, bin, arm).
+    `RowHistograms` holds the rows in memory; `service.engines` pushes the same aggregation down
+    to a SQL engine, so only these small arrays come back."""
+
+    def level(self, tree: Tree, frontier: list[int]) -> Iterator[tuple[int, ...]]: ...
+
+
+def grow_on(
+    hist: LevelHistograms,
+    bins: FeatureBins,
+    spec: GrowSpec,
+    progress: Callable[[float], None] | None = None,
+) -> Tree:
+    """Grow level by level from the histograms `hist` gives; `bins` supplies the bin layout only
+    (its `codes` are not read here)."""
     tree = Tree()
     tree.add_leaf()
     frontier = [0]
@@ -186,31 +207,10 @@ def grow(
         if not frontier:
             break
         S = len(frontier)
-        slot_of = np.full(len(tree), -1, dtype=np.int64)
-        slot_of[frontier] = np.arange(S)
-        act_s, act_e = _active(slot_of[node_s]), _active(slot_of[node_e])
-        sl = slot_of[node_s if act_s is None else node_s[act_s]]
-        sle = slot_of[node_e if act_e is None else node_e[act_e]]
-        y_act = ys if act_s is None else ys[act_s]
-        y_sq = y_act * y_act
-        a_s = arm_s if act_s is None else arm_s[act_s]
-        a_e = arm_e if act_e is None else arm_e[act_e]
         best = _Best(S)
-        for f in range(codes_s.shape[0]):
-            nb = int(bins.n_bins[f])
-            if nb < 3:  # fewer than two non-missing bins: nothing to split
-                continue
-            # one bincount per statistic for all nodes of this level: index (slot, bin, arm)
-            idx = (sl * nb + _take(codes_s[f], act_s)) * J + a_s
-            idx_e = (sle * nb + _take(codes_e[f], act_e)) * J + a_e
-            size = S * nb * J
-            cnt = np.bincount(idx, minlength=size).reshape(S, nb, J)
-            sums = np.empty((S, nb, J, K))
-            sqs = np.empty((S, nb, J, K))
-            for k in range(K):
-                sums[..., k] = np.bincount(idx, y_act[:, k], size).reshape(S, nb, J)
-                sqs[..., k] = np.bincount(idx, y_sq[:, k], size).reshape(S, nb, J)
-            cnt_e = np.bincount(idx_e, minlength=size).reshape(S, nb, J)
+        raw: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+        for f, cnt, sums, sqs, cnt_e in hist.level(tree, frontier):
+            raw[f] = (cnt, cnt_e)
             perm = seen = None
             if bins.features[f].kind == "categorical":
                 cnt, sums, sqs, cnt_e, perm, seen = _order_levels(cnt, sums, sqs, cnt_e, spec)
@@ -219,25 +219,82 @@ def grow(
         splits = [s for s in range(S) if best.gain[s] > spec.min_gain]
         if not splits:
             break
-        feat_of = np.full(S, -1, dtype=np.int64)
-        lut = np.zeros((S, bins.max_bins), dtype=bool)
-        lchild = np.zeros(S, dtype=np.int64)
-        rchild = np.zeros(S, dtype=np.int64)
         new_frontier: list[int] = []
         for s in splits:
             f = best.feature[s]
             lk, thr, lv, rv = _rule(bins, f, best, s)
             lc, rc = tree.make_split(frontier[s], f, lk, best.left_big[s], thr, lv, rv,
                                      float(best.gain[s]))  # fmt: skip
-            feat_of[s], lut[s, : lk.size], lchild[s], rchild[s] = f, lk, lc, rc
-            new_frontier += [lc, rc]
-        _descend(node_s, act_s, sl, codes_s, feat_of, lut, lchild, rchild)
-        _descend(node_e, act_e, sle, codes_e, feat_of, lut, lchild, rchild)
-        frontier = _splittable(new_frontier, node_s, arm_s, node_e, arm_e, len(tree), J,
-                               spec.min_units)  # fmt: skip
+            # children's counts per arm on both halves, from the chosen feature's histogram
+            cnt, cnt_e = raw[f]
+            for child, side in ((lc, lk), (rc, ~lk)):
+                n_s, n_e = cnt[s][side].sum(axis=0), cnt_e[s][side].sum(axis=0)
+                if n_s.min() >= 2 * spec.min_units and n_e.min() >= 2 * spec.min_units:
+                    new_frontier.append(child)
+        frontier = new_frontier
         if progress is not None:
             progress((depth + 1) / spec.max_depth)
-    return tree, node_s, node_e
+    return tree
+
+
+class RowHistograms:
+    """The in-memory histograms: rows as numpy arrays, one `np.bincount` per statistic for all
+    nodes of a level at once. Keeps each row's node, moving rows down as the tree splits."""
+
+    def __init__(self, bins: FeatureBins, s_rows, e_rows, arm, y, n_arms: int) -> None:
+        self.bins, self.J = bins, n_arms
+        self.codes_s, self.codes_e = bins.codes[:, s_rows], bins.codes[:, e_rows]
+        self.arm_s = arm[s_rows].astype(np.int64)
+        self.arm_e = arm[e_rows].astype(np.int64)
+        self.ys = y[s_rows]
+        self.node_s = np.zeros(s_rows.size, dtype=np.int64)
+        self.node_e = np.zeros(e_rows.size, dtype=np.int64)
+
+    def leaves(self, tree: Tree) -> tuple[np.ndarray, np.ndarray]:
+        """The leaf of every structure row and every estimation row."""
+        self._advance(tree)
+        return self.node_s, self.node_e
+
+    def _advance(self, tree: Tree) -> None:
+        """Move rows whose node has been split since the last call one level down (the grower
+        splits only leaves, so one step reaches the new leaves)."""
+        feat, lut, left, right = tree._tables(self.bins.max_bins)
+        for node, codes in ((self.node_s, self.codes_s), (self.node_e, self.codes_e)):
+            rows = np.flatnonzero(feat[node] >= 0)
+            if rows.size:
+                nd = node[rows]
+                go_left = lut[nd, codes[feat[nd], rows]]
+                node[rows] = np.where(go_left, left[nd], right[nd])
+
+    def level(self, tree: Tree, frontier: list[int]) -> Iterator[tuple[int, ...]]:
+        self._advance(tree)
+        bins, J, K = self.bins, self.J, self.ys.shape[1]
+        S = len(frontier)
+        slot_of = np.full(len(tree), -1, dtype=np.int64)
+        slot_of[frontier] = np.arange(S)
+        act_s, act_e = _active(slot_of[self.node_s]), _active(slot_of[self.node_e])
+        sl = slot_of[self.node_s if act_s is None else self.node_s[act_s]]
+        sle = slot_of[self.node_e if act_e is None else self.node_e[act_e]]
+        y_act = self.ys if act_s is None else self.ys[act_s]
+        y_sq = y_act * y_act
+        a_s = self.arm_s if act_s is None else self.arm_s[act_s]
+        a_e = self.arm_e if act_e is None else self.arm_e[act_e]
+        for f in range(self.codes_s.shape[0]):
+            nb = int(bins.n_bins[f])
+            if nb < 3:  # fewer than two non-missing bins: nothing to split
+                continue
+            # one bincount per statistic for all nodes of this level: index (slot, bin, arm)
+            idx = (sl * nb + _take(self.codes_s[f], act_s)) * J + a_s
+            idx_e = (sle * nb + _take(self.codes_e[f], act_e)) * J + a_e
+            size = S * nb * J
+            cnt = np.bincount(idx, minlength=size).reshape(S, nb, J)
+            sums = np.empty((S, nb, J, K))
+            sqs = np.empty((S, nb, J, K))
+            for k in range(K):
+                sums[..., k] = np.bincount(idx, y_act[:, k], size).reshape(S, nb, J)
+                sqs[..., k] = np.bincount(idx, y_sq[:, k], size).reshape(S, nb, J)
+            cnt_e = np.bincount(idx_e, minlength=size).reshape(S, nb, J)
+            yield f, cnt, sums, sqs, cnt_e
 
 
 def _active(slot: np.ndarray) -> np.ndarray | None:
@@ -354,21 +411,3 @@ def _rule(bins: FeatureBins, f: int, best: _Best, s: int):
     lv = tuple(spec.levels[i] for i in range(B) if seen[i] and go_left[i])
     rv = tuple(spec.levels[i] for i in range(B) if seen[i] and not go_left[i])
     return lk, np.nan, lv, rv
-
-
-def _descend(node, act, slot, codes, feat_of, lut, lchild, rchild) -> None:
-    """Move the rows of split nodes to their children, in place."""
-    rows = np.arange(node.size) if act is None else act
-    f = feat_of[slot]
-    moving = f >= 0
-    rows, slot, f = rows[moving], slot[moving], f[moving]
-    go_left = lut[slot, codes[f, rows]]
-    node[rows] = np.where(go_left, lchild[slot], rchild[slot])
-
-
-def _splittable(nodes, node_s, arm_s, node_e, arm_e, n_nodes, J, m) -> list[int]:
-    """Frontier nodes that can still hold two children of `m` units per arm on both halves."""
-    cs = np.bincount(node_s * J + arm_s, minlength=n_nodes * J).reshape(n_nodes, J)
-    ce = np.bincount(node_e * J + arm_e, minlength=n_nodes * J).reshape(n_nodes, J)
-    ok = (cs.min(axis=1) >= 2 * m) & (ce.min(axis=1) >= 2 * m)
-    return [nd for nd in nodes if ok[nd]]
