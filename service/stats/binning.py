@@ -36,8 +36,14 @@ def numeric_thresholds(x: np.ndarray, max_bins: int) -> np.ndarray:
     if x.size == 0 or max_bins < 2:
         return np.empty(0)
     probs = np.arange(1, max_bins) / max_bins
-    thr = np.unique(np.quantile(x, probs, method="inverted_cdf"))
-    return thr[thr > x.min()]  # a threshold at the minimum would leave the left side empty
+    return thresholds_from_quantiles(np.quantile(x, probs, method="inverted_cdf"), x.min())
+
+
+def thresholds_from_quantiles(q: np.ndarray, x_min: float) -> np.ndarray:
+    """The distinct quantiles above the minimum (a threshold at the minimum would leave the left
+    side empty); shared with the engines, which compute the quantiles where the rows live."""
+    thr = np.unique(np.asarray(q, dtype=np.float64))
+    return thr[thr > x_min]
 
 
 def bin_features(

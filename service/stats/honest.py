@@ -22,14 +22,11 @@ def honest_split(arm: np.ndarray, seed: int, estimation_fraction: float = 0.5) -
     arm = np.asarray(arm)
     rng = np.random.default_rng(seed)
     mask = np.zeros(arm.shape[0], dtype=bool)
-    order = np.argsort(arm, kind="stable")
-    counts = np.bincount(arm, minlength=int(arm.max()) + 1 if arm.size else 0)
-    start = 0
-    for c in counts:
-        rows = order[start : start + c]
+    for j in range(int(arm.max()) + 1 if arm.size else 0):
+        rows = np.flatnonzero(arm == j)  # arm j's rows in row order (one arm's index at a time)
+        c = rows.size
         k = int(round(estimation_fraction * c))
         mask[rows[rng.permutation(c)[:k]]] = True
-        start += c
     return mask
 
 

@@ -123,9 +123,15 @@ def cv_prune(
             scores[f, g] = _score(grp, arm[te], y[te], spec, int(grp.max()) + 1)
         if progress is not None:
             progress((f + 1) / folds)
+    return grid[choose_penalty(scores, one_se)], grid, scores.mean(axis=0).tolist()
+
+
+def choose_penalty(scores: np.ndarray, one_se: bool) -> int:
+    """Index of the chosen penalty from held-out scores (folds, grid): the best mean, ties going to
+    the larger penalty; with `one_se` the largest penalty within one standard error of it."""
     mean = scores.mean(axis=0)
-    best = len(grid) - 1 - int(np.argmax(mean[::-1]))
+    best = scores.shape[1] - 1 - int(np.argmax(mean[::-1]))
     if one_se:
-        se = scores[:, best].std(ddof=1) / np.sqrt(folds)
+        se = scores[:, best].std(ddof=1) / np.sqrt(scores.shape[0])
         best = int(np.flatnonzero(mean >= mean[best] - se).max())
-    return grid[best], grid, mean.tolist()
+    return best

@@ -1,0 +1,316 @@
+"""The aggregation plan shared by the SQL engines: every pass a fit makes over the rows, written as
+one SQL aggregation whose result is a small table (histograms, per-leaf and per-cell sums).
+
+A backend (DuckDB, Spark) supplies four things: how to quote a name and a string, how to run a
+query into a pyarrow table, and how to keep the working table `work` (one row per readout row:
+role `r`, arm code `a`, bin codes `b0..`, metric components `c0..`). Everything else, and so the
+numbers, is the same text for both.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+import numpy as np
+import pyarrow as pa
+
+from service.stats.binning import FeatureBins
+from service.stats.estimates import CellMoments
+from service.stats.table import FeatureSpec, MetricSpec
+from service.stats.tree import Tree
+
+from .dataset import ReadoutDataset
+
+
+def num(x: float) -> str:
+    """A float64 literal that reads back to the same bits in both dialects."""
+    return f"CAST('{float(x)!r}' AS DOUBLE)"
+
+
+class SqlEngine:
+    """Implements `service.stats.pushdown.RowEngine` on top of a SQL backend."""
+
+    name = "sql"
+
+    def __init__(self, dataset: ReadoutDataset) -> None:
+        self.dataset = dataset
+        self.n = dataset.n_rows
+        self.arm_keys = dataset.arm_keys
+        self.design_shares = dataset.design_shares
+        self.features: tuple[FeatureSpec, ...] = ()
+        self.metrics: tuple[MetricSpec, ...] = dataset.metrics
+        self.components = dataset.components
+        self._bins: FeatureBins | None = None
+        self._y: list[str] = []
+        self.features = self._resolve_levels(dataset.features)
+
+    # ---- backend hooks -----------------------------------------------------------------------
+    def ident(self, name: str) -> str:
+        raise NotImplementedError
+
+    def text(self, value: str) -> str:
+        raise NotImplementedError
+
+    def query(self, sql: str) -> pa.Table:
+        raise NotImplementedError
+
+    def store_work(self, select: str, role: np.ndarray) -> None:
+        """Keep `work` = the columns of `select` (over the source view `src`) with column `r`
+        holding `role[i]` for the i-th readout row."""
+        raise NotImplementedError
+
+    def arm_codes(self) -> np.ndarray:
+        raise NotImplementedError
+
+    def close(self) -> None:
+        pass
+
+    # ---- levels and the raw columns ------------------------------------------------------------
+    def _resolve_levels(self, features: tuple[FeatureSpec, ...]) -> tuple[FeatureSpec, ...]:
+        """Undeclared categorical levels are the sorted distinct non-empty values (as ingest)."""
+        out = []
+        for f in features:
+            if f.kind == "categorical" and not f.levels:
+                col = self.ident(f.key)
+                t = self.query(f"SELECT DISTINCT CAST({col} AS STRING) AS v FROM src "
+                               f"WHERE {col} IS NOT NULL AND CAST({col} AS STRING) <> ''")  # fmt: skip
+                f = FeatureSpec(f.key, f.kind, tuple(sorted(t.column("v").to_pylist())))
+            out.append(f)
+        return tuple(out)
+
+    def arm_case(self) -> str:
+        whens = " ".join(f"WHEN {self.text(a)} THEN {j}" for j, a in enumerate(self.arm_keys))
+        return f"CASE CAST({self.ident('arm')} AS STRING) {whens} END"
+
+    def quantiles(self, key: str, probs: np.ndarray) -> tuple[np.ndarray, float] | None:
+        x = f"CAST({self.ident(key)} AS DOUBLE)"
+        t = self.query(self.quantile_sql(x, [float(p) for p in probs]))
+        row = t.to_pylist()[0]
+        if row["q"] is None or row["lo"] is None:
+            return None
+        return np.asarray(row["q"], dtype=np.float64), float(row["lo"])
+
+    def quantile_sql(self, x: str, probs: list[float]) -> str:
+        raise NotImplementedError
+
+    def non_finite(self) -> dict[str, int]:
+        parts = []
+        for i, c in enumerate(self.components):
+            x = f"CAST({self.ident(c)} AS DOUBLE)"
+            parts.append(f"SUM(CASE WHEN {x} IS NULL OR isnan({x}) OR {x} IN "
+                         f"({num(np.inf)}, {num(-np.inf)}) THEN 1 ELSE 0 END) AS n{i}")  # fmt: skip
+        if not parts:
+            return {}
+        row = self.query(f"SELECT {', '.join(parts)} FROM src").to_pylist()[0]
+        return {c: int(row[f"n{i}"] or 0) for i, c in enumerate(self.components)}
+
+    # ---- the working table ---------------------------------------------------------------------
+    def load(self, bins: FeatureBins, role: np.ndarray) -> None:
+        cols = [f"{self.arm_case()} AS a"]
+        for f, spec in enumerate(bins.features):
+            cols.append(f"{self._bin_expr(spec, bins, f)} AS b{f}")
+        for i, c in enumerate(self.components):
+            cols.append(f"CAST({self.ident(c)} AS DOUBLE) AS c{i}")
+        self.store_work(", ".join(cols), np.asarray(role, dtype=np.int8))
+        self._bins = bins
+        self._y = []
+
+    def _bin_expr(self, spec: FeatureSpec, bins: FeatureBins, f: int) -> str:
+        """`binning.bin_features`' code: the number of thresholds <= x (a binary search as nested
+        CASE), categorical level codes, and the last code for missing values."""
+        miss = int(bins.n_bins[f]) - 1
+        col = self.ident(spec.key)
+        if spec.kind == "categorical":
+            whens = " ".join(f"WHEN {self.text(v)} THEN {i}" for i, v in enumerate(spec.levels))
+            return f"CASE CAST({col} AS STRING) {whens} ELSE {miss} END" if whens else str(miss)
+        thr = bins.thresholds[f]
+        assert thr is not None
+        x = f"CAST({col} AS DOUBLE)"
+
+        def search(lo: int, hi: int) -> str:  # the code is in [lo, hi]
+            if lo == hi:
+                return str(lo)
+            mid = (lo + hi + 1) // 2
+            return f"CASE WHEN {x} >= {num(thr[mid - 1])} THEN {search(mid, hi)} ELSE {search(lo, mid - 1)} END"
+
+        return f"CASE WHEN {x} IS NULL OR isnan({x}) THEN {miss} ELSE {search(0, thr.size)} END"
+
+    def standardize(self, roles: tuple[int, ...]) -> None:
+        """`honest.criterion_outcomes`: a ratio metric's linearized value (num - R den) / mu_den
+        with R and mu_den of the rows of `roles`, then every metric centred and scaled by its mean
+        and (population) standard deviation there."""
+        where = f"r IN ({', '.join(map(str, roles))})"
+        raw: list[str] = []
+        ratio_parts = []
+        for k, m in enumerate(self.metrics):
+            if m.kind == "ratio":
+                a, b = self.components.index(m.numerator), self.components.index(m.denominator)  # type: ignore[arg-type]
+                ratio_parts.append(f"SUM(c{a}) AS sn{k}, SUM(c{b}) AS sd{k}, AVG(c{b}) AS md{k}")
+        consts = self.query(f"SELECT {', '.join(ratio_parts)} FROM work WHERE {where}").to_pylist()[0] if ratio_parts else {}  # fmt: skip
+        for k, m in enumerate(self.metrics):
+            if m.kind == "ratio":
+                a, b = self.components.index(m.numerator), self.components.index(m.denominator)  # type: ignore[arg-type]
+                r_root = consts[f"sn{k}"] / consts[f"sd{k}"]
+                raw.append(f"((c{a} - {num(r_root)} * c{b}) / {num(consts[f'md{k}'])})")
+            else:
+                raw.append(f"c{self.components.index(m.key)}")
+        stats = ", ".join(f"AVG({e}) AS m{k}, STDDEV_POP({e}) AS s{k}" for k, e in enumerate(raw))
+        row = self.query(f"SELECT {stats} FROM work WHERE {where}").to_pylist()[0]
+        self._y = []
+        for k, e in enumerate(raw):
+            sd = row[f"s{k}"] or 0.0
+            self._y.append(f"(({e} - {num(row[f'm{k}'])}) / {num(sd if sd > 0 else 1.0)})")
+
+    # ---- routing --------------------------------------------------------------------------------
+    def route_expr(self, tree: Tree, value_of_leaf) -> str:
+        """SQL for `value_of_leaf(leaf)` of the leaf each row reaches in `tree` (over `b0..`);
+        a branch whose leaves all give the same value is not expanded."""
+
+        def walk(node: int) -> tuple[str, set[str]]:
+            if tree.feature[node] < 0:
+                v = str(value_of_leaf(node))
+                return v, {v}
+            lk = tree.lookup[node]
+            assert lk is not None
+            left, lv = walk(tree.left[node])
+            right, rv = walk(tree.right[node])
+            if lv == rv and len(lv) == 1:
+                return left, lv
+            codes = np.flatnonzero(lk)
+            cond = f"b{tree.feature[node]} IN ({', '.join(map(str, codes))})" if codes.size else "FALSE"
+            return f"(CASE WHEN {cond} THEN {left} ELSE {right} END)", lv | rv
+
+        return walk(0)[0]
+
+    # ---- aggregations ---------------------------------------------------------------------------
+    def histograms(self, s_roles: tuple[int, ...], n_arms: int) -> _SqlLevels:
+        return _SqlLevels(self, s_roles, n_arms)
+
+    def _sums(self) -> str:
+        return ", ".join(f"SUM({y}) AS s{k}, SUM({y} * {y}) AS q{k}" for k, y in enumerate(self._y))
+
+    def leaf_stats(self, tree: Tree, roles: tuple[int, ...], n_arms: int):
+        L, J, K = len(tree), n_arms, len(self._y)
+        node = self.route_expr(tree, lambda leaf: leaf)
+        t = self.query(f"SELECT {node} AS g, a, COUNT(*) AS n, {self._sums()} FROM work "
+                       f"WHERE r IN ({', '.join(map(str, roles))}) GROUP BY 1, 2")  # fmt: skip
+        n, s, q = np.zeros((L, J), dtype=np.int64), np.zeros((L, J, K)), np.zeros((L, J, K))
+        g, a = _ints(t, "g"), _ints(t, "a")
+        n[g, a] = _ints(t, "n")
+        for k in range(K):
+            s[g, a, k] = _floats(t, f"s{k}")
+            q[g, a, k] = _floats(t, f"q{k}")
+        return n, s, q
+
+    def cohort_counts(self, tree: Tree, cohort_of_node: np.ndarray, n_cohorts: int) -> np.ndarray:
+        cohort = self.route_expr(tree, lambda leaf: int(cohort_of_node[leaf]))
+        t = self.query(f"SELECT {cohort} AS c, COUNT(*) AS n FROM work GROUP BY 1")
+        out = np.zeros(n_cohorts, dtype=np.int64)
+        out[_ints(t, "c")] = _ints(t, "n")
+        return out
+
+    def cell_moments(self, tree: Tree, cohort_of_node: np.ndarray, n_cohorts: int,
+                     roles: tuple[int, ...]) -> CellMoments:  # fmt: skip
+        """`estimates.cell_moments`, in two passes as there: the means per cell, then the
+        cross-products of the values centred on their cell's mean."""
+        C, J, Q = n_cohorts, len(self.arm_keys), len(self.components)
+        cohort = self.route_expr(tree, lambda leaf: int(cohort_of_node[leaf]))
+        where = f"r IN ({', '.join(map(str, roles))})"
+        sums = ", ".join(f"SUM(c{i}) AS s{i}" for i in range(Q))
+        t = self.query(f"SELECT {cohort} AS g, a, COUNT(*) AS n{', ' + sums if Q else ''} "
+                       f"FROM work WHERE {where} GROUP BY 1, 2")  # fmt: skip
+        n = np.zeros((C, J), dtype=np.int64)
+        total = np.zeros((C, J, Q))
+        g, a = _ints(t, "g"), _ints(t, "a")
+        n[g, a] = _ints(t, "n")
+        for i in range(Q):
+            total[g, a, i] = _floats(t, f"s{i}")
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = total / n[..., None]
+        cross = np.zeros((C, J, Q, Q))
+        if Q and n.any():
+            cells = sorted({int(c) * J + int(j) for c, j in zip(g, a, strict=True)})
+            rows = ", ".join(
+                "(" + ", ".join([str(x)] + [num(mean[x // J, x % J, i]) for i in range(Q)]) + ")"
+                for x in cells
+            )
+            m_cols = ", ".join(f"m{i}" for i in range(Q))
+            dev = {i: f"(t.c{i} - m.m{i})" for i in range(Q)}
+            prods = ", ".join(f"SUM({dev[i]} * {dev[k]}) AS x{i}_{k}"
+                              for i in range(Q) for k in range(i, Q))  # fmt: skip
+            c_cols = ", ".join(f"c{i}" for i in range(Q))
+            t2 = self.query(
+                f"SELECT t.cell AS cell, {prods} FROM (SELECT {cohort} * {J} + a AS cell, "
+                f"{c_cols} FROM work WHERE {where}) AS t JOIN (VALUES {rows}) AS m(cell, {m_cols}) "
+                "ON t.cell = m.cell GROUP BY t.cell"
+            )
+            idx = _ints(t2, "cell")
+            for i in range(Q):
+                for k in range(i, Q):
+                    v = _floats(t2, f"x{i}_{k}")
+                    cross[idx // J, idx % J, i, k] = v
+                    cross[idx // J, idx % J, k, i] = v
+        with np.errstate(invalid="ignore", divide="ignore"):
+            cov = np.where((n > 1)[..., None, None], cross / (n - 1)[..., None, None], np.nan)
+        return CellMoments(components=tuple(self.components), n=n, mean=mean, cov=cov)
+
+
+class _SqlLevels:
+    """`tree.LevelHistograms` as one GROUPING SETS query per level: for every feature, counts and
+    sums per (frontier slot, bin, arm, half); rows off the frontier are filtered out first."""
+
+    def __init__(self, engine: SqlEngine, s_roles: tuple[int, ...], n_arms: int) -> None:
+        self.e, self.s_roles, self.J = engine, s_roles, n_arms
+
+    def level(self, tree: Tree, frontier: list[int]) -> Iterator[tuple[int, ...]]:
+        e, J = self.e, self.J
+        bins = e._bins
+        assert bins is not None
+        K = len(e._y)
+        feats = [f for f in range(len(bins.features)) if int(bins.n_bins[f]) >= 3]
+        if not feats:
+            return
+        S = len(frontier)
+        slot_of = {node: s for s, node in enumerate(frontier)}
+        slot = e.route_expr(tree, lambda leaf: slot_of.get(leaf, -1))
+        roles = ", ".join(map(str, (0, *self.s_roles)))
+        ys = ", ".join(f"{y} AS y{k}" for k, y in enumerate(e._y))
+        bcols = ", ".join(f"b{f}" for f in feats)
+        sums = ", ".join(f"SUM(y{k}) AS s{k}, SUM(y{k} * y{k}) AS q{k}" for k in range(K))
+        sets = ", ".join(f"(sl, a, h, b{f})" for f in feats)
+        sql = (
+            f"SELECT sl, a, h, {bcols}, COUNT(*) AS n, {sums} FROM ("
+            f"SELECT {slot} AS sl, a, CASE WHEN r = 0 THEN 1 ELSE 0 END AS h, {bcols}, {ys} "
+            f"FROM work WHERE r IN ({roles})) AS t WHERE sl >= 0 "
+            f"GROUP BY GROUPING SETS ({sets})"
+        )
+        t = e.query(sql)
+        sl, a, h, cnt_all = _ints(t, "sl"), _ints(t, "a"), _ints(t, "h"), _ints(t, "n")
+        s_all = [_floats(t, f"s{k}") for k in range(K)]
+        q_all = [_floats(t, f"q{k}") for k in range(K)]
+        for f in feats:
+            col = t.column(f"b{f}")
+            rows = np.flatnonzero(col.is_valid().to_numpy(zero_copy_only=False))
+            b = np.asarray(col.take(pa.array(rows)).to_numpy(zero_copy_only=False), dtype=np.int64)
+            nb = int(bins.n_bins[f])
+            cnt = np.zeros((S, nb, J), dtype=np.int64)
+            cnt_e = np.zeros((S, nb, J), dtype=np.int64)
+            sums_f, sqs_f = np.zeros((S, nb, J, K)), np.zeros((S, nb, J, K))
+            est = h[rows] == 1
+            r_s, r_e = rows[~est], rows[est]
+            cnt[sl[r_s], b[~est], a[r_s]] = cnt_all[r_s]
+            cnt_e[sl[r_e], b[est], a[r_e]] = cnt_all[r_e]
+            for k in range(K):
+                sums_f[sl[r_s], b[~est], a[r_s], k] = s_all[k][r_s]
+                sqs_f[sl[r_s], b[~est], a[r_s], k] = q_all[k][r_s]
+            yield f, cnt, sums_f, sqs_f, cnt_e
+
+
+def _ints(t: pa.Table, name: str) -> np.ndarray:
+    return np.asarray(t.column(name).to_numpy(zero_copy_only=False), dtype=np.int64)
+
+
+def _floats(t: pa.Table, name: str) -> np.ndarray:
+    col = t.column(name).to_numpy(zero_copy_only=False)
+    return np.asarray(np.where(col == None, 0.0, col) if col.dtype == object else col,  # noqa: E711
+                      dtype=np.float64)  # fmt: skip
