@@ -23,8 +23,12 @@ from .dataset import ReadoutDataset
 
 
 def num(x: float) -> str:
-    """A float64 literal that reads back to the same bits in both dialects."""
-    return f"CAST('{float(x)!r}' AS DOUBLE)"
+    """A float64 literal that reads back to the same bits in both dialects: 17 significant digits
+    in exponent form (a literal with an exponent is a DOUBLE in DuckDB and Spark SQL alike)."""
+    x = float(x)
+    if not np.isfinite(x):
+        return f"CAST('{'NaN' if np.isnan(x) else ('Infinity' if x > 0 else '-Infinity')}' AS DOUBLE)"
+    return f"{x:.16e}"
 
 
 class SqlEngine:
@@ -108,7 +112,8 @@ class SqlEngine:
     def load(self, bins: FeatureBins, role: np.ndarray) -> None:
         cols = [f"{self.arm_case()} AS a"]
         for f, spec in enumerate(bins.features):
-            cols.append(f"{self._bin_expr(spec, bins, f)} AS b{f}")
+            small = "TINYINT" if int(bins.n_bins[f]) <= 127 else "SMALLINT"
+            cols.append(f"CAST({self._bin_expr(spec, bins, f)} AS {small}) AS b{f}")
         for i, c in enumerate(self.components):
             cols.append(f"CAST({self.ident(c)} AS DOUBLE) AS c{i}")
         self.store_work(", ".join(cols), np.asarray(role, dtype=np.int8))
@@ -176,8 +181,7 @@ class SqlEngine:
             right, rv = walk(tree.right[node])
             if lv == rv and len(lv) == 1:
                 return left, lv
-            codes = np.flatnonzero(lk)
-            cond = f"b{tree.feature[node]} IN ({', '.join(map(str, codes))})" if codes.size else "FALSE"
+            cond = _code_set(f"b{tree.feature[node]}", np.flatnonzero(lk))
             return f"(CASE WHEN {cond} THEN {left} ELSE {right} END)", lv | rv
 
         return walk(0)[0]
@@ -304,6 +308,19 @@ class _SqlLevels:
                 sums_f[sl[r_s], b[~est], a[r_s], k] = s_all[k][r_s]
                 sqs_f[sl[r_s], b[~est], a[r_s], k] = q_all[k][r_s]
             yield f, cnt, sums_f, sqs_f, cnt_e
+
+
+def _code_set(col: str, codes: np.ndarray) -> str:
+    """`col` in `codes`, as ranges (a numeric split is one range plus perhaps the missing code)."""
+    if codes.size == 0:
+        return "FALSE"
+    breaks = np.flatnonzero(np.diff(codes) != 1) + 1
+    parts = []
+    for run in np.split(codes, breaks):
+        lo, hi = int(run[0]), int(run[-1])
+        parts.append(f"{col} = {lo}" if lo == hi else
+                     f"{col} <= {hi}" if lo == 0 else f"{col} BETWEEN {lo} AND {hi}")  # fmt: skip
+    return "(" + " OR ".join(parts) + ")"
 
 
 def _ints(t: pa.Table, name: str) -> np.ndarray:
