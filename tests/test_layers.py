@@ -11,8 +11,9 @@ ROOT = Path(__file__).resolve().parents[1] / "service"
 _WEB = ("fastapi", "starlette", "service.api", "service.app")
 _PURE = (*_WEB, "pydantic", "sqlalchemy", "service.store", "service.usecases")
 FORBIDDEN = {
-    "stats": (*_PURE, "service.serving"),
-    "optimize": (*_PURE, "service.serving"),
+    "stats": (*_PURE, "service.serving", "service.engines"),
+    "optimize": (*_PURE, "service.serving", "service.engines"),
+    "engines": (*_WEB, "sqlalchemy", "service.store", "service.usecases"),
     "serving": _PURE,
     "ingest": (*_WEB, "sqlalchemy", "service.store", "service.usecases"),
     "store": (*_WEB, "service.usecases"),
