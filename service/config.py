@@ -56,6 +56,25 @@ class Settings(BaseSettings):
     db_pool_size: int = Field(
         40, gt=0, description="connection pool size (sized to the request threadpool)"
     )
+    fit_engine_min_rows: int = Field(
+        2_000_000,
+        ge=0,
+        description="readouts with more rows than this are fitted by DuckDB over their Parquet "
+        "files instead of in memory (unless a Spark master is set)",
+    )
+    duckdb_memory_limit: str = Field(
+        "1GB",
+        pattern=r"^[0-9]+(\.[0-9]+)?\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)$",
+        description="DuckDB's memory limit for a fit; beyond it the working table spills to disk",
+    )
+    spark_master: str | None = Field(
+        None, description="Spark master URL (e.g. spark://host:7077, local[2]); set, fits run on Spark"
+    )
+    engine_scratch_dir: str | None = Field(
+        None,
+        description="where engines keep working files (DuckDB spill, Spark's working table); "
+        "on a Spark cluster a location every executor can read. Default: the system temp dir",
+    )
 
 
 @lru_cache

@@ -22,8 +22,8 @@ ENGINES = ("memory", "duckdb", "spark")
 def choose_engine(
     n_rows: int, *, spark_master: str | None, duckdb_min_rows: int, requested: str | None = None
 ) -> str:
-    """The engine for a readout of `n_rows`: the one requested, else Spark when a master is
-    configured, DuckDB above `duckdb_min_rows`, numpy in memory below."""
+    """The engine for a readout of `n_rows`: the one requested; else numpy in memory up to
+    `duckdb_min_rows` rows and above it Spark when a master is configured, DuckDB otherwise."""
     if requested is not None:
         if requested not in ENGINES:
             raise InvalidInput(f"engine must be one of {list(ENGINES)}, got {requested!r}",
@@ -32,9 +32,9 @@ def choose_engine(
             raise InvalidInput("engine 'spark' needs APPORTION_SPARK_MASTER to be set",
                                errors=[{"field": "engine", "problem": "no Spark master"}])  # fmt: skip
         return requested
-    if spark_master:
-        return "spark"
-    return "duckdb" if n_rows > duckdb_min_rows else "memory"
+    if n_rows <= duckdb_min_rows:
+        return "memory"
+    return "spark" if spark_master else "duckdb"
 
 
 @contextmanager

@@ -5,12 +5,15 @@ disk instead of growing past `memory_limit`)."""
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import tempfile
 
 import duckdb
 import numpy as np
 import pyarrow as pa
+
+from service.errors import InvalidInput
 
 from .dataset import ReadoutDataset
 from .sql import SqlEngine
@@ -27,6 +30,8 @@ class DuckDBEngine(SqlEngine):
         threads: int | None = None,
         temp_dir: str | None = None,
     ) -> None:
+        if not re.fullmatch(r"[0-9]+(\.[0-9]+)?\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)", memory_limit):
+            raise InvalidInput(f"DuckDB memory limit must look like '1GB', got {memory_limit!r}")
         self._dir = tempfile.mkdtemp(prefix="apportion-duckdb-", dir=temp_dir)
         self.con = duckdb.connect(os.path.join(self._dir, "work.duckdb"))
         self.con.execute(f"SET memory_limit = '{memory_limit}'")

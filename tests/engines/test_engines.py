@@ -122,7 +122,8 @@ def test_non_finite_metric_values_are_refused(tmp_path, readout):
 def test_engine_choice():
     assert choose_engine(10, spark_master=None, duckdb_min_rows=100) == "memory"
     assert choose_engine(101, spark_master=None, duckdb_min_rows=100) == "duckdb"
-    assert choose_engine(10, spark_master="local[2]", duckdb_min_rows=100) == "spark"
+    assert choose_engine(10, spark_master="local[2]", duckdb_min_rows=100) == "memory"
+    assert choose_engine(101, spark_master="local[2]", duckdb_min_rows=100) == "spark"
     assert choose_engine(10**9, spark_master=None, duckdb_min_rows=100, requested="memory") == "memory"
     with pytest.raises(InvalidInput, match="APPORTION_SPARK_MASTER"):
         choose_engine(10, spark_master=None, duckdb_min_rows=100, requested="spark")

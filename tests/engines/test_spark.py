@@ -14,8 +14,10 @@ from .test_engines import CASES, _method, assert_same_fit
 pytest.importorskip("pyspark", reason="pyspark is not installed (pip install -e '.[spark]')")
 
 
-@pytest.mark.parametrize("case", ["causal_tree_cv", "causal_tree_success", "global"])
+@pytest.mark.parametrize("case", ["causal_tree_success"])
 def test_spark_fit_equals_in_memory_fit(readout, case, tmp_path):
+    # One case keeps CI short (a Spark query costs seconds however small the data); the SQL plan
+    # is shared with DuckDB, whose tests cover cross-validation and `global` as well.
     from service.engines import open_engine
 
     ds, table = readout
