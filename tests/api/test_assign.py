@@ -251,3 +251,22 @@ def test_compiled_document_etag_and_304(live) -> None:  # type: ignore[no-untype
     assert r2.status_code == 200 and r2.headers["etag"] != etag
     assert r2.json()["plan_version"] == 2
     _problem(c.get("/v1/plans/none-live/compiled", headers=keys.h(keys.reader)), 404)
+
+
+def test_declared_routes_answer_as_the_gateway_does(live) -> None:  # type: ignore[no-untyped-def]
+    """The FastAPI operations behind the gateway (what the OpenAPI document describes) give the
+    same answers and problems when called without the gateway in front."""
+    from functools import partial
+
+    from fastapi import FastAPI
+
+    c, keys = live
+    inner = TestClient(partial(FastAPI.__call__, c.app), raise_server_exceptions=False)
+    h = {**keys.h(keys.reader), "content-type": "application/json"}
+    for body in ('{"member_id": "m-7", "features": {"tenure_days": 3}}', '{"member_id": 7}'):
+        a = _post(c, keys, body)
+        b = inner.post(f"/v1/plans/{PLAN}/assign", content=body, headers=h)
+        assert (a.status_code, a.json().get("arm")) == (b.status_code, b.json().get("arm"))
+    batch = '{"members": [{"member_id": "a"}, {"member_id": "b"}]}'
+    b = inner.post(f"/v1/plans/{PLAN}/assign/batch", content=batch, headers=h)
+    assert b.json() == _post(c, keys, batch, batch=True).json()
