@@ -104,7 +104,7 @@ def second_server(client: TestClient, db_url: str):  # type: ignore[no-untyped-d
         stderr=log,
     )
     url = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + 30
+    deadline = time.monotonic() + 120  # a cold start takes ~3 s quiet, ~30 s on a loaded box
     while time.monotonic() < deadline:
         try:
             if httpx.get(url + "/healthz", timeout=0.5).status_code == 200:
@@ -113,6 +113,7 @@ def second_server(client: TestClient, db_url: str):  # type: ignore[no-untyped-d
             time.sleep(0.1)
     else:
         proc.kill()
+        proc.wait()
         log.seek(0)
         text = log.read().decode()
         log.close()
