@@ -8,22 +8,10 @@ from collections.abc import Iterator
 
 import pytest
 from fastapi.testclient import TestClient
-from sqlalchemy import create_engine, text
-from support import Keys, make_keys, make_settings
+from support import Keys, make_keys, make_settings, reset_postgres
 
 PG_URL = os.environ.get("APPORTION_TEST_DATABASE_URL")
 BACKENDS = ["sqlite"] + (["postgresql"] if PG_URL else [])
-
-
-def _reset_postgres(url: str) -> str:
-    if url.startswith("postgresql://"):
-        url = "postgresql+psycopg://" + url[len("postgresql://") :]
-    eng = create_engine(url, isolation_level="AUTOCOMMIT")
-    with eng.connect() as c:
-        c.execute(text("DROP SCHEMA IF EXISTS public CASCADE"))
-        c.execute(text("CREATE SCHEMA public"))
-    eng.dispose()
-    return url
 
 
 @pytest.fixture(params=BACKENDS)
@@ -31,7 +19,7 @@ def db_url(request: pytest.FixtureRequest, tmp_path) -> str:  # type: ignore[no-
     if request.param == "sqlite":
         return f"sqlite:///{tmp_path}/apportion.db"
     assert PG_URL
-    return _reset_postgres(PG_URL)
+    return reset_postgres(PG_URL)
 
 
 @pytest.fixture

@@ -49,6 +49,20 @@ def rows_csv(n: int = 400, seed: int = 1, arms=None) -> bytes:  # type: ignore[n
     return ("\n".join(lines) + "\n").encode()
 
 
+def reset_postgres(url: str) -> str:
+    """Empty the `public` schema of a throwaway PostgreSQL database; returns the psycopg URL."""
+    from sqlalchemy import create_engine, text
+
+    if url.startswith("postgresql://"):
+        url = "postgresql+psycopg://" + url[len("postgresql://") :]
+    eng = create_engine(url, isolation_level="AUTOCOMMIT")
+    with eng.connect() as c:
+        c.execute(text("DROP SCHEMA IF EXISTS public CASCADE"))
+        c.execute(text("CREATE SCHEMA public"))
+    eng.dispose()
+    return url
+
+
 def make_settings(db_url: str, **overrides: object) -> Settings:
     base: dict[str, object] = {
         "database_url": db_url,

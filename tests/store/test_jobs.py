@@ -77,3 +77,42 @@ def test_interrupted_job_is_requeued_then_failed(db_url: str) -> None:
         row = repo.get_job(session=s, job_id=job_id)
         assert row.status == "failed" and row.error.startswith("interrupted: no heartbeat")
     services.db.dispose()
+
+
+def test_an_interrupted_fit_that_runs_out_of_attempts_leaves_its_model_failed(db_url: str) -> None:
+    """Issue 10 item 5: the reclaim that fails the job fails its model too, with the job's error
+    (before, the model stayed `running` forever)."""
+    from support import EXPERIMENT, rows_csv
+
+    from service.store.audit import Actor
+    from service.usecases import experiments, models
+
+    services = _services(db_url)
+    analyst = Actor("t-analyst", "analyst")
+    experiments.declare(services.db, declaration=EXPERIMENT, actor=analyst)
+    experiments.upload_readout(
+        services.db, key="checkout-copy", body=rows_csv(300), content_type="text/csv", actor=analyst
+    )
+    started = models.start_fit(
+        services,
+        key="checkout-copy",
+        readout_version=1,
+        method="global",
+        params={},
+        success_metric=None,
+        override_reason=None,
+        actor=analyst,
+    )
+    runner = uc.JobRunner(services, worker_name="fresh")
+    for attempt in (1, 2):
+        # a worker claims the fit, marks the model running as the handler does, then dies
+        with services.db.write() as s:
+            assert repo.claim_next(session=s, worker=f"dead-{attempt}", kinds=("fit",)) is not None
+            models.repo.get_model(session=s, model_id=started["model_id"]).status = "running"
+        time.sleep(1.2)
+        runner.reclaim()
+    job = uc.get_job(services, started["job_id"])
+    model = models.get_model(services.db, model_id=started["model_id"])
+    assert job["status"] == "failed" and job["error"].startswith("interrupted: no heartbeat")
+    assert model["status"] == "failed" and model["error"] == job["error"]
+    services.db.dispose()
