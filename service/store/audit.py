@@ -1,6 +1,12 @@
 """The audit chain: append-only entries, each hashed over the previous hash and its own canonical
-JSON. Appending locks the one-row head (SELECT ... FOR UPDATE on PostgreSQL; SQLite write
-transactions are already serialized), so concurrent writers never fork the chain."""
+JSON. Extending the chain locks the one-row head (SELECT ... FOR UPDATE on PostgreSQL; SQLite write
+transactions are already serialized), so concurrent writers never fork the chain.
+
+The head is the last lock of every write transaction (level 5 of the lock order in store/db.py):
+`append` only queues the entry on the session, and the queued entries are chained and inserted by
+a `before_commit` hook, after every other statement of the transaction. A transaction that holds
+the head therefore waits for nothing else, whatever order its code appended in; and an entry
+exists exactly when its transaction committed."""
 
 from __future__ import annotations
 
@@ -9,10 +15,10 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import event, select
 from sqlalchemy.orm import Session
 
-from service.store.db import utcnow
+from service.store.db import insert_or_ignore, utcnow
 from service.store.tables import AuditEntry, AuditHead
 
 GENESIS = "0" * 64
@@ -57,6 +63,9 @@ class Actor:
         return self.owner or self.name
 
 
+_PENDING = "audit_pending"
+
+
 def append(
     session: Session,
     *,
@@ -66,33 +75,52 @@ def append(
     entity_id: str | int,
     payload: dict[str, Any] | None = None,
     reason: str | None = None,
-) -> AuditEntry:
-    """Add one entry in the caller's transaction (flushes, never commits)."""
-    head = session.execute(
-        select(AuditHead).where(AuditHead.id == 1).with_for_update()
-    ).scalar_one_or_none()
-    if head is None:
-        head = AuditHead(id=1, seq=0, hash=GENESIS)
-        session.add(head)
-        session.flush()
-    entry = AuditEntry(
-        id=head.seq + 1,
-        at=utcnow(),
-        actor_name=actor.name,
-        actor_role=actor.role,
-        action=action,
-        entity=entity,
-        entity_id=str(entity_id),
-        reason=reason,
-        payload=canonical_json(payload or {}),
-        prev_hash=head.hash,
-        hash="",
+) -> None:
+    """Queue one entry in the caller's transaction; it is chained and written at commit, in the
+    order appended (see the module docstring). The payload is serialized now, so a later change
+    to the caller's dict does not alter the entry."""
+    session.info.setdefault(_PENDING, []).append(
+        {
+            "actor_name": actor.name,
+            "actor_role": actor.role,
+            "action": action,
+            "entity": entity,
+            "entity_id": str(entity_id),
+            "reason": reason,
+            "payload": canonical_json(payload or {}),
+        }
     )
-    entry.hash = _entry_hash(head.hash, _body(entry))
-    head.seq, head.hash = entry.id, entry.hash
-    session.add(entry)
+
+
+@event.listens_for(Session, "before_commit")
+def _write_pending(session: Session) -> None:
+    if session.in_nested_transaction():  # a savepoint: the outermost commit writes them
+        return
+    pending = session.info.pop(_PENDING, None)
+    if not pending:
+        return
+    session.flush()  # every other change of the transaction first: the head is the last lock
+    head = _lock_head(session)
+    if head is None:  # the first entry ever; two first writers may race to create the head
+        insert_or_ignore(session, AuditHead, {"id": 1, "seq": 0, "hash": GENESIS})
+        head = _lock_head(session)
+    assert head is not None
+    for fields in pending:
+        entry = AuditEntry(id=head.seq + 1, at=utcnow(), prev_hash=head.hash, hash="", **fields)
+        entry.hash = _entry_hash(head.hash, _body(entry))
+        head.seq, head.hash = entry.id, entry.hash
+        session.add(entry)
     session.flush()
-    return entry
+
+
+def _lock_head(session: Session) -> AuditHead | None:
+    q = select(AuditHead).where(AuditHead.id == 1).with_for_update()
+    return session.execute(q.execution_options(populate_existing=True)).scalar_one_or_none()
+
+
+@event.listens_for(Session, "after_rollback")
+def _drop_pending(session: Session) -> None:
+    session.info.pop(_PENDING, None)
 
 
 @dataclass(frozen=True)

@@ -1,5 +1,27 @@
 """Engines and sessions. SQLite gets WAL, foreign keys and a busy timeout; write transactions on
-SQLite start with BEGIN IMMEDIATE so that two writers queue instead of failing half-way."""
+SQLite start with BEGIN IMMEDIATE so that two writers queue instead of failing half-way.
+
+LOCK ORDER (the one order for the whole service; DEVELOPERS.md repeats it). On PostgreSQL a write
+transaction takes row locks in this order and never the reverse, skipping the levels it does not
+need, so two transactions can never wait on each other in a cycle (SQLite serializes all writers
+with BEGIN IMMEDIATE, so the order costs nothing there):
+
+1. the experiment row (`experiments`, `get_experiment(lock=True)`): readout uploads and fit
+   starts. It serializes the numbering of readouts and models and the content-hash check.
+2. the plan pointer row (`plan_pointers`, `ensure_pointer` / `pointer(lock=True)`): every change
+   to a plan: drafts, approvals and rejections, activations, rollbacks, the auto-rollback setting,
+   watch uploads and the report job. It serializes plan version numbers, the live pointer and watch
+   upload numbers.
+3. job rows (`jobs`): claim (SKIP LOCKED), heartbeat, finish, fail, reclaim.
+4. the rows the transaction changes, reached through the lock above (plan versions, cohort models,
+   readouts, watch uploads, keys) and content-addressed blobs (`insert_or_ignore`, which waits
+   for a concurrent insert of the same key). Several rows of one table are taken in key order.
+5. the audit chain head (`audit_head`), always last: `audit.append` queues the entry and the
+   chain is extended just before the commit (store/audit.py), whatever order the code appends in.
+
+Numbers ("last + 1") are computed only while holding the lock of level 1 or 2 that owns them, and
+every unique key has its lock, so a concurrent request waits instead of colliding.
+"""
 
 from __future__ import annotations
 
@@ -13,6 +35,8 @@ from datetime import UTC, datetime
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
+from sqlalchemy.dialects.postgresql import insert as pg_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session, sessionmaker
 
 
@@ -107,6 +131,16 @@ class Database:
 
     def dispose(self) -> None:
         self.engine.dispose()
+
+
+def insert_or_ignore(session: Session, table: Any, values: dict[str, Any]) -> bool:
+    """INSERT ... ON CONFLICT DO NOTHING: a row that a concurrent transaction inserts with the same
+    key is left to it (PostgreSQL waits for that transaction, then skips). True when this call
+    inserted the row."""
+    dialect = session.get_bind().dialect.name
+    make = pg_insert if dialect == "postgresql" else sqlite_insert
+    stmt = make(table).values(**values).on_conflict_do_nothing()
+    return bool(session.execute(stmt).rowcount)
 
 
 def ping(db: Database) -> bool:

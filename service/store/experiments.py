@@ -29,8 +29,14 @@ def add_experiment(
     return row
 
 
-def get_experiment(*, session: Session, key: str) -> Experiment:
-    row = session.execute(select(Experiment).where(Experiment.key == key)).scalar_one_or_none()
+def get_experiment(*, session: Session, key: str, lock: bool = False) -> Experiment:
+    """The experiment; with `lock`, its row is locked for the rest of the transaction (level 1 of
+    the lock order in store/db.py: readout and model numbers and content hashes are decided
+    under it)."""
+    q = select(Experiment).where(Experiment.key == key)
+    if lock:
+        q = q.with_for_update().execution_options(populate_existing=True)
+    row = session.execute(q).scalar_one_or_none()
     if row is None:
         raise NotFound(f"no experiment with key '{key}'")
     return row
@@ -61,6 +67,7 @@ def add_readout(
     summary: dict[str, Any],
     created_by: str,
 ) -> Readout:
+    """The next version of the experiment's readouts; the caller holds the experiment's lock."""
     last = session.execute(
         select(func.max(Readout.version)).where(Readout.experiment_id == experiment.id)
     ).scalar()

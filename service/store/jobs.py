@@ -89,15 +89,15 @@ def fail(*, session: Session, job_id: str, error: str) -> None:
     )
 
 
-def reclaim_stale(*, session: Session, stale_seconds: float) -> list[tuple[str, str]]:
-    """Requeue or fail running jobs whose heartbeat stopped; returns (job id, new status)."""
+def reclaim_stale(*, session: Session, stale_seconds: float) -> list[Job]:
+    """Requeue or fail running jobs whose heartbeat stopped; returns the reclaimed rows with their
+    new status. The rows are locked (SKIP LOCKED on PostgreSQL) so two reclaiming processes never
+    handle the same job; the caller finishes what a failed job was making (usecases/jobs.py)."""
     cutoff = time.time() - stale_seconds
-    rows = (
-        session.execute(select(Job).where(Job.status == "running", Job.heartbeat_at < cutoff))
-        .scalars()
-        .all()
-    )
-    out = []
+    q = select(Job).where(Job.status == "running", Job.heartbeat_at < cutoff).order_by(Job.id)
+    if session.bind is not None and session.bind.dialect.name == "postgresql":
+        q = q.with_for_update(skip_locked=True)
+    rows = session.execute(q).scalars().all()
     for row in rows:
         if row.attempts < MAX_ATTEMPTS:
             row.status, row.worker = "queued", None
@@ -105,9 +105,8 @@ def reclaim_stale(*, session: Session, stale_seconds: float) -> list[tuple[str, 
             row.status = "failed"
             row.finished_at = utcnow()
             row.error = f"interrupted: no heartbeat for more than {stale_seconds:.0f} s after {row.attempts} attempts"
-        out.append((row.id, row.status))
     session.flush()
-    return out
+    return list(rows)
 
 
 def job_view(row: Job) -> dict[str, Any]:

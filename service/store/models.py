@@ -22,6 +22,7 @@ def add_model(
     job_id: str,
     created_by: str,
 ) -> CohortModel:
+    """The next model version of the experiment; the caller holds the experiment's lock."""
     last = session.execute(
         select(func.max(CohortModel.version)).where(CohortModel.experiment_id == experiment_id)
     ).scalar()
@@ -49,10 +50,11 @@ def get_model(*, session: Session, model_id: int) -> CohortModel:
     return row
 
 
-def model_for_job(*, session: Session, job_id: str) -> CohortModel | None:
-    return session.execute(
-        select(CohortModel).where(CohortModel.job_id == job_id)
-    ).scalar_one_or_none()
+def model_for_job(*, session: Session, job_id: str, lock: bool = False) -> CohortModel | None:
+    q = select(CohortModel).where(CohortModel.job_id == job_id)
+    if lock:  # see the committed status even if the fit finished a moment ago
+        q = q.with_for_update().execution_options(populate_existing=True)
+    return session.execute(q).scalar_one_or_none()
 
 
 def set_result(

@@ -10,7 +10,7 @@ from sqlalchemy import event, func, inspect, select
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, InvalidTransition, NotFound
-from service.store.db import utcnow
+from service.store.db import insert_or_ignore, utcnow
 from service.store.tables import PlanActivation, PlanPointer, PlanVersion
 
 IMMUTABLE = (
@@ -57,28 +57,37 @@ def _guard_versions(session: Session, _ctx: Any, _instances: Any) -> None:
 
 
 def pointer(*, session: Session, plan: str, lock: bool = False) -> PlanPointer | None:
+    """The plan's pointer; with `lock`, its row is locked for the rest of the transaction (level 2
+    of the lock order in store/db.py: every change to the plan takes it first)."""
     q = select(PlanPointer).where(PlanPointer.plan == plan)
     if lock:
-        q = q.with_for_update()
+        q = q.with_for_update().execution_options(populate_existing=True)
     return session.execute(q).scalar_one_or_none()
 
 
 def ensure_pointer(*, session: Session, plan: str) -> PlanPointer:
+    """Lock the plan's pointer, creating it first if the plan is new (two first drafts may race to
+    create it: the insert skips an existing row, then both lock the one row)."""
     row = pointer(session=session, plan=plan, lock=True)
     if row is None:
-        row = PlanPointer(
-            plan=plan,
-            active_version=None,
-            revision=0,
-            updated_at=utcnow(),
-            auto_rollback={"enabled": False},
+        insert_or_ignore(
+            session,
+            PlanPointer,
+            {
+                "plan": plan,
+                "active_version": None,
+                "revision": 0,
+                "updated_at": utcnow(),
+                "auto_rollback": {"enabled": False},
+            },
         )
-        session.add(row)
-        session.flush()
+        row = pointer(session=session, plan=plan, lock=True)
+        assert row is not None
     return row
 
 
 def next_version(*, session: Session, plan: str) -> int:
+    """The plan's next version number; the caller holds the plan's pointer lock."""
     last = session.execute(
         select(func.max(PlanVersion.version)).where(PlanVersion.plan == plan)
     ).scalar()

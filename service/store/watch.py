@@ -30,6 +30,7 @@ def add_upload(
     result: dict[str, Any],
     created_by: str,
 ) -> WatchUpload:
+    """The next upload number of the plan version; the caller holds the plan's pointer lock."""
     last = session.execute(
         select(func.max(WatchUpload.seq)).where(
             WatchUpload.plan == plan, WatchUpload.version == version

@@ -243,7 +243,9 @@ def upload_readout(
     summary["warnings"] = list(getattr(parsed, "warnings", []) or [])
     encoded = encode_table(parsed.table)
     with db.write() as s:
-        exp = repo.get_experiment(session=s, key=key)
+        # The experiment's lock (level 1, store/db.py) makes the hash check and the next version
+        # number one decision: a concurrent upload waits here, then sees this one's row.
+        exp = repo.get_experiment(session=s, key=key, lock=True)
         existing = repo.find_readout_by_hash(
             session=s, experiment_id=exp.id, content_hash=content_hash
         )

@@ -61,15 +61,23 @@ def run_one(services: Services, worker: str) -> bool:
         JOB_FAILURES.labels(job.kind).inc()
         with services.db.write() as s3:
             repo.fail(session=s3, job_id=job.id, error=msg[:2000])
-            on_fail = FAILURE_HOOKS.get(job.kind)
-            if on_fail:
-                on_fail(s3, job, msg)
+            _on_failed(s3, job, msg[:2000])
     else:
         JOB_SECONDS.labels(job.kind).observe(time.perf_counter() - start)
     return True
 
 
+# What a failed job was making (a cohort model, say) ends failed with the job's error. Every way a
+# job fails goes through `_on_failed`: its handler raised (run_one) or its worker died (reclaim).
 FAILURE_HOOKS: dict[str, Callable[[Any, Job, str], None]] = {}
+
+
+def _on_failed(session: Any, job: Job, message: str) -> None:
+    """Run after the job row is marked failed (lock order, store/db.py: the job row, then the rows
+    of what it was making)."""
+    hook = FAILURE_HOOKS.get(job.kind)
+    if hook is not None:
+        hook(session, job, message)
 
 
 class JobRunner:
@@ -92,11 +100,13 @@ class JobRunner:
 
     def reclaim(self) -> None:
         with self.services.db.write() as s:
-            for job_id, status in repo.reclaim_stale(
+            for job in repo.reclaim_stale(
                 session=s, stale_seconds=self.services.settings.job_stale_seconds
             ):
+                if job.status == "failed":
+                    _on_failed(s, job, job.error or "interrupted")
                 log.warning(
-                    "reclaimed an interrupted job", extra={"job_id": job_id, "status": status}
+                    "reclaimed an interrupted job", extra={"job_id": job.id, "status": job.status}
                 )
 
     def wake(self) -> None:

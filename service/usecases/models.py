@@ -41,7 +41,7 @@ def start_fit(
         )
     db = services.db
     with db.write() as s:
-        exp = exp_repo.get_experiment(session=s, key=key)
+        exp = exp_repo.get_experiment(session=s, key=key, lock=True)  # level 1: model numbers
         readout = exp_repo.get_readout(session=s, experiment_id=exp.id, version=readout_version)
         specs = specs_of(exp.declaration)
         if success_metric is not None and specs.metric(success_metric) is None:
@@ -121,14 +121,14 @@ def _run_fit(services: Services, job: Job, progress: Any) -> None:
     )
     result = fit_result(fit, table.arm_keys, time.perf_counter() - t0)
     mask = np.packbits(np.asarray(fit.estimation_mask, dtype=bool)).tobytes()
-    with services.db.write() as s:
+    with services.db.write() as s:  # lock order (store/db.py): the job row, then the model's
+        job_repo.finish(session=s, job_id=job.id)
         result["estimation_mask_blob"] = blobs.put_blob(session=s, data=mask)
         repo.set_result(session=s, model_id=model_id, status="done", result=result)
-        job_repo.finish(session=s, job_id=job.id)
 
 
 def _on_fit_failed(session: Any, job: Job, message: str) -> None:
-    row = repo.model_for_job(session=session, job_id=job.id)
+    row = repo.model_for_job(session=session, job_id=job.id, lock=True)
     if row is not None and row.status != "done":
         row.status = "failed"
         row.result = {"error": message}

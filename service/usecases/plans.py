@@ -246,7 +246,7 @@ def draft_version(
         report = {"status": "pending"}
     alloc_view = _allocation_view(sol.allocation, ctx, shares)
     with services.db.write() as s:
-        repo.ensure_pointer(session=s, plan=plan)
+        repo.ensure_pointer(session=s, plan=plan)  # level 2 (store/db.py): version numbers
         prev = repo.latest_version(session=s, plan=plan)
         salt = prev.salt if (prev is not None and not body.get("new_salt")) else new_salt()
         version = repo.next_version(session=s, plan=plan)
@@ -373,7 +373,9 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
         progress,
         options=spec.get("options") or {},
     )
-    with services.db.write() as s:
+    with services.db.write() as s:  # lock order (store/db.py): plan, job row, version row
+        repo.pointer(session=s, plan=plan, lock=True)
+        job_repo.finish(session=s, job_id=job.id)
         row = repo.get_version(session=s, plan=plan, version=version)
         row.report = {**report, "solution": row.report.get("solution"), "job": f"/v1/jobs/{job.id}"}
         audit.append(
@@ -384,7 +386,6 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
             entity_id=f"{plan}/{version}",
             payload={"draws": spec["draws"], "job": job.id},
         )
-        job_repo.finish(session=s, job_id=job.id)
 
 
 # ---- reading -----------------------------------------------------------------------------------
@@ -536,6 +537,10 @@ def decide(
     services: Services, *, plan: str, version: int, approve: bool, reason: str, actor: Actor
 ) -> dict[str, Any]:
     with services.db.write() as s:
+        # The plan's lock (level 2, store/db.py) makes the status check and the change one step:
+        # of two approvers deciding at once, the second sees the first's decision.
+        if repo.pointer(session=s, plan=plan, lock=True) is None:
+            raise NotFound(f"no plan '{plan}'")
         row = repo.get_version(session=s, plan=plan, version=version)
         if row.status != "draft":
             raise InvalidTransition(
@@ -575,7 +580,7 @@ def _switch(
     reason: str,
     evidence: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
-    ptr = repo.pointer(session=s, plan=plan, lock=True)
+    ptr = repo.pointer(session=s, plan=plan, lock=True)  # level 2 (store/db.py), then versions
     if ptr is None:
         raise NotFound(f"no plan '{plan}'")
     target = repo.get_version(session=s, plan=plan, version=to_version)

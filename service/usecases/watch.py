@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from service.errors import InvalidInput, NotFound
+from service.errors import ApportionError, InvalidInput, NotFound
 from service.ingest.codec import decode_table, encode_table
 from service.ingest.parse import parse_units
 from service.observability import WATCH_STATUS
@@ -210,28 +210,33 @@ def upload(
         else 0.0
     )
 
-    with services.db.read() as s:
+    encoded = encode_table(new_table, {"holdout": new_holdout})
+    with services.db.write() as s:
+        # The plan's lock (level 2 of the lock order in store/db.py) comes first: under it the
+        # earlier uploads are read, the upload number is taken and the live pointer is checked, so
+        # concurrent uploads each see all the earlier ones and an activation waits, never deadlocks.
+        ptr = plan_repo.pointer(session=s, plan=plan, lock=True)
+        if ptr is None:
+            raise NotFound(f"no plan '{plan}'")
+        ar = dict(ptr.auto_rollback or {})
         previous = [
-            (decode_table(blobs.get_blob(session=s, sha256=u.blob_sha256)))
+            decode_table(blobs.get_blob(session=s, sha256=u.blob_sha256))
             for u in repo.uploads(session=s, plan=plan, version=row.version)
         ]
-    tables = _harmonize_levels([t for t, _ in previous] + [new_table])
-    holdouts = [f["holdout"] for _, f in previous] + [new_holdout]
-    merged, holdout, replaced = _merge(list(zip(tables, holdouts, strict=True)))
-    horizon = int(ctx["auto_rollback"].get("horizon") or DEFAULT_HORIZON)
-    metrics = evaluate(merged, holdout, row.spec, horizon=horizon)
-    breached = [m for m in metrics if m["status"] == "breached"]
-    encoded = encode_table(new_table, {"holdout": new_holdout})
-    result: dict[str, Any] = {
-        "rows": int(new_table.n),
-        "members": int(merged.n),
-        "replaced": replaced,
-        "holdout_flag_disagreement": disagree,
-        "metrics": metrics,
-        "rolled_back": None,
-    }
-    ar = ctx["auto_rollback"]
-    with services.db.write() as s:
+        tables = _harmonize_levels([t for t, _ in previous] + [new_table])
+        holdouts = [f["holdout"] for _, f in previous] + [new_holdout]
+        merged, holdout, replaced = _merge(list(zip(tables, holdouts, strict=True)))
+        horizon = int(ar.get("horizon") or DEFAULT_HORIZON)
+        metrics = evaluate(merged, holdout, row.spec, horizon=horizon)
+        breached = [m for m in metrics if m["status"] == "breached"]
+        result: dict[str, Any] = {
+            "rows": int(new_table.n),
+            "members": int(merged.n),
+            "replaced": replaced,
+            "holdout_flag_disagreement": disagree,
+            "metrics": metrics,
+            "rolled_back": None,
+        }
         sha = blobs.put_blob(session=s, data=encoded)
         up = repo.add_upload(
             session=s,
@@ -257,11 +262,9 @@ def upload(
                 "statuses": {m["metric"]: m["status"] for m in metrics if m["role"] == "guardrail"},
             },
         )
-        ptr = plan_repo.pointer(session=s, plan=plan, lock=True)
-        live_now = ptr.active_version if ptr else None
         min_units = int(ar.get("min_units_per_group", 1000))
         enough = [m for m in breached if min(m["n_plan"], m["n_holdout"]) >= min_units]
-        if ar.get("enabled") and enough and live_now == row.version:
+        if ar.get("enabled") and enough and ptr.active_version == row.version:
             worst = enough[0]
             evidence = {
                 "guardrail": worst["metric"],
@@ -284,11 +287,8 @@ def upload(
                     evidence=evidence,
                 )
                 result["rolled_back"] = {"to_version": switched["to_version"], "evidence": evidence}
-            except Exception as exc:  # no earlier version: report it, keep the upload
-                result["rolled_back"] = {
-                    "error": getattr(exc, "detail", str(exc)),
-                    "evidence": evidence,
-                }
+            except ApportionError as exc:  # no earlier version: report it, keep the upload
+                result["rolled_back"] = {"error": exc.detail, "evidence": evidence}
             up.result = dict(result)
     if result["rolled_back"] and "to_version" in result["rolled_back"]:
         live.refresh_plan(services, plan)
