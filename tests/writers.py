@@ -122,7 +122,7 @@ def assert_consistent(db_url: str, *, settled: bool = True) -> dict[str, int]:
         with db.read() as s:
             verdict = audit_store.verify(s)
             assert verdict.intact, verdict
-            entries = s.execute(select(AuditEntry)).scalars().all()
+            entries = s.execute(select(AuditEntry).order_by(AuditEntry.id)).scalars().all()
             by_action: dict[str, Counter[str]] = {}
             for e in entries:
                 by_action.setdefault(e.action, Counter())[e.entity_id] += 1
@@ -169,9 +169,8 @@ def assert_consistent(db_url: str, *, settled: bool = True) -> dict[str, int]:
                 mine = [a for a in acts if a.plan == ptr.plan]
                 audited = [json.loads(e.payload) for e in switches if e.entity_id == ptr.plan]
                 assert [a.revision for a in mine] == list(range(1, ptr.revision + 1))
-                assert [(p["revision"], p["to_version"]) for p in audited] == [
-                    (a.revision, a.version) for a in mine
-                ]
+                got = [(p["revision"], p["to_version"]) for p in audited]
+                assert got == [(a.revision, a.version) for a in mine], (got, mine)
                 assert ptr.active_version == (mine[-1].version if mine else None)
                 active = [
                     v.version for v in versions if v.plan == ptr.plan and v.status == "active"

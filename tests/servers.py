@@ -1,0 +1,123 @@
+"""Real server processes for the race and kill -9 suites: `apportion serve` on a free port against a
+given database, with its stderr kept in a log file so a failure shows what the server said."""
+
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import SimpleNamespace
+
+import httpx
+from support import Keys, make_keys, reset_postgres
+
+PG_URL = os.environ.get("APPORTION_TEST_DATABASE_URL")
+NO_POSTGRES = (
+    "PostgreSQL is not configured: set APPORTION_TEST_DATABASE_URL to a throwaway database "
+    "(.ci/run does when a server answers on 127.0.0.1:5432)"
+)
+
+
+def fresh_database(kind: str, tmp_path: Path) -> str:
+    """An empty SQLite file, or the PostgreSQL test database with an empty `public` schema."""
+    if kind == "sqlite":
+        return f"sqlite:///{tmp_path}/apportion.db"
+    assert PG_URL, NO_POSTGRES
+    return reset_postgres(PG_URL)
+
+
+def prepare(db_url: str) -> Keys:
+    """Migrate the database to head and make one key per role (before any server starts, so that
+    two servers never race to migrate and both load the keys at start)."""
+    from service.store.db import Database
+    from service.store.migrate import upgrade
+
+    db = Database.connect(db_url, pool_size=2)
+    try:
+        upgrade(db.engine)
+        return make_keys(SimpleNamespace(db=db, keys=SimpleNamespace(refresh=lambda: None)))
+    finally:
+        db.dispose()
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@dataclass
+class Server:
+    db_url: str
+    log_path: Path
+    env: dict[str, str] = field(default_factory=dict)
+    port: int = 0
+    proc: subprocess.Popen | None = None  # type: ignore[type-arg]
+
+    @property
+    def url(self) -> str:
+        return f"http://127.0.0.1:{self.port}"
+
+    def start(self, timeout: float = 90.0) -> Server:
+        return self.launch().wait_ready(timeout)
+
+    def launch(self) -> Server:
+        """Start the process without waiting (start two, then wait for both)."""
+        self.port = _free_port()
+        env = {
+            **os.environ,
+            "APPORTION_DATABASE_URL": self.db_url,
+            "APPORTION_LOG_LEVEL": "WARNING",
+            "APPORTION_POLL_INTERVAL_SECONDS": "0.3",
+            "APPORTION_DB_POOL_SIZE": "12",
+            **self.env,
+        }
+        log = open(self.log_path, "ab")  # noqa: SIM115 - the child writes it until it exits
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "service.cli", "serve", "--port", str(self.port)],
+            env=env,
+            stdout=subprocess.DEVNULL,
+            stderr=log,
+        )
+        log.close()
+        return self
+
+    def wait_ready(self, timeout: float = 90.0) -> Server:
+        assert self.proc is not None
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self.proc.poll() is not None:
+                raise AssertionError(f"server exited at start:\n{self.log()}")
+            try:
+                if httpx.get(self.url + "/readyz", timeout=1.0).status_code == 200:
+                    return self
+            except httpx.HTTPError:
+                pass
+            time.sleep(0.1)
+        self.kill9()
+        raise AssertionError(f"server not ready in {timeout} s:\n{self.log()}")
+
+    def kill9(self) -> None:
+        """SIGKILL: no shutdown hook, no flush, no rollback runs in the process."""
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGKILL)
+            self.proc.wait(timeout=30)
+
+    def stop(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                self.kill9()
+
+    def log(self) -> str:
+        return self.log_path.read_text(errors="replace") if self.log_path.exists() else ""
+
+    def client(self) -> httpx.Client:
+        return httpx.Client(base_url=self.url, timeout=120.0)
