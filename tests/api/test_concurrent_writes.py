@@ -105,8 +105,11 @@ def test_watch_uploads_racing_activations_never_fail_or_share_a_number(
         targets = [v for v in (1, 2, 3) if v != live]
         calls = [
             (
-                lambda b=b: client.post(
-                    f"/v1/plans/{PLAN}/monitor", content=b, headers={**keys.h(keys.analyst), **CSV}
+                lambda b=b, v=live: client.post(
+                    f"/v1/plans/{PLAN}/monitor",
+                    params={"version": v},  # the version whose lookup made the rows
+                    content=b,
+                    headers={**keys.h(keys.analyst), **CSV},
                 )
             )
             for b in bodies
