@@ -11,13 +11,14 @@ from typing import Any
 import numpy as np
 
 from service.errors import Forbidden, InvalidInput, InvalidTransition, NotFound
+from service.optimize.calibrate import Z95, calibrated_solve, calibration_view
+from service.optimize.crossfit import Candidate, evaluate_candidates
 from service.optimize.problem import Guardrail, build_problem
 from service.optimize.report import impact_report
 from service.optimize.sensitivity import guardrail_sensitivity
-from service.optimize.solve import Solution, solve
+from service.optimize.solve import Solution
 from service.serving.columns import lookup_columns
 from service.serving.index import new_salt
-from service.stats.evaluation import evaluate_policy
 from service.stats.partition import Partition
 from service.stats.table import UnitTable
 from service.store import audit
@@ -31,9 +32,10 @@ from service.store.tables import Job
 from service.usecases import jobs, live
 from service.usecases.context import Services
 from service.usecases.experiments import load_readout_table, specs_of
-from service.usecases.models import estimation_mask, moments_of
+from service.usecases.models import moments_of
 
 INLINE_MAX_DRAWS = 1000  # larger impact reports run as a job
+HELD_OUT_FOLDS = 5
 ACTIVATABLE = ("approved", "superseded")
 
 
@@ -51,6 +53,7 @@ def _model_context(services: Services, model_id: int) -> dict[str, Any]:
         exp = s.get(exp_repo.Experiment, row.experiment_id)
         assert exp is not None
         result, declaration, readout_id = row.result, exp.declaration, row.readout_id
+        model_method, model_params = row.method, dict(row.params or {})
     table, _ = load_readout_table(services.db, readout_id=readout_id)
     return {
         "result": result,
@@ -59,6 +62,8 @@ def _model_context(services: Services, model_id: int) -> dict[str, Any]:
         "experiment": declaration["key"],
         "partition": Partition.from_dict(result["partition"]),
         "model_id": model_id,
+        "model_method": model_method,
+        "model_params": model_params,
     }
 
 
@@ -123,25 +128,64 @@ def _holdout(body: dict[str, Any], arm_keys: tuple[str, ...]) -> dict[str, Any]:
     return {"share": float(h["share"]), "arm": h["arm"]}
 
 
-def _evaluate(
-    ctx: dict[str, Any], services: Services, x: np.ndarray, baseline: np.ndarray, seed: int
-) -> dict[str, Any]:
-    """Held-out IPW and doubly robust estimates on the model's estimation rows (design §6)."""
+def _evaluate(ctx: dict[str, Any], spec: dict[str, Any], seed: int) -> dict[str, Any]:
+    """Honest held-out figures (issue 11 item 2): the whole pipeline (this model's method and
+    parameters, the calibrated optimizer) is cross-fitted over folds of the readout, and each
+    fold's plan is scored with doubly robust scores on the fold it never saw; see
+    service/optimize/crossfit.py. They estimate the procedure's lift against all-control."""
     table: UnitTable = ctx["table"]
-    mask = estimation_mask(services.db, ctx["result"], table.n)
-    est = table.take(mask)
-    cohort, _ = ctx["partition"].route(est.feature_values, est.features)
-    return evaluate_policy(
-        cohort=cohort,
-        arm=est.arm,
-        design_shares=est.design_shares,
-        values=est.component_matrix(),
-        components=est.component_names(),
-        metrics=est.metrics,
-        plan=x,
-        baseline=baseline,
+    params = dict((ctx.get("model_params") or {}).get("method_params") or {})
+    cand = Candidate(ctx["model_method"], spec["method"], spec["allocation"])
+    out = evaluate_candidates(
+        table,
+        [cand],
+        success=spec["success_metric"],
+        guardrails=_guardrails(spec),
+        folds=HELD_OUT_FOLDS,
         seed=seed,
+        model_params={cand.model: params},
     )
+    row = out["candidates"][0]
+    return {
+        "method": "cross-fitted: the model and the calibrated optimizer re-run without each fold, "
+        "the fold's plan scored by doubly robust scores on that fold (against all-control)",
+        "folds": out["folds"],
+        "metrics": row["metrics"],
+        "status": row["status"],
+        "folds_without_plan": row["folds_without_plan"],
+        "seconds": out["seconds"],
+    }
+
+
+def _calibrated(problem: Any, method: str, allocation: str, seed: int, options: dict):
+    """The draft's plan: shrunk estimates, tightened until every guardrail's calibrated
+    probability meets its confidence (service/optimize/calibrate.py); Infeasible otherwise."""
+    sol, cal, shrunk, info = calibrated_solve(
+        problem, method, allocation, seed=seed, options=options or {}
+    )
+    return sol, shrunk, calibration_view(shrunk, cal, info), cal
+
+
+def _apply_calibration(report: dict[str, Any], sign: float, view: dict[str, Any], cal: Any) -> None:
+    """Make the report's headline figures the calibrated ones: each guardrail's probability, its
+    corrected lift and interval, and the success metric's corrected lift and interval. The
+    earlier figures stay under *_uncalibrated keys."""
+    by_metric = {g["guardrail"]: g for g in view["guardrails"]}
+    for row in report.get("metrics", []):
+        if row.get("role") == "guardrail" and row["metric"] in by_metric:
+            g = by_metric[row["metric"]]
+            row["probability_holds_uncalibrated"] = row.get("probability_holds")
+            row["probability_holds"] = g["probability_holds"]
+            row["probability_holds_corrected"] = g["probability_holds"]
+            row["corrected_lift"] = g["corrected_estimate"]
+            row["interval"] = [g["corrected_estimate"] - Z95 * g["sd"],
+                               g["corrected_estimate"] + Z95 * g["sd"]]  # fmt: skip
+        elif row.get("role") == "success" and row.get("lift") is not None:
+            corrected = row["lift"] + sign * cal.success_optimism  # optimism is better-is-larger
+            sd = max(cal.success_sd, row.get("se") or 0.0)
+            row["corrected_lift"] = corrected
+            row["interval"] = [corrected - Z95 * sd, corrected + Z95 * sd]
+    report["calibration"] = view
 
 
 def _allocation_view(x: np.ndarray, ctx: dict[str, Any], shares: np.ndarray) -> dict[str, Any]:
@@ -209,7 +253,9 @@ def draft_version(
         int(body.get("seed", 0)),
     )
     holdout = _holdout(body, specs.arm_keys)
-    sol = solve(problem, method, allocation, seed=seed, options=body.get("options") or {})
+    sol, shrunk, cal_view, cal = _calibrated(
+        problem, method, allocation, seed, body.get("options") or {}
+    )
     draws = int(body.get("draws", 200))
     spec = {
         k: body.get(k)
@@ -239,11 +285,11 @@ def draft_version(
         }
     )
     if draws <= INLINE_MAX_DRAWS:
-        report = _full_report(services, ctx, problem, sol, method, allocation, draws, seed,
+        report = _full_report(ctx, shrunk, sol, spec, draws, seed, (cal_view, cal),
                               options=body.get("options") or {})  # fmt: skip
         job_id = None
     else:
-        report = {"status": "pending"}
+        report = {"status": "pending", "calibration": cal_view}
     alloc_view = _allocation_view(sol.allocation, ctx, shares)
     with services.db.write() as s:
         repo.ensure_pointer(session=s, plan=plan)  # level 2 (store/db.py): version numbers
@@ -292,19 +338,20 @@ def draft_version(
 
 
 def _full_report(
-    services: Services,
     ctx: dict[str, Any],
     problem: Any,
     sol: Solution,
-    method: str,
-    allocation: str,
+    spec: dict[str, Any],
     draws: int,
     seed: int,
+    calibration: tuple[dict[str, Any], Any],
     progress: Any = None,
     options: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     on_draw = (lambda done, total: progress(done / max(total, 1))) if progress is not None else None
     report = impact_report(problem, sol, draws=draws, seed=seed, progress=on_draw)
+    sign = 1.0 if problem.metric(problem.success).direction == "higher" else -1.0
+    _apply_calibration(report, sign, *calibration)
     arm_keys = ctx["specs"].arm_keys
     for row in report.get("comparison", []):  # the optimizer knows arm indexes; readers want keys
         if isinstance(row.get("arm"), int):
@@ -312,18 +359,16 @@ def _full_report(
             if str(row.get("plan", "")).startswith("arm "):
                 row["plan"] = f"{arm_keys[row['arm']]} for everyone"
     try:
-        held_out = _evaluate(ctx, services, sol.allocation, problem.baseline, seed)
-    except (
-        InvalidInput
-    ) as exc:  # e.g. an arm with no design share: say why instead of failing the draft
+        held_out = _evaluate(ctx, spec, seed)
+    except InvalidInput as exc:  # e.g. too few rows for the folds: say why, do not fail the draft
         held_out = {"error": exc.detail}
     return {
         **report,
         "status": "complete",
         "guardrail_prices": guardrail_sensitivity(problem, sol, seed=seed, options=options),
         "held_out": held_out,
-        "method": method,
-        "allocation": allocation,
+        "method": spec["method"],
+        "allocation": spec["allocation"],
     }
 
 
@@ -350,26 +395,21 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
         baseline=spec["baseline"],
         live=live_alloc,
     )
-    sol = solve(
-        problem,
-        spec["method"],
-        spec["allocation"],
-        seed=spec["seed"],
-        options=spec.get("options") or {},
+    sol, shrunk, cal_view, cal = _calibrated(
+        problem, spec["method"], spec["allocation"], spec["seed"], spec.get("options") or {}
     )
     if not np.allclose(sol.allocation, x, atol=1e-9):
         raise RuntimeError(
             "re-solving the stored problem gave a different allocation; the report was not attached"
         )
     report = _full_report(
-        services,
         ctx,
-        problem,
+        shrunk,
         sol,
-        spec["method"],
-        spec["allocation"],
+        spec,
         spec["draws"],
         spec["seed"],
+        (cal_view, cal),
         progress,
         options=spec.get("options") or {},
     )

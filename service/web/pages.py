@@ -191,7 +191,7 @@ def _summary(v: dict[str, Any], plan: dict[str, Any], rows: list[MetricRow]) -> 
         if known:
             verdict = (
                 f'<p class="verdict">{held} of {len(guard)} guardrails hold with at least the required '
-                f"probability.</p>"
+                f"probability (calibrated: the optimizer's selection on noisy estimates included).</p>"
             )
     notes = f'<p class="notes">Notes: {e(spec.get("notes"))}</p>' if spec.get("notes") else ""
     pending = ""
