@@ -44,7 +44,9 @@ DESCRIPTION = (
 
 
 def build_services(settings: Settings) -> Services:
-    db = Database.connect(settings.database_url, pool_size=settings.db_pool_size)
+    db = Database.connect(
+        settings.database_url, pool_size=settings.db_pool_size, blob_uri=settings.blob_uri
+    )
     services = Services(settings=settings, db=db)
     services.keys = KeyCache(db)
     services.plans = live.new_registry()
@@ -55,7 +57,7 @@ def start(services: Services) -> None:
     """Bring a process up: migrations (unless told not to), caches, poller, job worker."""
     settings = services.settings
     if settings.migrate_on_start:
-        upgrade(services.db.engine)
+        upgrade(services.db.engine, blob_uri=settings.blob_uri)
     if not is_current(services.db.engine):
         log.warning(
             "the database schema is behind; /readyz answers 503 until 'apportion db upgrade' runs"

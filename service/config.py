@@ -19,6 +19,11 @@ class Settings(BaseSettings):
     database_url: str = Field(
         "sqlite:///./var/apportion.db", description="SQLAlchemy URL of the store"
     )
+    blob_uri: str = Field(
+        "./var/blobs",
+        description="root of the blob store: a local directory, or any URI pyarrow's "
+        "filesystems read (s3://bucket/prefix)",
+    )
     max_upload_bytes: int = Field(
         512 * 1024 * 1024, gt=0, description="largest accepted upload body"
     )

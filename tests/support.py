@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+import tempfile
 from dataclasses import dataclass
 
 import numpy as np
@@ -63,9 +65,17 @@ def reset_postgres(url: str) -> str:
     return url
 
 
+def _blob_dir(db_url: str) -> str:
+    """A blob store beside a SQLite test database, else a fresh temporary directory."""
+    if db_url.startswith("sqlite:///") and db_url != "sqlite:///:memory:":
+        return os.path.join(os.path.dirname(db_url[len("sqlite:///") :]), "blobs")
+    return tempfile.mkdtemp(prefix="apportion-blobs-")
+
+
 def make_settings(db_url: str, **overrides: object) -> Settings:
     base: dict[str, object] = {
         "database_url": db_url,
+        "blob_uri": _blob_dir(db_url),
         "poll_interval_seconds": 0.2,
         "log_level": "WARNING",
         "db_pool_size": 10,

@@ -14,7 +14,7 @@ def _db():  # type: ignore[no-untyped-def]
     from service.store.db import Database
 
     settings = get_settings()
-    return Database.connect(settings.database_url)
+    return Database.connect(settings.database_url, blob_uri=settings.blob_uri)
 
 
 # Keep-alive: callers and load balancers reuse connections, and a proxy whose idle timeout
@@ -92,7 +92,7 @@ def cmd_db(args: argparse.Namespace) -> int:
 
     db = _db()
     if args.action == "upgrade":
-        upgrade(db.engine)
+        upgrade(db.engine, blob_uri=db.blobs.uri)
         print(f"database at revision {current_revision(db.engine)}")
     else:
         cur, head = current_revision(db.engine), head_revision()
@@ -106,7 +106,7 @@ def cmd_keys(args: argparse.Namespace) -> int:
     from service.usecases.auth import SYSTEM, create_key
 
     db = _db()
-    upgrade(db.engine)
+    upgrade(db.engine, blob_uri=db.blobs.uri)
     rec, secret = create_key(
         db, name=args.name, owner=args.owner or args.name, role=args.role, actor=SYSTEM
     )

@@ -39,6 +39,8 @@ from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.store.blobstore import BlobStore
+
 
 def utcnow() -> str:
     """ISO-8601 UTC timestamp with microseconds: the one time format of the store."""
@@ -100,23 +102,26 @@ def make_engine(url: str, *, pool_size: int = 40) -> Engine:
 
 @dataclass
 class Database:
-    """The engine plus two session factories: reads, and writes (IMMEDIATE on SQLite)."""
+    """The engine plus two session factories: reads, and writes (IMMEDIATE on SQLite), and the blob
+    store where the bytes of blobs live (reached from a session as `session.info["blobs"]`)."""
 
     url: str
     engine: Engine
+    blobs: BlobStore | None = None
 
     def __post_init__(self) -> None:
-        self._read = sessionmaker(bind=self.engine, expire_on_commit=False)
+        info = {"blobs": self.blobs}
+        self._read = sessionmaker(bind=self.engine, expire_on_commit=False, info=info)
         write_bind = (
             self.engine.execution_options(sqlite_begin="IMMEDIATE")
             if is_sqlite(self.url)
             else self.engine
         )
-        self._write = sessionmaker(bind=write_bind, expire_on_commit=False)
+        self._write = sessionmaker(bind=write_bind, expire_on_commit=False, info=info)
 
     @classmethod
-    def connect(cls, url: str, *, pool_size: int = 40) -> Database:
-        return cls(url=url, engine=make_engine(url, pool_size=pool_size))
+    def connect(cls, url: str, *, pool_size: int = 40, blob_uri: str = "./var/blobs") -> Database:
+        return cls(url=url, engine=make_engine(url, pool_size=pool_size), blobs=BlobStore(blob_uri))
 
     @contextmanager
     def read(self) -> Iterator[Session]:

@@ -20,10 +20,13 @@ def alembic_config(url: str) -> Config:
     return cfg
 
 
-def upgrade(engine: Engine, revision: str = "head") -> None:
+def upgrade(engine: Engine, revision: str = "head", *, blob_uri: str | None = None) -> None:
+    """Apply the history up to `revision`. Migrations that move bytes out of the database write
+    them to the blob store at `blob_uri` (default: APPORTION_BLOB_URI, else ./var/blobs)."""
     cfg = alembic_config(str(engine.url.render_as_string(hide_password=False)))
     with engine.begin() as conn:
         cfg.attributes["connection"] = conn
+        cfg.attributes["blob_uri"] = blob_uri
         command.upgrade(cfg, revision)
 
 

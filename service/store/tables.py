@@ -14,7 +14,6 @@ from sqlalchemy import (
     Float,
     ForeignKey,
     Integer,
-    LargeBinary,
     MetaData,
     String,
     Text,
@@ -47,12 +46,17 @@ class Experiment(Base):
 
 
 class Blob(Base):
-    """Content-addressed bytes (compressed Arrow IPC of parsed tables)."""
+    """Metadata of a content-addressed blob; the bytes live in the blob store (store/blobstore.py).
+
+    kind 'object': single bytes (compressed Arrow IPC of watch rows, estimation masks);
+    kind 'dataset': a readout's Parquet dataset, `sha256` the hash of its manifest.
+    `location` is relative to the blob store's root (APPORTION_BLOB_URI)."""
 
     __tablename__ = "blobs"
     sha256: Mapped[str] = mapped_column(String(64), primary_key=True)
     size: Mapped[int] = mapped_column(BigInteger)
-    data: Mapped[bytes] = mapped_column(LargeBinary)
+    kind: Mapped[str] = mapped_column(String(20))
+    location: Mapped[str] = mapped_column(String(300))
     created_at: Mapped[str] = mapped_column(String(40))
 
 

@@ -4,13 +4,15 @@ transaction, immutable and content-hashed (the same bytes twice give the same ve
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import pyarrow.fs as pafs
 
 from service.errors import InvalidInput
-from service.ingest.codec import decode_table, encode_table
+from service.ingest.dataset import MANIFEST, Manifest, read_dataset, write_table
 from service.ingest.parse import parse_units
 from service.stats.estimates import cell_moments, metric_estimates
 from service.stats.srm import sample_ratio_check
@@ -241,7 +243,9 @@ def upload_readout(
     )
     summary = summarize(parsed.table)
     summary["warnings"] = list(getattr(parsed, "warnings", []) or [])
-    encoded = encode_table(parsed.table)
+    sha, location, size = store_dataset(
+        db, lambda fs, staging: write_table(fs, staging, parsed.table)
+    )
     with db.write() as s:
         # The experiment's lock (level 1, store/db.py) makes the hash check and the next version
         # number one decision: a concurrent upload waits here, then sees this one's row.
@@ -251,7 +255,7 @@ def upload_readout(
         )
         if existing is not None:  # the same bytes arrived concurrently
             return readout_view(exp.key, existing), False
-        sha = blobs.put_blob(session=s, data=encoded)
+        blobs.add_dataset(session=s, sha256=sha, size=size, location=location)
         row = repo.add_readout(
             session=s,
             experiment=exp,
@@ -299,9 +303,73 @@ def get_readout(db: Database, *, key: str, version: int) -> dict[str, Any]:
         )
 
 
-def load_readout_table(db: Database, *, readout_id: int) -> tuple[UnitTable, Any]:
+def store_dataset(
+    db: Database, write: Callable[[pafs.FileSystem, str], Manifest]
+) -> tuple[str, str, int]:
+    """Write a dataset into a fresh staging directory with `write(fs, directory)`, then publish
+    it at its content address; (sha256, location, bytes). On any failure the staging directory
+    is removed, so nothing of a rejected upload remains. A published dataset that no readout ends
+    up referencing (the database transaction failed after publishing) is harmless: its name is
+    its hash, so a retry or a racing twin reuses it rather than writing a second copy."""
+    store = db.blobs
+    assert store is not None
+    staging = store.new_staging()
+    try:
+        manifest = write(store.fs, staging)
+    except BaseException:
+        store.discard(staging)
+        raise
+    location = store.publish_dataset(staging, manifest.sha256)
+    return manifest.sha256, location, sum(int(f["bytes"]) for f in manifest.files)
+
+
+@dataclass(frozen=True)
+class ReadoutData:
+    """Where a readout version's rows live: a Parquet dataset in the blob store.
+
+    `uri` is the dataset directory and `files` its part files as URIs an engine can read (plain
+    paths for a local blob store, `s3://...` for object storage); `filesystem` with `paths` reads
+    them through pyarrow. `manifest.spec` says what each column means (`spec.feature_column(key)`,
+    `spec.component_column(name)`; arm codes index `spec.arm_keys`, the control is 0)."""
+
+    readout_id: int
+    sha256: str
+    uri: str
+    files: tuple[str, ...]
+    filesystem: pafs.FileSystem
+    paths: tuple[str, ...]
+    manifest: Manifest
+
+    @property
+    def n_rows(self) -> int:
+        return self.manifest.n_rows
+
+
+def readout_data(db: Database, *, readout_id: int) -> ReadoutData:
+    """The Parquet dataset of a readout version (by the readout's database id)."""
     with db.read() as s:
         row = repo.get_readout_by_id(session=s, readout_id=readout_id)
-        data = blobs.get_blob(session=s, sha256=row.blob_sha256)
-    table, _flags = decode_table(data)
+        sha = row.blob_sha256
+        location = blobs.dataset_location(session=s, sha256=sha)
+    store = db.blobs
+    assert store is not None
+    manifest = Manifest.from_bytes(store.get_object(f"{location}/{MANIFEST}"))
+    paths = tuple(store.path(f"{location}/{f['name']}") for f in manifest.files)
+    return ReadoutData(
+        readout_id=readout_id,
+        sha256=sha,
+        uri=store.url(location),
+        files=tuple(store.url(f"{location}/{f['name']}") for f in manifest.files),
+        filesystem=store.fs,
+        paths=paths,
+        manifest=manifest,
+    )
+
+
+def load_readout_table(db: Database, *, readout_id: int) -> tuple[UnitTable, Any]:
+    """The whole readout in memory (the numpy path, for readouts that fit)."""
+    data = readout_data(db, readout_id=readout_id)
+    table, _flags = read_dataset(data.filesystem, list(data.paths), data.manifest)
+    with db.read() as s:
+        row = repo.get_readout_by_id(session=s, readout_id=readout_id)
     return table, row
