@@ -24,6 +24,11 @@ class Settings(BaseSettings):
         description="root of the blob store: a local directory, or any URI pyarrow's "
         "filesystems read (s3://bucket/prefix)",
     )
+    upload_dir: str | None = Field(
+        None,
+        description="where upload bodies are spooled while they are validated "
+        "(default: the system's temporary directory)",
+    )
     max_upload_bytes: int = Field(
         512 * 1024 * 1024, gt=0, description="largest accepted upload body"
     )

@@ -1,10 +1,19 @@
-"""Reading raw upload bodies with a size limit (413 before the whole body is read)."""
+"""Reading raw upload bodies with a size limit (413 before the whole body is read); spooling large
+uploads to disk, decoding gzip and zstd Content-Encoding on the way."""
 
 from __future__ import annotations
 
-from fastapi import Request
+import contextlib
+import hashlib
+import os
+import tempfile
+from dataclasses import dataclass
 
-from service.errors import PayloadTooLarge
+import pyarrow as pa
+from fastapi import Request
+from starlette.concurrency import run_in_threadpool
+
+from service.errors import InvalidInput, PayloadTooLarge, UnsupportedMediaType
 
 UPLOAD_TYPES = {
     "text/csv": {"schema": {"type": "string"}},
@@ -30,3 +39,100 @@ async def read_limited(request: Request, limit: int) -> bytes:
             )
         chunks.append(chunk)
     return b"".join(chunks)
+
+
+# Content-Encoding of uploads: the usual way to send large files. Decoded with pyarrow's codecs.
+ENCODINGS = {"gzip": "gzip", "x-gzip": "gzip", "zstd": "zstd"}
+_CHUNK = 1 << 20
+
+
+@dataclass
+class Spooled:
+    """An upload body on disk (decoded), its sha256 and size; `remove()` when done."""
+
+    path: str
+    sha256: str
+    size: int
+
+    def remove(self) -> None:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(self.path)
+
+
+def _encoding(request: Request) -> str | None:
+    raw = request.headers.get("content-encoding", "").strip().lower()
+    if raw in ("", "identity"):
+        return None
+    codec = ENCODINGS.get(raw)
+    if codec is None:
+        raise UnsupportedMediaType(
+            f"unsupported content encoding '{raw}'; send the body as is, or with "
+            "Content-Encoding gzip or zstd",
+            errors=[{"field": "content-encoding", "problem": f"unsupported encoding '{raw}'"}],
+            unsupported_content_encoding=raw,
+        )
+    return codec
+
+
+def _too_large(limit: int, what: str = "the upload") -> PayloadTooLarge:
+    return PayloadTooLarge(
+        f"{what} exceeds the limit of {limit} bytes (APPORTION_MAX_UPLOAD_BYTES)"
+    )
+
+
+async def spool_upload(request: Request, limit: int, directory: str | None = None) -> Spooled:
+    """Stream the body to a temporary file (never whole in memory), at most `limit` bytes before
+    and after decoding (a small gzip body cannot expand past the limit). 413 past the limit,
+    415 for an encoding other than gzip or zstd, 422 for a body that does not decode."""
+    codec = _encoding(request)
+    declared = request.headers.get("content-length")
+    if declared and declared.isdigit() and int(declared) > limit:
+        raise PayloadTooLarge(
+            f"the upload is {int(declared)} bytes; the limit is {limit} bytes (APPORTION_MAX_UPLOAD_BYTES)"
+        )
+    fd, path = tempfile.mkstemp(prefix="apportion-upload-", dir=directory)
+    spooled = Spooled(path=path, sha256="", size=0)
+    try:
+        h = hashlib.sha256()
+        with os.fdopen(fd, "wb") as f:
+            async for chunk in request.stream():
+                spooled.size += len(chunk)
+                if spooled.size > limit:
+                    raise _too_large(limit)
+                if codec is None:
+                    h.update(chunk)
+                f.write(chunk)
+        if codec is None:
+            spooled.sha256 = h.hexdigest()
+            return spooled
+        decoded = await run_in_threadpool(_decode, path, codec, limit, directory)
+        spooled.remove()
+        return decoded
+    except BaseException:
+        spooled.remove()
+        raise
+
+
+def _decode(path: str, codec: str, limit: int, directory: str | None) -> Spooled:
+    fd, out_path = tempfile.mkstemp(prefix="apportion-upload-", dir=directory)
+    out = Spooled(path=out_path, sha256="", size=0)
+    h = hashlib.sha256()
+    try:
+        with os.fdopen(fd, "wb") as f, pa.CompressedInputStream(pa.OSFile(path), codec) as src:
+            while chunk := src.read(_CHUNK):
+                out.size += len(chunk)
+                if out.size > limit:
+                    raise _too_large(limit, "the decoded upload")
+                h.update(chunk)
+                f.write(chunk)
+    except (pa.ArrowException, OSError) as exc:
+        out.remove()
+        raise InvalidInput(
+            f"the body does not decode as {codec}: {str(exc).splitlines()[0] if str(exc) else exc}",
+            errors=[{"field": "content-encoding", "problem": f"not valid {codec} data"}],
+        ) from exc
+    except BaseException:
+        out.remove()
+        raise
+    out.sha256 = h.hexdigest()
+    return out

@@ -74,6 +74,29 @@ class Problems:
             }
         )
 
+    def merge(self, other: Problems, *, offset: int = 0) -> None:
+        """Fold the problems of one batch into these: rows shift by `offset` (the rows before the
+        batch); a problem already listed (same column and text) gains the batch's rows, values
+        and count, up to `max_examples` shown."""
+        for item in other.items:
+            rows = [r + offset for r in item["rows"]]
+            same = next(
+                (
+                    p
+                    for p in self.items
+                    if p["column"] == item["column"] and p["problem"] == item["problem"]
+                ),
+                None,
+            )
+            if same is None:
+                self.items.append({**item, "rows": rows[: self.max_examples]})
+                continue
+            room = self.max_examples - len(same["rows"])
+            if room > 0:
+                same["rows"] = same["rows"] + rows[:room]
+                same["values"] = same["values"] + item["values"][:room]
+            same["count"] += item["count"]
+
     def message(self) -> str:
         parts = []
         for p in self.items[:5]:

@@ -75,6 +75,32 @@ def cell_moments(
     )
 
 
+def pool_moments(a: CellMoments, b: CellMoments) -> CellMoments:
+    """The moments of two disjoint sets of units, from each set's moments (the pairwise update
+    of Chan, Golub and LeVeque (1979): M2 = M2_a + M2_b + d d' n_a n_b / n, d = mean_b - mean_a),
+    so that a readout streamed in batches gets the moments of the whole."""
+    na, nb = a.n.astype(np.float64), b.n.astype(np.float64)
+    n = na + nb
+    ma, mb = np.nan_to_num(a.mean), np.nan_to_num(b.mean)
+    d = mb - ma
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(n > 0, nb / n, 0.0)
+        mean = np.where((n > 0)[..., None], ma + d * w[..., None], np.nan)
+        m2a = np.where(
+            (na > 1)[..., None, None], np.nan_to_num(a.cov) * (na - 1)[..., None, None], 0
+        )
+        m2b = np.where(
+            (nb > 1)[..., None, None], np.nan_to_num(b.cov) * (nb - 1)[..., None, None], 0
+        )
+        m2 = (
+            m2a
+            + m2b
+            + d[..., :, None] * d[..., None, :] * np.where(n > 0, na * nb / n, 0)[..., None, None]
+        )
+        cov = np.where((n > 1)[..., None, None], m2 / (n - 1)[..., None, None], np.nan)
+    return CellMoments(components=a.components, n=(a.n + b.n), mean=mean, cov=cov)
+
+
 def metric_gradients(
     moments: CellMoments, metrics: tuple[MetricSpec, ...]
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -154,7 +180,9 @@ def pool_cohorts(moments: CellMoments) -> CellMoments:
         within = np.einsum("cj,cjqr->jqr", np.maximum(n - 1, 0), np.nan_to_num(moments.cov))
         dev = np.nan_to_num(moments.mean) - mean[None]
         between = np.einsum("cj,cjq,cjr->jqr", n, dev, dev)
-        cov = np.where((tot > 1)[:, None, None], (within + between) / (tot - 1)[:, None, None], np.nan)
+        cov = np.where(
+            (tot > 1)[:, None, None], (within + between) / (tot - 1)[:, None, None], np.nan
+        )
     return CellMoments(
         components=moments.components,
         n=tot.astype(np.int64)[None],

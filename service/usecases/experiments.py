@@ -4,6 +4,8 @@ transaction, immutable and content-hashed (the same bytes twice give the same ve
 from __future__ import annotations
 
 import hashlib
+import os
+import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -12,9 +14,11 @@ import numpy as np
 import pyarrow.fs as pafs
 
 from service.errors import InvalidInput
-from service.ingest.dataset import MANIFEST, Manifest, read_dataset, write_table
-from service.ingest.parse import parse_units
-from service.stats.estimates import cell_moments, metric_estimates
+from service.ingest.dataset import MANIFEST, Manifest, read_dataset
+from service.ingest.formats import media_format
+from service.ingest.problems import Problems
+from service.ingest.stream import Ingested, Source, file_source, ingest
+from service.stats.estimates import CellMoments, cell_moments, metric_estimates
 from service.stats.srm import sample_ratio_check
 from service.stats.table import FeatureSpec, MetricSpec, UnitTable
 from service.store import audit, blobs
@@ -184,11 +188,22 @@ def summarize(table: UnitTable) -> dict[str, Any]:
     moments = cell_moments(
         zeros, 1, table.arm, table.n_arms, table.component_matrix(), table.component_names()
     )
-    est = metric_estimates(moments, table.metrics)
+    return summarize_moments(moments, table.arm_keys, table.metrics, table.design_shares)
+
+
+def summarize_moments(
+    moments: CellMoments,
+    arm_keys: tuple[str, ...],
+    metrics: tuple[MetricSpec, ...],
+    design_shares: np.ndarray,
+) -> dict[str, Any]:
+    """The readout summary from per-arm component moments (one cohort): what a streamed upload
+    has at its end without the rows in memory."""
+    est = metric_estimates(moments, metrics)
     counts = moments.n[0]
-    srm = sample_ratio_check(counts, table.design_shares)
+    srm = sample_ratio_check(counts, np.asarray(design_shares, dtype=np.float64))
     arms = []
-    for j, arm in enumerate(table.arm_keys):
+    for j, arm in enumerate(arm_keys):
         arms.append(
             {
                 "arm": arm,
@@ -200,16 +215,16 @@ def summarize(table: UnitTable) -> dict[str, Any]:
                         "effect": _f(est.effect[0, j, k]) if j else None,
                         "effect_se": _f(est.effect_se[0, j, k]) if j else None,
                     }
-                    for k, m in enumerate(table.metrics)
+                    for k, m in enumerate(metrics)
                 },
             }
         )
     return {
-        "n_rows": table.n,
-        "arm_counts": {a: int(c) for a, c in zip(table.arm_keys, counts, strict=True)},
+        "n_rows": int(counts.sum()),
+        "arm_counts": {a: int(c) for a, c in zip(arm_keys, counts, strict=True)},
         "sample_ratio": srm.to_dict(),
         "arms": arms,
-        "control": table.arm_keys[0],
+        "control": arm_keys[0],
     }
 
 
@@ -221,8 +236,38 @@ def _f(x: float) -> float | None:
 def upload_readout(
     db: Database, *, key: str, body: bytes, content_type: str, actor: Actor
 ) -> tuple[dict[str, Any], bool]:
-    """Returns (readout view, created). The same bytes a second time return the existing version."""
-    content_hash = hashlib.sha256(body).hexdigest()
+    """An upload held in memory: spooled to a temporary file, then `upload_readout_file`."""
+    fd, path = tempfile.mkstemp(prefix="apportion-upload-")
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(body)
+        return upload_readout_file(
+            db,
+            key=key,
+            path=path,
+            content_hash=hashlib.sha256(body).hexdigest(),
+            content_type=content_type,
+            actor=actor,
+        )
+    finally:
+        os.unlink(path)
+
+
+def upload_readout_file(
+    db: Database,
+    *,
+    key: str,
+    path: str,
+    content_hash: str,
+    content_type: str,
+    actor: Actor,
+    work_dir: str | None = None,
+) -> tuple[dict[str, Any], bool]:
+    """Validate an upload spooled to `path` in batches and store it as a readout version.
+
+    Returns (readout view, created); the same bytes a second time return the existing version.
+    Memory stays bounded whatever the row count (see ingest/stream.py); nothing is stored when
+    any check fails."""
     with db.read() as s:
         exp = repo.get_experiment(session=s, key=key)
         existing = repo.find_readout_by_hash(
@@ -231,21 +276,82 @@ def upload_readout(
         if existing is not None:
             return readout_view(exp.key, existing), False
         declaration = exp.declaration
+    fmt = media_format(content_type)
+    problems = Problems()
+    ingested = _ingest_into_store(
+        db,
+        declaration,
+        lambda: file_source(path, fmt, problems),
+        problems=problems,
+        work_dir=work_dir,
+    )
+    return record_readout(
+        db,
+        key=key,
+        ingested=ingested,
+        content_hash=content_hash,
+        content_type=content_type.split(";")[0].strip(),
+        actor=actor,
+        action="readout.upload",
+        extra={},
+    )
+
+
+def _ingest_into_store(
+    db: Database,
+    declaration: dict[str, Any],
+    open_source: Callable[[], Source],
+    *,
+    problems: Problems,
+    work_dir: str | None = None,
+    progress: Callable[[int], None] | None = None,
+) -> tuple[Ingested, str, str, int]:
+    """Validate a source batch by batch into a staging directory and publish it; (ingested,
+    sha256, location, bytes)."""
     specs = specs_of(declaration)
-    parsed = parse_units(
-        body,
-        content_type,
-        arms=specs.arm_keys,
-        control=specs.arm_keys[0],
-        design_shares=list(specs.design_shares),
-        metrics=specs.metrics,
-        features=specs.features,
-    )
-    summary = summarize(parsed.table)
-    summary["warnings"] = list(getattr(parsed, "warnings", []) or [])
-    sha, location, size = store_dataset(
-        db, lambda fs, staging: write_table(fs, staging, parsed.table)
-    )
+    out: list[Ingested] = []
+
+    def write(fs: pafs.FileSystem, staging: str) -> Manifest:
+        result = ingest(
+            open_source(),
+            fs=fs,
+            directory=staging,
+            arms=specs.arm_keys,
+            control=specs.arm_keys[0],
+            design_shares=list(specs.design_shares),
+            metrics=specs.metrics,
+            features=specs.features,
+            problems=problems,
+            progress=progress,
+            work_dir=work_dir,
+        )
+        out.append(result)
+        return result.manifest
+
+    sha, location, size = store_dataset(db, write)
+    return out[0], sha, location, size
+
+
+def record_readout(
+    db: Database,
+    *,
+    key: str,
+    ingested: tuple[Ingested, str, str, int],
+    content_hash: str,
+    content_type: str,
+    actor: Actor,
+    action: str,
+    extra: dict[str, Any],
+) -> tuple[dict[str, Any], bool]:
+    """Store the readout row and its audit entry in one transaction (the dataset is published)."""
+    result, sha, location, size = ingested
+    exp_row = None
+    with db.read() as s:
+        exp_row = repo.get_experiment(session=s, key=key)
+        declaration = exp_row.declaration
+    specs = specs_of(declaration)
+    summary = summarize_moments(result.moments, specs.arm_keys, specs.metrics, specs.design_shares)
+    summary["warnings"] = list(result.warnings)
     with db.write() as s:
         # The experiment's lock (level 1, store/db.py) makes the hash check and the next version
         # number one decision: a concurrent upload waits here, then sees this one's row.
@@ -260,23 +366,24 @@ def upload_readout(
             session=s,
             experiment=exp,
             content_hash=content_hash,
-            content_type=content_type.split(";")[0].strip(),
+            content_type=content_type,
             blob_sha256=sha,
-            n_rows=parsed.n_rows,
+            n_rows=result.n_rows,
             summary=summary,
             created_by=actor.name,
         )
         audit.append(
             s,
             actor=actor,
-            action="readout.upload",
+            action=action,
             entity="readout",
             entity_id=f"{exp.key}/{row.version}",
             payload={
                 "content_hash": content_hash,
-                "n_rows": parsed.n_rows,
+                "n_rows": result.n_rows,
                 "blob": sha,
                 "sample_ratio_flagged": summary["sample_ratio"]["flagged"],
+                **extra,
             },
         )
         return readout_view(exp.key, row), True

@@ -9,7 +9,7 @@ from fastapi.responses import JSONResponse
 from pydantic import BaseModel, Field
 from starlette.concurrency import run_in_threadpool
 
-from service.api.body import UPLOAD_OPENAPI, read_limited
+from service.api.body import UPLOAD_OPENAPI, spool_upload
 from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
 from service.api.params import KEY_PATTERN, ExperimentKey
 from service.usecases import experiments as uc
@@ -74,11 +74,22 @@ def get_experiment(key: ExperimentKey, _: ReaderDep, services: ServicesDep) -> d
 async def upload_readout(
     key: ExperimentKey, request: Request, actor: AnalystDep, services: ServicesDep
 ) -> JSONResponse:
-    body = await read_limited(request, services.settings.max_upload_bytes)
     ctype = request.headers.get("content-type", "")
-    view, created = await run_in_threadpool(
-        uc.upload_readout, services.db, key=key, body=body, content_type=ctype, actor=actor
-    )
+    settings = services.settings
+    spooled = await spool_upload(request, settings.max_upload_bytes, settings.upload_dir)
+    try:
+        view, created = await run_in_threadpool(
+            uc.upload_readout_file,
+            services.db,
+            key=key,
+            path=spooled.path,
+            content_hash=spooled.sha256,
+            content_type=ctype,
+            actor=actor,
+            work_dir=settings.upload_dir,
+        )
+    finally:
+        spooled.remove()
     return JSONResponse(view, status_code=201 if created else 200)
 
 
