@@ -30,7 +30,12 @@ def test_a_worker_process_runs_the_fit_the_server_queued(db_url: str, tmp_path) 
         ).json()
         time.sleep(0.5)
         assert client.get(started["job"], headers=keys.h(keys.reader)).json()["status"] == "queued"
-        env = {**os.environ, "APPORTION_DATABASE_URL": db_url, "APPORTION_LOG_LEVEL": "WARNING"}
+        env = {
+            **os.environ,
+            "APPORTION_DATABASE_URL": db_url,
+            "APPORTION_BLOB_URI": client.app.state.services.settings.blob_uri,
+            "APPORTION_LOG_LEVEL": "WARNING",
+        }
         with open(tmp_path / "worker.log", "wb") as log:
             worker = subprocess.Popen(
                 [sys.executable, "-m", "service.cli", "worker"], env=env, stdout=log, stderr=log
