@@ -24,6 +24,11 @@ class Settings(BaseSettings):
         description="root of the blob store: a local directory, or any URI pyarrow's "
         "filesystems read (s3://bucket/prefix)",
     )
+    readout_source_prefixes: list[str] = Field(
+        default_factory=list,
+        description="URI prefixes a readout by reference may name (JSON list, e.g. "
+        '["s3://lake/experiments/", "/mnt/exports/"]); empty: by reference is off',
+    )
     upload_dir: str | None = Field(
         None,
         description="where upload bodies are spooled while they are validated "

@@ -70,6 +70,7 @@ def _worker_loop() -> int:
     from service.app import build_services
     from service.usecases import models as _models  # noqa: F401  (registers the fit handler)
     from service.usecases import plans as _plans  # noqa: F401  (registers the report handler)
+    from service.usecases import sources as _sources  # noqa: F401  (registers readout imports)
     from service.usecases.jobs import JobRunner
 
     settings = get_settings()

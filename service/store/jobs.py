@@ -120,4 +120,5 @@ def job_view(row: Job) -> dict[str, Any]:
         "created_at": row.created_at,
         "started_at": row.started_at,
         "finished_at": row.finished_at,
+        "result": (row.payload or {}).get("result"),
     }

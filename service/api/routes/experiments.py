@@ -6,15 +6,40 @@ from typing import Any, Literal
 
 from fastapi import APIRouter, Request, status
 from fastapi.responses import JSONResponse
-from pydantic import BaseModel, Field
+from pydantic import BaseModel, Field, ValidationError
 from starlette.concurrency import run_in_threadpool
 
-from service.api.body import UPLOAD_OPENAPI, spool_upload
+from service.api.body import UPLOAD_TYPES, read_limited, spool_upload
 from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
 from service.api.params import KEY_PATTERN, ExperimentKey
+from service.errors import InvalidInput
 from service.usecases import experiments as uc
+from service.usecases import sources
 
 router = APIRouter(prefix="/v1/experiments", tags=["experiments"], route_class=AuthenticatedRoute)
+MAX_SOURCE_BODY = 16 * 1024
+
+
+class ReadoutSourceIn(BaseModel):
+    """A readout by reference: a Parquet dataset the service may read (see the route)."""
+
+    model_config = {"extra": "forbid"}
+    source: str = Field(min_length=1, max_length=2000, description="file, directory or glob URI")
+    partitioning: Literal["hive"] | None = Field(
+        None, description="'hive' when directories name partition columns (key=value)"
+    )
+
+
+READOUT_OPENAPI = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            **UPLOAD_TYPES,
+            "application/json": {"schema": ReadoutSourceIn.model_json_schema()},
+        },
+    }
+}
+KEY = r"^[a-z0-9][a-z0-9_-]{0,99}$"
 COLUMN = r"^[A-Za-z_][A-Za-z0-9_]{0,99}$"
 
 
@@ -62,11 +87,18 @@ def get_experiment(key: ExperimentKey, _: ReaderDep, services: ServicesDep) -> d
 
 @router.post(
     "/{key}/readouts",
-    summary="Upload unit-level rows (CSV, Parquet or NDJSON)",
-    openapi_extra=UPLOAD_OPENAPI,
+    summary="Upload unit-level rows (CSV, Parquet or NDJSON), or name a Parquet dataset by URI",
+    description="A body in CSV, Parquet or NDJSON (optionally with Content-Encoding gzip or zstd) "
+    "is validated and stored at once (201, or 200 for bytes uploaded before). A JSON body "
+    '`{"source": URI}` names a Parquet file, directory or glob under an allowed prefix '
+    "(APPORTION_READOUT_SOURCE_PREFIXES); it is validated and snapshotted in a job (202).",
+    openapi_extra=READOUT_OPENAPI,
     status_code=status.HTTP_201_CREATED,
     responses={
         200: {"description": "the same bytes were uploaded before: the existing version"},
+        202: {"description": "a source by reference: the import job was queued"},
+        403: {"description": "the source is not under an allowed prefix"},
+        415: {"description": "an unsupported media type or content encoding"},
         413: {"description": "too large"},
         422: {"description": "invalid rows"},
     },
@@ -76,6 +108,8 @@ async def upload_readout(
 ) -> JSONResponse:
     ctype = request.headers.get("content-type", "")
     settings = services.settings
+    if ctype.split(";")[0].strip().lower() == "application/json":
+        return await _import_by_reference(key, request, actor, services)
     spooled = await spool_upload(request, settings.max_upload_bytes, settings.upload_dir)
     try:
         view, created = await run_in_threadpool(
@@ -101,3 +135,27 @@ def get_readout(
     key: ExperimentKey, version: int, _: ReaderDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.get_readout(services.db, key=key, version=version)
+
+
+async def _import_by_reference(
+    key: str, request: Request, actor: Any, services: Any
+) -> JSONResponse:
+    raw = await read_limited(request, MAX_SOURCE_BODY)
+    try:
+        body = ReadoutSourceIn.model_validate_json(raw)
+    except ValidationError as exc:
+        raise InvalidInput(
+            'the JSON body must be {"source": URI, "partitioning": "hive" | null}',
+            errors=[
+                {"field": ".".join(map(str, e["loc"])), "problem": e["msg"]} for e in exc.errors()
+            ],
+        ) from exc
+    view = await run_in_threadpool(
+        sources.import_readout,
+        services,
+        key=key,
+        source=body.source,
+        partitioning=body.partitioning,
+        actor=actor,
+    )
+    return JSONResponse(view, status_code=202)
