@@ -478,6 +478,7 @@ def render_version(v: dict[str, Any]) -> str:
                 ["metric", "role", "unit", "lift", "projected", "interval", "allowed", "P(holds)"],
             ),
         ]
+    parts += render_prices((v.get("report") or {}).get("guardrail_prices") or [])
     held = (v.get("report") or {}).get("held_out")
     if isinstance(held, dict) and held.get("error"):
         parts.append(f"held-out evaluation: {held['error']}")
@@ -489,6 +490,24 @@ def render_version(v: dict[str, Any]) -> str:
             f"{diff['members']} readout members would change arm",
         ]
     return "\n".join(parts)
+
+
+def render_prices(rows: list[dict[str, Any]]) -> list[str]:
+    """The report's guardrail prices and the success lift at five thresholds around each one."""
+    if not rows:
+        return []
+    table = []
+    for r in rows:
+        lifts = [fmt_num(p["lift"]) if "lift" in p else p.get("status", "-").split(" ")[0]
+                 for p in r["points"]]  # fmt: skip
+        table.append([r["metric"], _unit_label(r["unit"]), fmt_num(r["price"]),
+                      " ".join(fmt_num(p["threshold"]) for p in r["points"]), " ".join(lifts)])  # fmt: skip
+    return [
+        "",
+        "guardrail prices (success lift bought by one more unit of allowed harm) and the success"
+        " lift at five thresholds around the chosen one (the middle):",
+        format_table(table, ["guardrail", "unit", "price", "thresholds", "success lift"]),
+    ]
 
 
 def render_model(m: dict[str, Any]) -> str:
@@ -533,6 +552,10 @@ def render_model(m: dict[str, Any]) -> str:
         f"effects against {arms[0]} (estimate ± 1.96 standard errors):",
         format_table(rows, ["cohort", "arm", *metrics]),
     ]
+    prices = (m.get("diagnostics") or {}).get("guardrail_prices")
+    if prices:
+        parts += ["", "guardrail prices that shaped the partition (structure half): " + ", ".join(
+            f"{k} {fmt_num(v)}" for k, v in prices.items())]  # fmt: skip
     return "\n".join(parts)
 
 

@@ -246,3 +246,25 @@ def test_cli_api_and_fitter_offer_the_same_model_methods():
 
     assert MODEL_METHODS == METHODS
     assert tuple(FitIn.model_fields["method"].annotation.__args__) == METHODS
+
+
+def test_plan_rendering_lists_guardrail_prices_and_the_five_thresholds():
+    from service.cli.client import render_prices
+
+    rows = [
+        {
+            "metric": "cancelled", "unit": "absolute", "threshold": 0.003, "step": 0.00075,
+            "price": 12.5, "price_basis": "central difference over one step each way",
+            "points": [
+                {"offset": -2, "threshold": 0.0015, "status": "infeasible"},
+                {"offset": -1, "threshold": 0.00225, "status": "solved", "lift": 0.10},
+                {"offset": 0, "threshold": 0.003, "status": "chosen", "lift": 0.11},
+                {"offset": 1, "threshold": 0.00375, "status": "solved", "lift": 0.12},
+                {"offset": 2, "threshold": 0.0045, "status": "solved", "lift": 0.125},
+            ],
+        }
+    ]  # fmt: skip
+    text = "\n".join(render_prices(rows))
+    assert "cancelled" in text and "+12.5000" in text
+    assert "infeasible +0.1000 +0.1100 +0.1200 +0.1250" in text
+    assert render_prices([]) == []
