@@ -104,7 +104,7 @@ _DECISION = {
     "max_depth": _Param("int", 3, lo=1, hi=6),
     "guardrails": _Param("guardrails", None),
     "rounds": _Param("int", 3, lo=1, hi=10),
-    "split_z": _Param("float", 2.0, lo=0.0, hi=10.0),
+    "split_z": _Param("float", 1.0, lo=0.0, hi=10.0),
     "folds": _Param("int", 3, lo=2, hi=10),
 }
 _BOOST = {

@@ -95,7 +95,10 @@ def test_policy_tree_splits_where_the_decision_changes_not_where_effects_vary():
 @pytest.mark.parametrize("method", ["two_model", "forest"])
 def test_member_models_distil_into_the_decision_partition(method):
     table = _design(30_000, seed=5)
-    params = {"guardrails": [{"metric": "harm", "threshold": 0.01}], "max_depth": 2}
+    # split_z 2 rather than the default 1: at 1 a depth-2 split on x2 (which changes no decision)
+    # got through in this seed for both outcome models (measured); the default trades such noise
+    # splits for lift on the opposed design (see bench/RESULTS.md)
+    params = {"guardrails": [{"metric": "harm", "threshold": 0.01}], "max_depth": 2, "split_z": 2.0}
     params.update({"max_iter": 60, "folds": 2} if method == "two_model" else {"n_trees": 10})
     fit = fit_cohort_model(table, method, params)
     assert fit.partition.used_features() == ["x1"]
