@@ -85,6 +85,12 @@ def to_labels(
         return None
     enc = pc.dictionary_encode(arr)
     idx = _np(pc.fill_null(enc.indices, -1), np.int64)
+    nul = _np(pc.fill_null(pc.match_substring(enc.dictionary, "\x00"), False), bool)
+    if nul.any():  # no store keeps NUL in text (PostgreSQL refuses it)
+        problems.add(
+            column, "text holds a NUL character", mask=np.append(nul, False)[idx], source=arr
+        )
+        return None
     empty = pc.index(enc.dictionary, "").as_py()
     if empty >= 0:
         idx[idx == empty] = -1

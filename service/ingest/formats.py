@@ -21,6 +21,7 @@ import pyarrow.parquet as pq
 from service.errors import InvalidInput, UnsupportedMediaType
 
 from .problems import Problems
+from .screen import check_names, screen_text
 
 CONTENT_TYPES: dict[str, str] = {
     "text/csv": "csv",
@@ -83,6 +84,8 @@ def read_upload(
     choose (CSV); other formats keep their own types. Raises InvalidInput (via `problems`) when the
     body cannot be read at all."""
     wanted = list(wanted)
+    screen_text(body, fmt, problems)
+    problems.raise_if_any()
     if fmt == "csv":
         table, names = _read_csv(body, wanted, set(text_columns), set(number_columns), problems)
     elif fmt == "parquet":
@@ -91,11 +94,27 @@ def read_upload(
         table, names = _read_ndjson(body, problems)
     else:  # pragma: no cover - media_format only yields the three above
         raise ValueError(fmt)
+    check_names(names, problems)
     for c in sorted(c for c, k in Counter(names).items() if k > 1):
         problems.add(c, "column appears more than once in the header")
     problems.raise_if_any()
+    _check_text(table, problems)
+    problems.raise_if_any()
     keep = [c for c in wanted if c in table.column_names]
     return table.select(keep), names
+
+
+def _check_text(table: pa.Table, problems: Problems) -> None:
+    """Text columns must hold valid UTF-8 (Parquet readers do not check it; a bad value would
+    fail later, far from the upload)."""
+    for name in table.column_names:
+        col = table.column(name)
+        if not (pa.types.is_string(col.type) or pa.types.is_large_string(col.type)):
+            continue
+        try:
+            col.validate(full=True)
+        except pa.ArrowInvalid:
+            problems.add(name, "text that is not valid UTF-8; send UTF-8 text")
 
 
 def _unreadable(kind: str, exc: Exception) -> InvalidInput:

@@ -7,6 +7,7 @@ import hashlib
 import os
 import tempfile
 from collections.abc import Callable
+from collections import Counter
 from dataclasses import dataclass
 from typing import Any
 
@@ -106,21 +107,32 @@ def validate_declaration(decl: dict[str, Any]) -> None:
             )
         if m["key"] in names:
             errs.append({"field": f"metrics.{m['key']}", "problem": "metric keys must be unique"})
-        names[m["key"]] = "metric"
+        names[m["key"]] = f"metric '{m['key']}'"
         for c in cols:
             if c in RESERVED_COLUMNS:
                 errs.append(
                     {"field": f"metrics.{m['key']}", "problem": f"column name '{c}' is reserved"}
                 )
+            elif c != m["key"]:  # a ratio's component columns are read from the upload too
+                names.setdefault(c, f"a column of ratio metric '{m['key']}'")
     for f in decl["features"]:
-        if f["key"] in names or f["key"] in RESERVED_COLUMNS:
+        if f["key"] in RESERVED_COLUMNS:
             errs.append(
                 {
                     "field": f"features.{f['key']}",
-                    "problem": "feature keys must differ from metric keys and reserved columns",
+                    "problem": f"column name '{f['key']}' is reserved",
                 }
             )
-        names[f["key"]] = "feature"
+        elif f["key"] in names:
+            errs.append(
+                {
+                    "field": f"features.{f['key']}",
+                    "problem": f"feature '{f['key']}' is already {names[f['key']]}; a column is "
+                    "either a feature or a metric, once",
+                }
+            )
+        names[f["key"]] = f"feature '{f['key']}'"
+        errs.extend(_level_problems(f))
         if f["kind"] == "numeric" and f.get("levels"):
             errs.append(
                 {
@@ -134,6 +146,26 @@ def validate_declaration(decl: dict[str, Any]) -> None:
             + "; ".join(e["problem"] for e in errs[:3]),
             errors=errs,
         )
+
+
+def _level_problems(f: dict[str, Any]) -> list[dict[str, Any]]:
+    """Declared levels are the codes of a categorical feature: each must be a distinct non-empty
+    text (an empty field in an upload means missing, so an empty level could never be seen)."""
+    levels = f.get("levels") or []
+    field = f"features.{f['key']}.levels"
+    out = []
+    if any(not str(v).strip() for v in levels):
+        out.append({"field": field, "problem": f"feature '{f['key']}' declares an empty level"})
+    dups = sorted(v for v, k in Counter(levels).items() if k > 1)
+    if dups:
+        out.append(
+            {
+                "field": field,
+                "problem": f"feature '{f['key']}' declares levels more than once: "
+                + ", ".join(repr(v) for v in dups[:10]),
+            }
+        )
+    return out
 
 
 def declare(db: Database, *, declaration: dict[str, Any], actor: Actor) -> dict[str, Any]:

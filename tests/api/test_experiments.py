@@ -49,8 +49,31 @@ def test_duplicate_key_is_409(client: TestClient, keys) -> None:  # type: ignore
         ({"arms": [{"key": "control", "share": 0.5}, {"key": "bold", "share": 0.4}]}, "arms"),
         ({"control": "nope"}, "control"),
         ({"metrics": [{"key": "r", "kind": "ratio", "direction": "lower"}]}, "metrics.r"),
+        (
+            {
+                "features": [
+                    {"key": "plan", "kind": "categorical", "levels": ["free", "pro", "free"]}
+                ]
+            },
+            "features.plan.levels",
+        ),
+        (
+            {"features": [{"key": "plan", "kind": "categorical", "levels": ["free", ""]}]},
+            "features.plan.levels",
+        ),
+        (
+            {"features": [{"key": "started", "kind": "numeric"}]},  # abandon_rate's denominator
+            "features.started",
+        ),
     ],
-    ids=["shares-not-one", "unknown-control", "ratio-without-columns"],
+    ids=[
+        "shares-not-one",
+        "unknown-control",
+        "ratio-without-columns",
+        "duplicate-level",
+        "empty-level",
+        "ratio-column-is-a-feature",
+    ],
 )
 def test_bad_declaration_is_422_naming_field(client: TestClient, keys, change, field) -> None:  # type: ignore[no-untyped-def]
     r = client.post("/v1/experiments", json={**EXPERIMENT, **change}, headers=keys.h(keys.analyst))

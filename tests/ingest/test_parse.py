@@ -518,7 +518,7 @@ def test_a_column_named_twice_in_the_header():
     ]
 
 
-def test_invalid_utf8_in_csv_is_unreadable():
+def test_invalid_utf8_in_csv_is_refused_naming_the_row():
     body = csv_body(GOOD).replace(b"beginner", b"beg\xff\xfener", 1)
-    with pytest.raises(InvalidInput, match="could not read the CSV upload: .*invalid UTF8"):
+    with pytest.raises(InvalidInput, match="a row is not valid UTF-8 .* in rows 1"):
         parse(body)
