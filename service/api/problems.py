@@ -74,7 +74,9 @@ def _validation(request: Request, exc: Exception) -> Response:
         }
         for e in exc.errors()
     ]
-    names = ", ".join(e["field"] or "body" for e in errors[:5])
+    names = "; ".join(
+        f"{e['field'] or 'body'} ({e['problem'].removeprefix('Value error, ')})" for e in errors[:5]
+    )
     return problem_response(
         422,
         "Invalid request",

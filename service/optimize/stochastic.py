@@ -39,6 +39,7 @@ from service.optimize.chance import cone_values, constraint_scale
 from service.optimize.linear import Linear, cvar_multiplier
 from service.optimize.simplex import project_rows
 
+MAX_AUTO_BATCH = 4096
 DEFAULTS = {
     "iterations": 40000,
     "batch": None,  # None: ~32 draws in the thinnest tail, at least 16 (antithetic pairs)
@@ -78,7 +79,9 @@ def csa(lin: Linear, *, seed: int = 0, options: dict | None = None) -> CSAResult
         if opts.get("tail") is None
         else np.full(len(lin.keys), float(opts["tail"]))
     )
-    auto = max(16, int(np.ceil(32.0 / float(tails0.min(initial=1.0)))))
+    # ~32 draws in the thinnest tail, at least 16, at most MAX_AUTO_BATCH (a 0.9999 confidence
+    # would otherwise ask for 320,000 draws a step)
+    auto = min(MAX_AUTO_BATCH, max(16, int(np.ceil(32.0 / float(tails0.min(initial=1.0))))))
     half = max(1, int(opts["batch"] or auto) // 2)
     batch = 2 * half  # antithetic pairs (Hammersley and Morton 1956): xi and -xi around the mean
     tol = float(opts["tol"])

@@ -2,25 +2,39 @@
 
 from __future__ import annotations
 
+from datetime import UTC, datetime
 from typing import Any
 
 from fastapi import APIRouter, Query
 
 from service.api.deps import AdminDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.fields import INT64_MAX, TextQuery
 from service.store import audit
 
 router = APIRouter(prefix="/v1/audit", tags=["audit"], route_class=AuthenticatedRoute)
+
+
+def _stamp(at: datetime | None) -> str | None:
+    """The audit trail's own timestamp text (UTC, microseconds), so that text order is time order."""
+    if at is None:
+        return None
+    at = at.replace(tzinfo=UTC) if at.tzinfo is None else at.astimezone(UTC)
+    return at.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
 @router.get("", summary="Audit entries, oldest first")
 def list_entries(
     _: ReaderDep,
     services: ServicesDep,
-    entity: str | None = None,
-    entity_id: str | None = None,
-    actor: str | None = None,
-    since: str | None = Query(None, description="ISO-8601 UTC time, e.g. 2026-12-01T00:00:00Z"),
-    after: int = Query(0, ge=0, description="only entries with a larger id (for paging)"),
+    entity: TextQuery = None,
+    entity_id: TextQuery = None,
+    actor: TextQuery = None,
+    since: datetime | None = Query(
+        None, description="ISO-8601 time, e.g. 2026-12-01T00:00:00Z (no zone: UTC)"
+    ),
+    after: int = Query(
+        0, ge=0, le=INT64_MAX, description="only entries with a larger id (for paging)"
+    ),
     limit: int = Query(100, ge=1, le=1000),
 ) -> dict[str, Any]:
     with services.db.read() as s:
@@ -29,7 +43,7 @@ def list_entries(
             entity=entity,
             entity_id=entity_id,
             actor=actor,
-            since=since,
+            since=_stamp(since),
             limit=limit,
             after=after,
         )

@@ -11,6 +11,7 @@ from starlette.concurrency import run_in_threadpool
 
 from service.api.body import UPLOAD_TYPES, read_limited, spool_upload
 from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.fields import ShortText, VersionPath
 from service.api.params import KEY_PATTERN, ExperimentKey
 from service.errors import InvalidInput
 from service.usecases import experiments as uc
@@ -63,14 +64,16 @@ class MetricIn(BaseModel):
 class FeatureIn(BaseModel):
     key: str = Field(pattern=COLUMN)
     kind: Literal["numeric", "categorical"]
-    levels: list[str] | None = Field(None, description="categorical: the allowed levels (optional)")
+    levels: list[ShortText] | None = Field(
+        None, max_length=10000, description="categorical: the allowed levels (optional)"
+    )
 
 
 class ExperimentIn(BaseModel):
     key: str = Field(pattern=KEY_PATTERN)
-    name: str | None = Field(None, max_length=200)
+    name: ShortText | None = None
     arms: list[ArmIn] = Field(min_length=2, max_length=20)
-    control: str
+    control: ShortText
     metrics: list[MetricIn] = Field(min_length=1, max_length=50)
     features: list[FeatureIn] = Field(default_factory=list, max_length=200)
 
@@ -132,7 +135,7 @@ async def upload_readout(
     summary="A readout's summary: per arm and metric n, mean, standard error",
 )
 def get_readout(
-    key: ExperimentKey, version: int, _: ReaderDep, services: ServicesDep
+    key: ExperimentKey, version: VersionPath, _: ReaderDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.get_readout(services.db, key=key, version=version)
 

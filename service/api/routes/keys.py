@@ -8,6 +8,7 @@ from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
 from service.api.deps import AdminDep, AuthenticatedRoute, ServicesDep
+from service.api.fields import IdPath
 from service.usecases import auth
 
 router = APIRouter(prefix="/v1/keys", tags=["keys"], route_class=AuthenticatedRoute)
@@ -63,7 +64,7 @@ def create_key(body: KeyCreate, actor: AdminDep, services: ServicesDep) -> KeyCr
     response_model=KeyOut,
     summary="Revoke an API key (never the last active admin key: 409)",
 )
-def revoke_key(key_id: int, actor: AdminDep, services: ServicesDep) -> KeyOut:
+def revoke_key(key_id: IdPath, actor: AdminDep, services: ServicesDep) -> KeyOut:
     rec = auth.revoke_key(services.db, key_id=key_id, actor=actor)
     services.keys.refresh()
     return KeyOut(**rec.public())  # type: ignore[arg-type]

@@ -8,6 +8,7 @@ from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
 from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.fields import INT64_MAX, REASON_PATTERN, IdPath, ShortText
 from service.api.params import ExperimentKey
 from service.usecases import models as uc
 
@@ -15,18 +16,18 @@ router = APIRouter(tags=["models"], route_class=AuthenticatedRoute)
 
 
 class Override(BaseModel):
-    reason: str = Field(min_length=3, max_length=2000)
+    reason: str = Field(min_length=3, max_length=2000, pattern=REASON_PATTERN)
 
 
 class FitIn(BaseModel):
-    readout_version: int = Field(ge=1)
+    readout_version: int = Field(ge=1, le=INT64_MAX)
     method: Literal[
         "global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree"
     ] = "causal_tree"
     params: dict[str, Any] = Field(
         default_factory=dict, description="method parameters; see the README"
     )
-    success_metric: str | None = Field(
+    success_metric: ShortText | None = Field(
         None, description="the metric that orders categorical levels and may weigh more"
     )
     override_sample_ratio: Override | None = Field(
@@ -57,5 +58,5 @@ def fit(
 @router.get(
     "/v1/models/{model_id}", summary="A cohort model: rules, shares, estimates, diagnostics"
 )
-def get_model(model_id: int, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_model(model_id: IdPath, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
     return uc.get_model(services.db, model_id=model_id)

@@ -2,44 +2,49 @@
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, status
-from pydantic import BaseModel, Field
+from pydantic import BaseModel, Field, ValidationInfo, field_validator
 
 from service.api.deps import AnalystDep, ApproverDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.fields import INT64_MAX, Reason, ShortText, Text, VersionPath
 from service.api.params import PlanKey
+from service.api.solver_options import SolverOptions, options_for
 from service.usecases import plans as uc
 
 router = APIRouter(prefix="/v1/plans", tags=["plans"], route_class=AuthenticatedRoute)
 
 
 class GuardrailIn(BaseModel):
-    metric: str
+    metric: ShortText
     threshold: float = Field(
-        description="allowed change against the baseline, signed in the harmful direction"
+        allow_inf_nan=False,
+        description="allowed change against the baseline, signed in the harmful direction",
     )
     unit: Literal["absolute", "relative"] = Field(
         "absolute", description="absolute: the metric's units; relative: per cent of baseline"
     )
-    confidence: float = Field(0.95, description="in (0.5, 1)")
+    confidence: float = Field(0.95, gt=0.5, lt=1, description="in (0.5, 1)")
 
 
 class HoldoutIn(BaseModel):
     share: float = Field(0.05, ge=0, lt=1)
-    arm: str | None = Field(None, description="default: the control arm")
+    arm: ShortText | None = Field(None, description="default: the control arm")
 
 
 class DraftIn(BaseModel):
-    model_id: int
-    success_metric: str
+    model_id: int = Field(ge=1, le=INT64_MAX)
+    success_metric: ShortText
     guardrails: list[GuardrailIn] = Field(default_factory=list, max_length=50)
     method: Literal["deterministic", "chance", "stochastic"] = "chance"
     allocation: Literal["mixed", "pure"] = "mixed"
     holdout: HoldoutIn = Field(default_factory=HoldoutIn)
     baseline: Literal["control", "best_arm", "live"] = "control"
-    traffic_mix: list[float] | None = Field(
-        None, description="per-cohort shares of the traffic to plan for (default: the model's)"
+    traffic_mix: list[Annotated[float, Field(ge=0, allow_inf_nan=False)]] | None = Field(
+        None,
+        max_length=100_000,
+        description="per-cohort shares of the traffic to plan for (default: the model's)",
     )
     draws: int = Field(
         200,
@@ -47,38 +52,39 @@ class DraftIn(BaseModel):
         le=20000,
         description="bootstrap draws of the impact report (above 1000 it runs as a job)",
     )
-    seed: int = Field(0, ge=0)
+    seed: int = Field(0, ge=0, le=INT64_MAX)
     new_salt: bool = Field(
         False, description="re-randomize everyone instead of keeping the plan's salt"
     )
-    notes: str | None = Field(None, max_length=5000)
-    options: dict[str, Any] | None = Field(None, description="solver options")
+    notes: Text | None = Field(None, max_length=5000)
+    options: SolverOptions | None = Field(
+        None, description="solver options; which ones depends on the method (422 otherwise)"
+    )
+
+    @field_validator("options", mode="before")
+    @classmethod
+    def _options_of_method(cls, value: Any, info: ValidationInfo) -> Any:
+        return options_for(info.data.get("method", "chance"), value)
 
 
 class DecisionIn(BaseModel):
-    reason: str = Field(
-        min_length=1, max_length=5000, pattern=r"\S", description="why; recorded in the audit trail"
-    )
+    reason: Reason
 
 
 class ActivateIn(BaseModel):
-    version: int = Field(ge=1)
-    reason: str = Field(
-        min_length=1, max_length=5000, pattern=r"\S", description="why; recorded in the audit trail"
-    )
+    version: int = Field(ge=1, le=INT64_MAX)
+    reason: Reason
     expected_revision: int = Field(
-        ge=0, description="the plan's revision you saw; 409 when it moved"
+        ge=0, le=INT64_MAX, description="the plan's revision you saw; 409 when it moved"
     )
 
 
 class RollbackIn(BaseModel):
-    reason: str = Field(
-        min_length=1, max_length=5000, pattern=r"\S", description="why; recorded in the audit trail"
-    )
+    reason: Reason
     to_version: int | None = Field(
-        None, ge=1, description="default: the version live before the current one"
+        None, ge=1, le=INT64_MAX, description="default: the version live before the current one"
     )
-    expected_revision: int | None = Field(None, ge=0)
+    expected_revision: int | None = Field(None, ge=0, le=INT64_MAX)
 
 
 @router.get("", summary="All plans with their live version")
@@ -94,6 +100,7 @@ def list_plans(_: ReaderDep, services: ServicesDep) -> dict[str, Any]:
 )
 def draft(plan: PlanKey, body: DraftIn, actor: AnalystDep, services: ServicesDep) -> dict[str, Any]:
     data = body.model_dump()
+    data["options"] = body.options.model_dump(exclude_none=True) if body.options else None
     data["holdout"] = {k: v for k, v in data["holdout"].items() if v is not None}
     return uc.draft_version(services, plan=plan, body=data, actor=actor)
 
@@ -107,13 +114,15 @@ def get_plan(plan: PlanKey, _: ReaderDep, services: ServicesDep) -> dict[str, An
     "/{plan}/versions/{version}",
     summary="A plan version with its report and its diff against the live version",
 )
-def get_version(plan: PlanKey, version: int, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_version(
+    plan: PlanKey, version: VersionPath, _: ReaderDep, services: ServicesDep
+) -> dict[str, Any]:
     return uc.get_version(services, plan=plan, version=version)
 
 
 @router.post("/{plan}/versions/{version}/approve", summary="Approve a draft (not its author)")
 def approve(
-    plan: PlanKey, version: int, body: DecisionIn, actor: ApproverDep, services: ServicesDep
+    plan: PlanKey, version: VersionPath, body: DecisionIn, actor: ApproverDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.decide(
         services, plan=plan, version=version, approve=True, reason=body.reason, actor=actor
@@ -122,7 +131,7 @@ def approve(
 
 @router.post("/{plan}/versions/{version}/reject", summary="Reject a draft")
 def reject(
-    plan: PlanKey, version: int, body: DecisionIn, actor: ApproverDep, services: ServicesDep
+    plan: PlanKey, version: VersionPath, body: DecisionIn, actor: ApproverDep, services: ServicesDep
 ) -> dict[str, Any]:
     return uc.decide(
         services, plan=plan, version=version, approve=False, reason=body.reason, actor=actor

@@ -20,6 +20,7 @@ from fastapi import APIRouter
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from service.api.deps import ReaderDep, ServicesDep
+from service.api.fields import VersionPath
 from service.api.params import PlanKey
 from service.errors import NotFound
 from service.usecases import review
@@ -94,7 +95,7 @@ def index_fragment(actor: ReaderDep, services: ServicesDep) -> HTMLResponse:
 
 @router.get("/fragments/plans/{plan}/versions/{version}", response_class=HTMLResponse)
 def version_fragment(
-    plan: PlanKey, version: int, actor: ReaderDep, services: ServicesDep
+    plan: PlanKey, version: VersionPath, actor: ReaderDep, services: ServicesDep
 ) -> HTMLResponse:
     data = review.review_page(services, plan=plan, version=version)
     return _fragment(

@@ -4,12 +4,13 @@ from __future__ import annotations
 
 from typing import Any
 
-from fastapi import APIRouter, Query, Request
+from fastapi import APIRouter, Request
 from pydantic import BaseModel, Field
 from starlette.concurrency import run_in_threadpool
 
 from service.api.body import UPLOAD_OPENAPI, read_limited
 from service.api.deps import AnalystDep, ApproverDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.fields import INT64_MAX, Reason, VersionQuery
 from service.api.params import PlanKey
 from service.usecases import watch as uc
 
@@ -19,14 +20,18 @@ router = APIRouter(prefix="/v1/plans", tags=["watch"], route_class=Authenticated
 class AutoRollbackIn(BaseModel):
     enabled: bool
     min_units_per_group: int = Field(
-        1000, ge=1, description="plan-exposed and holdout members needed before it may act"
+        1000,
+        ge=1,
+        le=INT64_MAX,
+        description="plan-exposed and holdout members needed before it may act",
     )
     horizon: int | None = Field(
-        None, ge=100, description="expected units per group; where the interval is tightest"
+        None,
+        ge=100,
+        le=INT64_MAX,
+        description="expected units per group; where the interval is tightest",
     )
-    reason: str = Field(
-        min_length=1, max_length=5000, pattern=r"\S", description="why; recorded in the audit trail"
-    )
+    reason: Reason
 
 
 @router.post(
@@ -39,7 +44,7 @@ async def monitor(
     request: Request,
     actor: AnalystDep,
     services: ServicesDep,
-    version: int | None = Query(None, description="default: the live version"),
+    version: VersionQuery = None,
 ) -> dict[str, Any]:
     body = await read_limited(request, services.settings.max_upload_bytes)
     return await run_in_threadpool(
@@ -55,7 +60,7 @@ async def monitor(
 
 @router.get("/{plan}/watch", summary="Guardrail status and interval history of the watched version")
 def get_watch(
-    plan: PlanKey, _: ReaderDep, services: ServicesDep, version: int | None = None
+    plan: PlanKey, _: ReaderDep, services: ServicesDep, version: VersionQuery = None
 ) -> dict[str, Any]:
     return uc.get_watch(services, plan=plan, version=version)
 
