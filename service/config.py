@@ -46,6 +46,11 @@ class Settings(BaseSettings):
         description="largest accepted body of POST /v1/plans/{plan}/assign/batch (413); "
         "10,000 members with ten features take about 2.5 MB",
     )
+    max_json_bytes: int = Field(
+        1024 * 1024,
+        gt=0,
+        description="largest accepted JSON request body (the lookup routes keep their own limit)",
+    )
     poll_interval_seconds: float = Field(
         1.0, gt=0, description="how often each process checks for plan changes"
     )

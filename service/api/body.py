@@ -1,5 +1,6 @@
-"""Reading raw upload bodies with a size limit (413 before the whole body is read); spooling large
-uploads to disk, decoding gzip and zstd Content-Encoding on the way."""
+"""Upload bodies (spooled to disk with a size limit, gzip and zstd Content-Encoding decoded on the
+way) and JSON bodies (every other route, limited around the route before FastAPI reads the body).
+Both answer 413 problem+json before more than the limit is held in memory."""
 
 from __future__ import annotations
 
@@ -7,12 +8,16 @@ import contextlib
 import hashlib
 import os
 import tempfile
+from collections.abc import Callable, Coroutine
 from dataclasses import dataclass
+from typing import Any
 
 import pyarrow as pa
-from fastapi import Request
+from fastapi import Request, Response
+from fastapi.routing import APIRoute
 from starlette.concurrency import run_in_threadpool
 
+from service.api.deps import AuthenticatedRoute
 from service.errors import InvalidInput, PayloadTooLarge, UnsupportedMediaType
 
 UPLOAD_TYPES = {
@@ -136,3 +141,52 @@ def _decode(path: str, codec: str, limit: int, directory: str | None) -> Spooled
         raise
     out.sha256 = h.hexdigest()
     return out
+
+
+def _json_too_large(limit: int, size: int | None) -> PayloadTooLarge:
+    said = f"the body is {size} bytes" if size is not None else "the body exceeds the limit"
+    return PayloadTooLarge(f"{said}; the limit is {limit} bytes (APPORTION_MAX_JSON_BYTES)")
+
+
+def _reads_raw_upload(openapi_extra: dict[str, Any] | None) -> bool:
+    """Routes that accept raw upload types read their own body with the upload limit (a readout
+    route that also takes a small JSON reference caps that body itself)."""
+    content = (openapi_extra or {}).get("requestBody", {}).get("content", {})
+    return any(media in content for media in UPLOAD_TYPES)
+
+
+class LimitedRoute(APIRoute):
+    """The route class of every router but the lookup routes': the body is read here, at most
+    APPORTION_MAX_JSON_BYTES of it, before FastAPI parses it (FastAPI then reuses the bytes read).
+
+    The declared Content-Length is checked first; a body sent without one (chunked) is counted as
+    it arrives, so nothing beyond the limit is held. Raw-upload routes read their own body with
+    their own limit (`read_limited`) and pass through. Starlette's body-limit middleware would
+    answer text/plain; the contract is problem+json, so the limit raises PayloadTooLarge."""
+
+    def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
+        handler = super().get_route_handler()
+        if _reads_raw_upload(self.openapi_extra):
+            return handler
+
+        async def limited(request: Request) -> Response:
+            limit = request.app.state.services.settings.max_json_bytes
+            declared = request.headers.get("content-length", "")
+            if declared.isdigit() and int(declared) > limit:
+                raise _json_too_large(limit, int(declared))
+            chunks: list[bytes] = []
+            size = 0
+            async for chunk in request.stream():
+                size += len(chunk)
+                if size > limit:
+                    raise _json_too_large(limit, None)
+                chunks.append(chunk)
+            request._body = b"".join(chunks)  # Starlette's own cache: request.body() returns it
+            return await handler(request)
+
+        return limited
+
+
+class GuardedRoute(AuthenticatedRoute, LimitedRoute):
+    """The key first (AuthenticatedRoute: no body is read for a caller without a valid key),
+    then the body limit (LimitedRoute), then FastAPI's own parsing."""

@@ -7,11 +7,12 @@ from typing import Any
 
 from fastapi import APIRouter, Query
 
-from service.api.deps import AdminDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.body import GuardedRoute
+from service.api.deps import AdminDep, ReaderDep, ServicesDep
 from service.api.fields import INT64_MAX, TextQuery
 from service.store import audit
 
-router = APIRouter(prefix="/v1/audit", tags=["audit"], route_class=AuthenticatedRoute)
+router = APIRouter(prefix="/v1/audit", tags=["audit"], route_class=GuardedRoute)
 
 
 def _stamp(at: datetime | None) -> str | None:

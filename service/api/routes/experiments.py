@@ -9,15 +9,15 @@ from fastapi.responses import JSONResponse
 from pydantic import BaseModel, Field, ValidationError
 from starlette.concurrency import run_in_threadpool
 
-from service.api.body import UPLOAD_TYPES, read_limited, spool_upload
-from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.body import UPLOAD_TYPES, GuardedRoute, read_limited, spool_upload
+from service.api.deps import AnalystDep, ReaderDep, ServicesDep
 from service.api.fields import ShortText, VersionPath
 from service.api.params import KEY_PATTERN, ExperimentKey
 from service.errors import InvalidInput
 from service.usecases import experiments as uc
 from service.usecases import sources
 
-router = APIRouter(prefix="/v1/experiments", tags=["experiments"], route_class=AuthenticatedRoute)
+router = APIRouter(prefix="/v1/experiments", tags=["experiments"], route_class=GuardedRoute)
 MAX_SOURCE_BODY = 16 * 1024
 
 

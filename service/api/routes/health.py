@@ -8,12 +8,13 @@ from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse, Response
 from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
 
+from service.api.body import LimitedRoute
 from service.api.deps import ServicesDep
 from service.observability import REFRESH_AGE, REGISTRY
 from service.store.db import ping
 from service.store.migrate import is_current
 
-router = APIRouter(tags=["operations"])
+router = APIRouter(tags=["operations"], route_class=LimitedRoute)
 
 
 @router.get("/healthz", summary="Liveness: the process answers")

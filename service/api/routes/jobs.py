@@ -6,11 +6,12 @@ from typing import Any
 
 from fastapi import APIRouter
 
-from service.api.deps import AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.body import GuardedRoute
+from service.api.deps import ReaderDep, ServicesDep
 from service.api.params import JobId
 from service.usecases import jobs as uc
 
-router = APIRouter(tags=["jobs"], route_class=AuthenticatedRoute)
+router = APIRouter(tags=["jobs"], route_class=GuardedRoute)
 
 
 @router.get(

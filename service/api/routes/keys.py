@@ -7,11 +7,12 @@ from typing import Literal
 from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
-from service.api.deps import AdminDep, AuthenticatedRoute, ServicesDep
+from service.api.body import GuardedRoute
+from service.api.deps import AdminDep, ServicesDep
 from service.api.fields import IdPath
 from service.usecases import auth
 
-router = APIRouter(prefix="/v1/keys", tags=["keys"], route_class=AuthenticatedRoute)
+router = APIRouter(prefix="/v1/keys", tags=["keys"], route_class=GuardedRoute)
 
 
 IDENTITY = r"^[A-Za-z0-9_.@-]+$"

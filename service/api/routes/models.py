@@ -7,12 +7,13 @@ from typing import Any, Literal
 from fastapi import APIRouter, status
 from pydantic import BaseModel, Field
 
-from service.api.deps import AnalystDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.body import GuardedRoute
+from service.api.deps import AnalystDep, ReaderDep, ServicesDep
 from service.api.fields import INT64_MAX, REASON_PATTERN, IdPath, ShortText
 from service.api.params import ExperimentKey
 from service.usecases import models as uc
 
-router = APIRouter(tags=["models"], route_class=AuthenticatedRoute)
+router = APIRouter(tags=["models"], route_class=GuardedRoute)
 
 
 class Override(BaseModel):

@@ -7,13 +7,14 @@ from typing import Annotated, Any, Literal
 from fastapi import APIRouter, status
 from pydantic import BaseModel, Field, ValidationInfo, field_validator
 
-from service.api.deps import AnalystDep, ApproverDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.body import GuardedRoute
+from service.api.deps import AnalystDep, ApproverDep, ReaderDep, ServicesDep
 from service.api.fields import INT64_MAX, Reason, ShortText, Text, VersionPath
 from service.api.params import PlanKey
 from service.api.solver_options import SolverOptions, options_for
 from service.usecases import plans as uc
 
-router = APIRouter(prefix="/v1/plans", tags=["plans"], route_class=AuthenticatedRoute)
+router = APIRouter(prefix="/v1/plans", tags=["plans"], route_class=GuardedRoute)
 
 
 class GuardrailIn(BaseModel):

@@ -19,6 +19,7 @@ from pathlib import Path
 from fastapi import APIRouter
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
+from service.api.body import LimitedRoute
 from service.api.deps import ReaderDep, ServicesDep
 from service.api.fields import VersionPath
 from service.api.params import PlanKey
@@ -26,7 +27,7 @@ from service.errors import NotFound
 from service.usecases import review
 from service.web import pages
 
-router = APIRouter(prefix="/ui", include_in_schema=False)
+router = APIRouter(prefix="/ui", include_in_schema=False, route_class=LimitedRoute)
 
 STATIC = Path(__file__).resolve().parents[2] / "web" / "static"
 STATIC_TYPES = {

@@ -8,13 +8,13 @@ from fastapi import APIRouter, Request
 from pydantic import BaseModel, Field
 from starlette.concurrency import run_in_threadpool
 
-from service.api.body import UPLOAD_OPENAPI, read_limited
-from service.api.deps import AnalystDep, ApproverDep, AuthenticatedRoute, ReaderDep, ServicesDep
+from service.api.body import UPLOAD_OPENAPI, GuardedRoute, read_limited
+from service.api.deps import AnalystDep, ApproverDep, ReaderDep, ServicesDep
 from service.api.fields import INT64_MAX, Reason, VersionQuery
 from service.api.params import PlanKey
 from service.usecases import watch as uc
 
-router = APIRouter(prefix="/v1/plans", tags=["watch"], route_class=AuthenticatedRoute)
+router = APIRouter(prefix="/v1/plans", tags=["watch"], route_class=GuardedRoute)
 
 
 class AutoRollbackIn(BaseModel):
