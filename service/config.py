@@ -51,6 +51,12 @@ class Settings(BaseSettings):
         gt=0,
         description="largest accepted JSON request body (the lookup routes keep their own limit)",
     )
+    watch_max_flag_disagreement: float = Field(
+        0.01,
+        ge=0,
+        le=1,
+        description="largest share of watch rows whose holdout flag may disagree with the lookup",
+    )
     poll_interval_seconds: float = Field(
         1.0, gt=0, description="how often each process checks for plan changes"
     )

@@ -199,15 +199,8 @@ def upload(
         arm_column=None,
         flag_columns=["holdout"],
     )
-    new_table, new_holdout = parsed.table, parsed.flags["holdout"]
-    # Recompute each member's assignment: a stated holdout flag that disagrees means the caller
-    # is not using the lookup (or features changed since assignment).
-    compiled = live.compile_version(row, _partition(services, row.model_id), revision=0)
-    recomputed = compiled.assign_columns(list(new_table.unit_ids), table_columns(new_table))
-    disagree = (
-        float(np.mean([a.holdout != bool(h) for a, h in zip(recomputed, new_holdout, strict=True)]))
-        if new_table.n
-        else 0.0
+    new_table, new_holdout, excluded, disagree = _evidence_rows(
+        services, row, parsed.table, parsed.flags["holdout"]
     )
 
     encoded = encode_table(new_table, {"holdout": new_holdout})
@@ -230,7 +223,8 @@ def upload(
         metrics = evaluate(merged, holdout, row.spec, horizon=horizon)
         breached = [m for m in metrics if m["status"] == "breached"]
         result: dict[str, Any] = {
-            "rows": int(new_table.n),
+            "rows": int(parsed.n_rows),
+            "rows_excluded": excluded,
             "members": int(merged.n),
             "replaced": replaced,
             "holdout_flag_disagreement": disagree,
@@ -274,6 +268,7 @@ def upload(
                 "units": {"plan": worst["n_plan"], "holdout": worst["n_holdout"]},
                 "alpha": worst["alpha"],
                 "upload": up.seq,
+                "uploaded_by": actor.name,
                 "breached": [m["metric"] for m in enough],
             }
             try:
@@ -296,6 +291,48 @@ def upload(
         if m["role"] == "guardrail":
             WATCH_STATUS.labels(plan, m["metric"]).set(1 if m["status"] == "breached" else 0)
     return {"plan": plan, "version": row.version, "upload": up.seq, **result}
+
+
+def _evidence_rows(
+    services: Services, row: Any, table: UnitTable, stated: np.ndarray
+) -> tuple[UnitTable, np.ndarray, int, float]:
+    """(rows that count as evidence, their holdout flag, rows left out, disagreement share).
+
+    Each member's group is recomputed by the plan's own lookup. A stated holdout flag that
+    disagrees means the caller is not using the lookup (or the rows are invented): such a row
+    says nothing about either group, so it is left out, and an upload where more than
+    APPORTION_WATCH_MAX_FLAG_DISAGREEMENT of the rows disagree is refused whole."""
+    compiled = live.compile_version(row, _partition(services, row.model_id), revision=0)
+    assigned = compiled.assign_columns(list(table.unit_ids), table_columns(table))
+    recomputed = np.fromiter((a.holdout for a in assigned), dtype=bool, count=table.n)
+    off = recomputed != np.asarray(stated, dtype=bool)
+    share = float(off.mean()) if table.n else 0.0
+    limit = services.settings.watch_max_flag_disagreement
+    if share > limit:
+        rows = (np.flatnonzero(off)[:10] + 1).tolist()
+        raise InvalidInput(
+            f"column 'holdout' disagrees with the plan's lookup in {int(off.sum())} of {table.n} "
+            f"rows ({share:.2%}; at most {limit:.2%} may, APPORTION_WATCH_MAX_FLAG_DISAGREEMENT): "
+            f"send the flag the lookup returned; first rows {rows}",
+            errors=[
+                {
+                    "column": "holdout",
+                    "problem": "holdout flag disagrees with the plan's lookup",
+                    "rows": rows,
+                    "count": int(off.sum()),
+                    "share": share,
+                    "allowed_share": limit,
+                }
+            ],
+        )
+    if not off.any():
+        return table, recomputed, 0, share
+    keep = np.flatnonzero(~off)
+    if keep.size == 0:
+        raise InvalidInput("no row's holdout flag agrees with the plan's lookup", errors=[
+            {"column": "holdout", "problem": "no row agrees with the plan's lookup"}
+        ])  # fmt: skip
+    return table.take(keep), recomputed[keep], int(off.sum()), share
 
 
 def _partition(services: Services, model_id: int) -> Any:

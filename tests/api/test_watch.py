@@ -87,23 +87,53 @@ def test_uploads_accumulate_and_duplicates_count_once(client: TestClient, keys, 
     assert [e["action"] for e in audit["entries"]].count("watch.upload") == 2
 
 
-def test_holdout_flags_that_disagree_with_the_lookup_are_reported(
+def _with_holdout(body: bytes, flags: np.ndarray) -> bytes:
+    t = pacsv.read_csv(io.BytesIO(body))
+    t = t.set_column(t.schema.get_field_index("holdout"), "holdout", pa.array(flags))
+    buf = io.BytesIO()
+    pacsv.write_csv(t, buf)
+    return buf.getvalue()
+
+
+def test_holdout_flags_that_disagree_with_the_lookup_are_not_evidence(
     client: TestClient, keys, live_plan
 ) -> None:  # type: ignore[no-untyped-def]
-    compiled = live_plan.plans.get("lesson-length")
-    t = pacsv.read_csv(io.BytesIO(post_launch_csv(compiled, 2000, seed=7)))
-    flipped = t.set_column(
-        t.schema.get_field_index("holdout"), "holdout", pa.array(np.zeros(2000, dtype=bool))
+    """Rows whose stated holdout flag is not what the plan's lookup gives are left out; above
+    APPORTION_WATCH_MAX_FLAG_DISAGREEMENT (1 %) the upload is refused whole, naming the share.
+    The reproducer: invented rows with the flag alternating, automatic rollback on."""
+    h, ha = keys.h(keys.approver), {**keys.h(keys.analyst), **CSV}
+    client.post(
+        "/v1/plans/lesson-length/auto-rollback",
+        json={"enabled": True, "min_units_per_group": 100, "reason": "protect"},
+        headers=h,
     )
-    buf = io.BytesIO()
-    pacsv.write_csv(flipped, buf)
+    compiled = live_plan.plans.get("lesson-length")
+    honest = post_launch_csv(compiled, 4000, seed=7, harm=_harm_beginners)
+    true_flags = np.asarray(pacsv.read_csv(io.BytesIO(honest)).column("holdout"), dtype=bool)
+    alternating = _with_holdout(honest, np.arange(4000) % 2 == 0)
+    r = client.post("/v1/plans/lesson-length/monitor", content=alternating, headers=ha)
+    assert r.status_code == 422, r.text
+    expected = float(np.mean(true_flags != (np.arange(4000) % 2 == 0)))
+    err = r.json()["errors"][0]
+    assert err["column"] == "holdout" and err["share"] == pytest.approx(expected, abs=1e-12)
+    assert f"{expected:.2%}" in r.json()["detail"]
+    watch = client.get("/v1/plans/lesson-length/watch", headers=keys.h(keys.reader)).json()
+    assert watch["uploads"] == 0 and watch["live_version"] == 2  # nothing stored, no rollback
+    uploads = client.get(
+        "/v1/audit", params={"entity_id": "lesson-length/2"}, headers=keys.h(keys.reader)
+    ).json()["entries"]
+    assert [e for e in uploads if e["action"] == "watch.upload"] == []
+
+    # a few flipped flags (0.5 %): accepted, and exactly those rows are left out
+    flipped = true_flags.copy()
+    flipped[:20] = ~flipped[:20]
     out = client.post(
         "/v1/plans/lesson-length/monitor",
-        content=buf.getvalue(),
-        headers={**keys.h(keys.analyst), **CSV},
+        content=_with_holdout(post_launch_csv(compiled, 4000, seed=7), flipped),
+        headers=ha,
     ).json()
-    true_holdout = np.asarray(t.column("holdout")).mean()
-    assert out["holdout_flag_disagreement"] == pytest.approx(true_holdout, abs=1e-12)
+    assert out["rows"] == 4000 and out["rows_excluded"] == 20 and out["members"] == 3980
+    assert out["holdout_flag_disagreement"] == pytest.approx(20 / 4000, abs=1e-12)
 
 
 def test_bad_monitor_upload_is_422_and_stores_nothing(client: TestClient, keys, live_plan) -> None:  # type: ignore[no-untyped-def]
@@ -159,6 +189,8 @@ def test_confirmed_harm_rolls_back_once_with_evidence(client: TestClient, keys, 
         and ev["interval"][0] > ev["threshold"]
         and ev["units"]["plan"] >= 500
     )
+    # the entry names the upload that triggered it and who sent it
+    assert ev["upload"] == rolled[0] + 1 and ev["uploaded_by"] == "t-analyst"
     a = client.post(
         "/v1/plans/lesson-length/assign",
         json={"member_id": "x", "features": {}},
