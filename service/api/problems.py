@@ -64,19 +64,26 @@ def _domain(request: Request, exc: Exception) -> Response:
     )
 
 
+def _field_problem(e: dict[str, Any]) -> tuple[str, str]:
+    """(field, problem) of one pydantic error, in words a client can act on."""
+    loc = [str(p) for p in e.get("loc", ()) if p != "body"]
+    msg = str(e.get("msg", "")).removeprefix("Value error, ")
+    if e.get("type") == "json_invalid":  # FastAPI puts the character position in `loc`
+        where = f" at character {loc[-1]}" if loc else ""
+        return "body", f"invalid JSON{where}: {(e.get('ctx') or {}).get('error', msg)}"
+    value = e.get("input")
+    if e.get("type") == "string_pattern_mismatch" and isinstance(value, str) and "\x00" in value:
+        msg = "text must not contain the NUL character"
+    return ".".join(loc), msg
+
+
 def _validation(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, RequestValidationError)
-    errors = [
-        {
-            "field": ".".join(str(p) for p in e.get("loc", ()) if p != "body"),
-            "problem": e.get("msg", ""),
-            "type": e.get("type"),
-        }
-        for e in exc.errors()
-    ]
-    names = "; ".join(
-        f"{e['field'] or 'body'} ({e['problem'].removeprefix('Value error, ')})" for e in errors[:5]
-    )
+    errors = []
+    for e in exc.errors():
+        field, problem = _field_problem(e)
+        errors.append({"field": field, "problem": problem, "type": e.get("type")})
+    names = "; ".join(f"{e['field'] or 'body'} ({e['problem']})" for e in errors[:5])
     return problem_response(
         422,
         "Invalid request",
@@ -95,10 +102,23 @@ _TITLES = {
 }
 
 
+def _unparsable(cause: BaseException) -> str:
+    """Why FastAPI could not parse a body (it raises a bare 400 with the cause chained)."""
+    if isinstance(cause, RecursionError):
+        return "the JSON body nests too deeply"
+    if isinstance(cause, UnicodeDecodeError):
+        return f"the body is not valid UTF-8 (byte {cause.object[cause.start : cause.start + 1]!r} at position {cause.start})"
+    if isinstance(cause, ValueError) and "digits" in str(cause):
+        return f"a number in the JSON body is too long ({cause})"
+    return f"the body could not be parsed ({type(cause).__name__})"
+
+
 def _http(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, StarletteHTTPException)
     title, slug = _TITLES.get(exc.status_code, ("Error", "error"))
     detail = exc.detail if isinstance(exc.detail, str) else title
+    if exc.status_code == 400 and exc.__cause__ is not None:
+        title, slug, detail = "Unreadable body", "unreadable-body", _unparsable(exc.__cause__)
     if exc.status_code == 404 and detail == "Not Found":
         detail = f"no route matches {request.method} {request.url.path}"
     if exc.status_code == 405:

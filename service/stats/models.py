@@ -226,7 +226,8 @@ def _check(name: str, p: _Param, v: Any, fkeys: list[str], mkeys: list[str]) -> 
         ok_type = isinstance(v, int) and not isinstance(v, bool)
         if p.kind == "float":
             ok_type = ok_type or (isinstance(v, float) and math.isfinite(v))
-        lo_ok = v > p.lo if p.lo_open else v >= p.lo
+        # the type first: comparing a text value with a bound would raise TypeError (a 500)
+        lo_ok = ok_type and (v > p.lo if p.lo_open else v >= p.lo)
         if not ok_type or not lo_ok or not v <= p.hi:
             lo = "(" if p.lo_open else "["
             rng = p.note or f"in {lo}{p.lo:g}, {p.hi:g}]"
