@@ -155,8 +155,20 @@ def _reads_raw_upload(openapi_extra: dict[str, Any] | None) -> bool:
     return any(media in content for media in UPLOAD_TYPES)
 
 
+def _no_nul_in_path(request: Request) -> None:
+    """A path segment is text that may reach the store, and no store keeps NUL (PostgreSQL
+    refuses it): refuse it for every route here, whatever its own pattern says."""
+    bad = [k for k, v in request.path_params.items() if isinstance(v, str) and "\x00" in v]
+    if bad:
+        raise InvalidInput(
+            f"path segment '{bad[0]}' holds a NUL character",
+            errors=[{"field": f"path.{k}", "problem": "holds a NUL character"} for k in bad],
+        )
+
+
 class LimitedRoute(APIRoute):
-    """The route class of every router but the lookup routes': the body is read here, at most
+    """The route class of every router but the lookup routes': path segments holding NUL are
+    refused, and the body is read here, at most
     APPORTION_MAX_JSON_BYTES of it, before FastAPI parses it (FastAPI then reuses the bytes read).
 
     The declared Content-Length is checked first; a body sent without one (chunked) is counted as
@@ -166,10 +178,16 @@ class LimitedRoute(APIRoute):
 
     def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
         handler = super().get_route_handler()
+
+        async def checked(request: Request) -> Response:
+            _no_nul_in_path(request)
+            return await handler(request)
+
         if _reads_raw_upload(self.openapi_extra):
-            return handler
+            return checked
 
         async def limited(request: Request) -> Response:
+            _no_nul_in_path(request)
             limit = request.app.state.services.settings.max_json_bytes
             declared = request.headers.get("content-length", "")
             if declared.isdigit() and int(declared) > limit:
