@@ -74,7 +74,7 @@ def index_page() -> HTMLResponse:
 
 
 @router.get("/plans/{plan}/versions/{version}", response_class=HTMLResponse)
-def version_page(plan: PlanKey, version: int) -> HTMLResponse:
+def version_page(plan: PlanKey, version: VersionPath) -> HTMLResponse:
     return _html(
         pages.shell(
             title=f"{plan} version {version}",
