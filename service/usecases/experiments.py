@@ -6,8 +6,8 @@ from __future__ import annotations
 import hashlib
 import os
 import tempfile
-from collections.abc import Callable
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
