@@ -19,10 +19,10 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import BACKENDS, PG_URL, _reset_postgres
+from conftest import BACKENDS, PG_URL
 from fastapi.testclient import TestClient
 from sqlalchemy import inspect, text
-from support import Keys, draft_plan, make_keys, make_settings, scenario_model
+from support import Keys, draft_plan, make_keys, make_settings, reset_postgres, scenario_model
 
 from service.app import create_app
 
@@ -42,7 +42,7 @@ def seeded(request: pytest.FixtureRequest, tmp_path_factory) -> Iterator[tuple[T
         url = f"sqlite:///{tmp_path_factory.mktemp('corpus')}/apportion.db"
     else:
         assert PG_URL
-        url = _reset_postgres(PG_URL)
+        url = reset_postgres(PG_URL)
     app = create_app(make_settings(url))
     with TestClient(app, raise_server_exceptions=False) as client:
         keys = make_keys(app.state.services)

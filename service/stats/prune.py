@@ -63,7 +63,9 @@ def penalty_grid(sequence: list[tuple[float, int]]) -> list[float]:
     """0 and the geometric midpoints of consecutive breakpoints, as CART does."""
     alphas = sorted({a for a, _ in sequence})
     grid = [0.0]
-    for a, b in zip(alphas, alphas[1:] + [alphas[-1] * 2 if alphas else 1.0], strict=True):
+    if not alphas:  # a tree without splits has nothing to prune: only the zero penalty
+        return grid
+    for a, b in zip(alphas, alphas[1:] + [alphas[-1] * 2], strict=True):
         grid.append(float(np.sqrt(a * b)) if a > 0 else b / 2)
     return sorted(set(grid))
 
