@@ -98,13 +98,13 @@ def read_upload(
     for c in sorted(c for c, k in Counter(names).items() if k > 1):
         problems.add(c, "column appears more than once in the header")
     problems.raise_if_any()
-    _check_text(table, problems)
+    check_text(table, problems)
     problems.raise_if_any()
     keep = [c for c in wanted if c in table.column_names]
     return table.select(keep), names
 
 
-def _check_text(table: pa.Table, problems: Problems) -> None:
+def check_text(table: pa.Table, problems: Problems) -> None:
     """Text columns must hold valid UTF-8 (Parquet readers do not check it; a bad value would
     fail later, far from the upload)."""
     for name in table.column_names:

@@ -171,14 +171,34 @@ class JsonShapeScreen:
 
 def screen_text(body: bytes, fmt: str, problems: Problems) -> None:
     """Run the screens a text format needs (CSV, NDJSON); Parquet is binary and self-describing."""
+    screen_blocks(_blocks(body), fmt, problems)
+
+
+def screen_file(path: str, fmt: str, problems: Problems) -> None:
+    """The same screens over an upload spooled to disk, read a block at a time (memory bounded)."""
+
+    def blocks() -> Iterable[bytes]:
+        with open(path, "rb") as f:
+            while block := f.read(_BLOCK):
+                yield block
+
+    screen_blocks(blocks(), fmt, problems)
+
+
+def screen_blocks(blocks: Iterable[bytes], fmt: str, problems: Problems) -> None:
+    """Line ends (judged on the first block's first line), UTF-8 and, for NDJSON, nesting and
+    width, fed block by block; stops at the first block that finds a problem."""
     if fmt not in ("csv", "ndjson"):
-        return
-    check_line_ends(body, fmt, problems)
-    if problems:
         return
     utf8 = Utf8Screen(fmt, problems)
     shape = JsonShapeScreen(problems) if fmt == "ndjson" else None
-    for block in _blocks(body):
+    first = True
+    for block in blocks:
+        if first:
+            check_line_ends(block, fmt, problems)
+            if problems:
+                return
+            first = False
         utf8.feed(block)
         if shape is not None:
             shape.feed(block)

@@ -33,9 +33,10 @@ from service.stats.table import FeatureSpec, MetricSpec
 
 from .columns import plain, to_labels
 from .dataset import DatasetSpec, DatasetWriter, Manifest
-from .formats import _read_ndjson, _unreadable
+from .formats import _read_ndjson, _unreadable, check_text
 from .parse import _arm_order, _arms, _components, _features, _names
 from .problems import Problems
+from .screen import check_names, screen_file
 
 BATCH_BYTES = 8 << 20  # CSV / NDJSON bytes per batch
 BATCH_ROWS = 1 << 17  # Parquet rows per batch
@@ -87,6 +88,15 @@ def file_source(path: str, fmt: str, problems: Problems) -> Source:
     if os.path.getsize(path) == 0 or _blank(path):
         problems.add(None, "the upload is empty")
         problems.raise_if_any()
+    screen_file(path, fmt, problems)
+    problems.raise_if_any()
+    source = _file_source(path, fmt, problems)
+    check_names(source.names, problems)
+    problems.raise_if_any()
+    return source
+
+
+def _file_source(path: str, fmt: str, problems: Problems) -> Source:
     if fmt == "csv":
         return _csv_source(path, problems)
     if fmt == "parquet":
@@ -98,9 +108,12 @@ def file_source(path: str, fmt: str, problems: Problems) -> Source:
 
         def parquet_batches(_t: set[str], _n: set[str], include: list[str]):  # type: ignore[no-untyped-def]
             try:
-                yield from pq.ParquetFile(path).iter_batches(
+                for batch in pq.ParquetFile(path).iter_batches(
                     batch_size=BATCH_ROWS, columns=include, use_threads=True
-                )
+                ):
+                    check_text(pa.Table.from_batches([batch]), problems)
+                    problems.raise_if_any()
+                    yield batch
             except (pa.ArrowException, OSError, ValueError) as exc:
                 raise _unreadable("Parquet", exc) from exc
 
