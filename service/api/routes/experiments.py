@@ -11,7 +11,7 @@ from starlette.concurrency import run_in_threadpool
 
 from service.api.body import UPLOAD_TYPES, GuardedRoute, read_limited, spool_upload
 from service.api.deps import AnalystDep, ReaderDep, ServicesDep
-from service.api.fields import ShortText, VersionPath
+from service.api.fields import NO_NUL, ShortText, VersionPath
 from service.api.params import KEY_PATTERN, ExperimentKey
 from service.errors import InvalidInput
 from service.usecases import experiments as uc
@@ -25,7 +25,9 @@ class ReadoutSourceIn(BaseModel):
     """A readout by reference: a Parquet dataset the service may read (see the route)."""
 
     model_config = {"extra": "forbid"}
-    source: str = Field(min_length=1, max_length=2000, description="file, directory or glob URI")
+    source: str = Field(
+        min_length=1, max_length=2000, pattern=NO_NUL, description="file, directory or glob URI"
+    )
     partitioning: Literal["hive"] | None = Field(
         None, description="'hive' when directories name partition columns (key=value)"
     )
