@@ -12,6 +12,10 @@ assignment, no correlation between experiments, i.e. between salts).
 
 The first 8 digest bytes give a 64-bit integer; its top 53 bits times 2**-53 give a float in
 [0, 1) exactly (dividing all 64 bits by 2**64 could round up to 1.0).
+
+The BLAKE2b configuration and the draw itself live in the dependency-free evaluator
+(`service.lookup.hash_state`, `service.lookup.draw`); this module adds the server's side: the
+salt string and its checks, member id normalisation, and the vectorised draws of the batch path.
 """
 
 from __future__ import annotations
@@ -24,6 +28,7 @@ from typing import Any
 
 import numpy as np
 
+from service import lookup
 from service.errors import InvalidInput
 
 _SCALE = 2.0**-53
@@ -53,7 +58,7 @@ def hash_state(salt: str, purpose: str) -> Any:
     person = purpose.encode("utf-8")
     if not person or len(person) > MAX_PURPOSE_BYTES:
         raise InvalidInput(f"purpose must be 1 to {MAX_PURPOSE_BYTES} bytes long, got {purpose!r}")
-    return hashlib.blake2b(digest_size=8, salt=param_salt, person=person)
+    return lookup.hash_state(param_salt, purpose)
 
 
 def normalise_member_id(member_id: Any) -> str:
@@ -81,16 +86,10 @@ def normalise_member_id(member_id: Any) -> str:
 
 def unit_uniform(salt: str, member_id: str, purpose: str) -> float:
     """A draw in [0, 1) fixed by (salt, normalised member id, purpose)."""
-    h = hash_state(salt, purpose).copy()
-    h.update(normalise_member_id(member_id).encode("utf-8"))
-    return (int.from_bytes(h.digest(), "big") >> 11) * _SCALE
+    return lookup.draw(hash_state(salt, purpose), normalise_member_id(member_id).encode("utf-8"))
 
 
-def uniform_from_state(state: Any, member: bytes) -> float:
-    """The draw for an already normalised, encoded id from a `hash_state` (the fast path)."""
-    h = state.copy()
-    h.update(member)
-    return (int.from_bytes(h.digest(), "big") >> 11) * _SCALE
+uniform_from_state = lookup.draw  # the draw for an already normalised, encoded id
 
 
 def uniforms_from_state(state: Any, members: Iterable[bytes]) -> np.ndarray:

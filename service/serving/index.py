@@ -20,9 +20,8 @@ route) raises InvalidInput naming the feature and the member. bool is not numeri
 
 from __future__ import annotations
 
-from bisect import bisect_right
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, fields
+from dataclasses import fields
 from itertools import compress, repeat
 from operator import itemgetter
 from types import MappingProxyType
@@ -31,15 +30,17 @@ from typing import Any
 import numpy as np
 
 from service.errors import InvalidInput
+from service.lookup import Answer
+from service.lookup import Plan as PortablePlan
 from service.serving.hashing import (
     check_salt,
     hash_state,
     new_salt,
     normalise_member_id,
-    uniform_from_state,
     uniforms_from_state,
     unit_uniform,
 )
+from service.serving.portable import compiled_document
 from service.stats.partition import Partition
 from service.stats.table import FeatureSpec
 
@@ -56,25 +57,9 @@ _EXACT_INT = 2**53  # ints up to this size compare with a float64 threshold as t
 _SHARE_TOL = 1e-6  # an allocation row may miss 1 by this much (solver rounding); it is renormalised
 
 
-@dataclass(frozen=True)
-class Assignment:
-    """The answer to one lookup. Equal inputs give equal (and, in a batch, shared) objects."""
-
-    arm: str
-    cohort: int
-    plan_version: int
-    holdout: bool
-    defaults_used: tuple[str, ...] = ()
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "arm": self.arm,
-            "cohort": self.cohort,
-            "plan_version": self.plan_version,
-            "holdout": self.holdout,
-            "defaults_used": list(self.defaults_used),
-        }
-
+# The answer type is the portable evaluator's (service/lookup.py): the server's single lookup runs
+# that module's walk and draws, so the two evaluators share one implementation.
+Assignment = Answer
 
 _FIELDS = tuple(f.name for f in fields(Assignment))
 
@@ -134,6 +119,15 @@ def _numeric_value(key: str, v: Any, member: str, index: int | None = None) -> f
         raise _type_error(key, member, "a number within the float64 range", v, index) from None
 
 
+def _fix(key: str, numeric: bool, v: Any, member: str) -> Any:
+    """The server's `Fix` for the portable evaluator's walk (service/lookup.py): a numpy scalar
+    or an int that float64 would round is compared as the double the batch path compares; a NaN
+    level is missing; anything else of the wrong type raises InvalidInput naming the feature."""
+    if numeric:
+        return _numeric_value(key, v, member)
+    return _categorical_value(key, v, member)
+
+
 def _categorical_value(key: str, v: Any, member: str, index: int | None = None) -> str | None:
     """The level (None when missing: None or a float NaN); raises for numbers, bools, lists..."""
     if v is None:
@@ -178,7 +172,7 @@ class CompiledPlan:
         "node_cohort",
         "_feature_keys",
         "_checks",
-        "_root",
+        "_kernel",
         "_cum_lists",
         "_holdout_index",
         "_holdout_state",
@@ -227,9 +221,10 @@ class CompiledPlan:
         feats = partition.features
         s(self, "_feature_keys", tuple(f.key for f in feats))
         s(self, "_checks", tuple((f.key, f.kind == "numeric") for f in feats))
-        self._compile_single(partition)
         self._compile_flat(partition)
         s(self, "_portable", [])  # the portable document, made on first request (portable.py)
+        # the single lookup: the portable evaluator reading this version's own document
+        s(self, "_kernel", PortablePlan.from_document(compiled_document(self)))
 
     def __setattr__(self, name: str, value: Any) -> None:
         raise AttributeError(f"CompiledPlan is immutable; cannot set {name!r}")
@@ -241,41 +236,6 @@ class CompiledPlan:
         )
 
     # ---- compilation ---------------------------------------------------------------------------
-    def _compile_single(self, p: Partition) -> None:
-        """Nested tuples (key, is_numeric, threshold, level->goes_left, left, right, default_left,
-        feature_index, cohort), built bottom-up so the walk follows references, not indices."""
-        built: dict[int, tuple[Any, ...]] = {}
-        order: list[int] = []
-        stack = [0]
-        while stack:  # pre-order, then build in reverse so children exist before parents
-            nd = stack.pop()
-            order.append(nd)
-            if p.feature[nd] >= 0:
-                stack.extend((int(p.left[nd]), int(p.right[nd])))
-        for nd in reversed(order):
-            fi = int(p.feature[nd])
-            if fi < 0:
-                built[nd] = (None, False, 0.0, None, None, None, True, -1, int(p.cohort[nd]))
-                continue
-            f = p.features[fi]
-            numeric = f.kind == "numeric"
-            levels: dict[str, bool] | None = None
-            if not numeric:
-                levels = dict.fromkeys(p.right_levels[nd], False)
-                levels.update(dict.fromkeys(p.left_levels[nd], True))  # left wins, as in route
-            built[nd] = (
-                f.key,
-                numeric,
-                float(p.threshold[nd]) if numeric else 0.0,
-                levels,
-                built[int(p.left[nd])],
-                built[int(p.right[nd])],
-                bool(p.default_left[nd]),
-                fi,
-                -1,
-            )
-        object.__setattr__(self, "_root", built[0])
-
     def _compile_flat(self, p: Partition) -> None:
         """Flat arrays for the vectorised walk. Leaves point at themselves so the walk can run a
         fixed `depth` steps; categorical levels get one code space per feature, and the code
@@ -341,67 +301,7 @@ class CompiledPlan:
                 f"features of member '{member}' must be an object, got {type(features).__name__}",
                 errors=[{"field": "features", "member_id": member}],
             )
-        get = features.get
-        fixed: dict[str, Any] | None = None
-        for key, numeric in self._checks:
-            v = get(key)
-            if v is None:
-                continue
-            t = type(v)
-            if numeric:
-                if t is float or (t is int and -_EXACT_INT <= v <= _EXACT_INT):
-                    continue
-                # a numpy scalar, or an int that float64 would round: compared as the double
-                # the batch path and the portable evaluators compare
-                norm: Any = _numeric_value(key, v, member)
-            elif t is str:
-                continue
-            else:
-                norm = _categorical_value(key, v, member)  # NaN -> None, str subclass -> str
-            fixed = {key: norm} if fixed is None else {**fixed, key: norm}
-        if fixed is not None:  # rare: compare exactly as the batch path does (float64, str)
-            get = {**features, **fixed}.get
-
-        node = self._root
-        defaults: list[int] | None = None
-        while True:
-            key = node[0]
-            if key is None:
-                break
-            v = get(key)
-            if node[1]:  # numeric: x < threshold goes left; None / NaN take the default
-                if v is None or v != v:
-                    side = node[6]
-                    if defaults is None:
-                        defaults = [node[7]]
-                    else:
-                        defaults.append(node[7])
-                else:
-                    side = v < node[2]
-            else:
-                side = node[3].get(v)  # None, NaN or an unseen level -> None -> default
-                if side is None:
-                    side = node[6]
-                    if defaults is None:
-                        defaults = [node[7]]
-                    else:
-                        defaults.append(node[7])
-            node = node[4] if side else node[5]
-        cohort = node[8]
-        used: tuple[str, ...] = ()
-        if defaults is not None:
-            keys = self._feature_keys
-            used = tuple(keys[i] for i in sorted(set(defaults)))
-
-        encoded = member.encode("utf-8")
-        if (
-            self.holdout_share > 0.0
-            and uniform_from_state(self._holdout_state, encoded) < self.holdout_share
-        ):
-            return Assignment(self.holdout_arm, cohort, self.version, True, used)
-        u2 = uniform_from_state(self._arm_state, encoded)
-        arm = bisect_right(self._cum_lists[cohort], u2)  # first j with cum[j] > u2
-        return Assignment(self.arm_keys[arm], cohort, self.version, False, used)
+        return self._kernel.answer(member, features, _fix)
 
     # ---- batch lookups ---------------------------------------------------------------------------
     def assign_batch(

@@ -14,9 +14,10 @@ from __future__ import annotations
 
 import hashlib
 import json
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from service.serving.index import CompiledPlan
+if TYPE_CHECKING:  # index.py builds its single-lookup evaluator from this document
+    from service.serving.index import CompiledPlan
 
 FORMAT = "apportion-compiled-plan"
 FORMAT_VERSION = 1
