@@ -113,3 +113,24 @@ def test_document_rejects_other_formats() -> None:
         Plan.from_document({**doc, "format_version": 2})
     with pytest.raises(PortableError, match="not a compiled plan"):
         Plan.from_document({**doc, "format": "something-else"})
+
+
+def test_digest_bounds_decide_exactly_as_the_float_draw() -> None:
+    """`digest < digest_bound(t)` is `u < t` for every draw u: checked at the thresholds where it
+    could go wrong (t equal to the draw, one double above and below it, 0 and 1) for 2,000
+    random digests, and at the extreme digests. The float side is the formula of the format
+    (docs/compiled-plan.md), computed with Python's own ints and floats."""
+    import math
+    import random
+
+    from service.lookup import digest_bound
+
+    rng = random.Random(11)
+    digests = [rng.getrandbits(64).to_bytes(8, "big") for _ in range(2000)]
+    digests += [b"\x00" * 8, b"\xff" * 8, (2047).to_bytes(8, "big"), (2048).to_bytes(8, "big")]
+    disagreements = 0
+    for d in digests:
+        u = (int.from_bytes(d, "big") >> 11) * 2.0**-53
+        for t in (u, math.nextafter(u, 2.0), math.nextafter(u, -1.0), 0.0, 1.0, rng.random()):
+            disagreements += (d < digest_bound(t)) != (u < t)
+    assert disagreements == 0
