@@ -89,6 +89,17 @@ def fold_ids(arm: np.ndarray, folds: int, seed: int) -> np.ndarray:
     return out
 
 
+def model_params_for(cand: Candidate, guardrails: tuple[Guardrail, ...], params: dict) -> dict:
+    """The cohort model's parameters for a candidate: a decision-focused method (policy tree,
+    distilled member-level models) prices the plan's guardrails while it splits, so it gets them
+    unless the caller set its own; other methods take no guardrails."""
+    if cand.model in cohort_models.DECISION_METHODS and params.get("guardrails") is None:
+        return {**params, "guardrails": [
+            {"metric": g.metric, "threshold": float(g.threshold), "unit": g.unit}
+            for g in guardrails]}  # fmt: skip
+    return params
+
+
 def run_pipeline(
     table: UnitTable,
     cand: Candidate,
@@ -101,7 +112,7 @@ def run_pipeline(
 ):
     """The candidate's plan on `table`: (cohort model fit, allocation (C, J), calibrated
     probabilities or None when no plan met the guardrails and control is served)."""
-    params = {"seed": seed, **(model_params or {})}
+    params = model_params_for(cand, guardrails, {"seed": seed, **(model_params or {})})
     fit = cohort_models.fit_cohort_model(table, cand.model, params, success_metric=success)
     problem = build_problem(shares=fit.shares, moments=fit.moments, metrics=table.metrics,
                             success=success, guardrails=guardrails)  # fmt: skip
