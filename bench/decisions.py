@@ -87,7 +87,8 @@ def _setup(spec: str, n: int, seed: int, conf: float):
             lifts = sc.true_lifts(tr["fv"], np.asarray(x)[cohort])
             lim = orc["limits"]
             return (lifts[sc.SUCCESS] / orc["lifts"][sc.SUCCESS],
-                    [lifts[k] > lim[k] + 1e-12 for k in lim], lifts[sc.SUCCESS])  # fmt: skip
+                    [lifts[k] > lim[k] + 1e-12 for k in lim], lifts[sc.SUCCESS],
+                    [lifts[k] for k in lim])  # fmt: skip
 
         return table, g, sc.SUCCESS, score
     design, sigma = spec.split(":")
@@ -98,7 +99,7 @@ def _setup(spec: str, n: int, seed: int, conf: float):
     def score(partition, x):
         true = d.plan_true_lifts(tr, partition, x)
         breach = [bool(v > lim + 1e-12) for v, lim in zip(true[1:], d.LIMITS, strict=True)]
-        return float(true[0] / tr.oracle[0]), breach, float(true[0])
+        return float(true[0] / tr.oracle[0]), breach, float(true[0]), true[1:].tolist()
 
     return table, g, d.SUCCESS, score
 
@@ -120,7 +121,7 @@ def run_one(job: dict) -> dict:
     fit = fit_cohort_model(table, cand.model, params, success_metric=success)
     problem = build_problem(shares=fit.shares, moments=fit.moments, metrics=table.metrics,
                             success=success, guardrails=g)  # fmt: skip
-    refused, covered, prob, centre, half = False, None, None, None, None
+    refused, covered, prob, centre, half, calib = False, None, None, None, None, None
     try:
         sol, cal, shrunk, _ = calibrated_solve(problem, cand.optimizer, cand.allocation, seed=seed)
         x = sol.allocation
@@ -129,17 +130,21 @@ def run_one(job: dict) -> dict:
         plug_sd = float(np.sqrt(np.sum((lin.p[:, None] * (x - lin.b)) ** 2 * lin.obj_var)))
         centre = sol.objective + cal.success_optimism
         half = Z95 * max(cal.success_sd, plug_sd, 1e-15)
+        calib = {"estimate": cal.estimate.tolist(), "optimism": cal.optimism.tolist(),
+                 "error_sd": cal.error_sd.tolist(), "margin": cal.margin.tolist(),
+                 "rounds": cal.rounds}  # fmt: skip
     except Infeasible:
         refused = True
         x = np.zeros((fit.partition.n_cohorts, table.n_arms))
         x[:, 0] = 1.0
     secs = time.perf_counter() - t0
-    capture, breach, true_success = score(fit.partition, x)
+    capture, breach, true_success, true_guard = score(fit.partition, x)
     if not refused:
         covered = bool(abs(true_success - centre) <= half)
     return {**job, "capture": float(capture), "breach": [bool(b) for b in breach],
             "covered": covered, "refused": refused, "probability": prob,
             "true_success": true_success, "reported_success": centre, "half_width": half,
+            "true_guardrails": [float(v) for v in true_guard], "calibration": calib,
             "cohorts": int(fit.partition.n_cohorts), "seconds": round(secs, 2)}  # fmt: skip
 
 

@@ -207,7 +207,22 @@ def fit_decision(
     del mu
     delta = np.einsum("njq,qm->njm", gamma - gamma[:, :1], tg.W)  # (n_s, J, 1 + K)
     del gamma
-    _, lam, _ = lagrange_lp(np.ones(1), delta.mean(axis=0)[None], tg.rhs)
+    n_e = max(e_rows.size, 1)
+
+    def effective_rhs(leaf: np.ndarray, x: np.ndarray) -> np.ndarray:
+        # the optimizer will hold each guardrail's estimate (on the n_e estimation rows) price_z
+        # of its sd below the threshold, so price the guardrails at that tighter threshold: the
+        # sd of the plan's estimate is the sd of its per-unit DR guardrail scores over sqrt(n_e)
+        if not p["price_z"] or not tg.rhs.size:
+            return tg.rhs
+        psi = np.einsum("nj,njk->nk", x[leaf], delta[..., 1:])
+        return np.maximum(tg.rhs - p["price_z"] * psi.std(axis=0) / np.sqrt(n_e), 0.0)
+
+    root = np.zeros(delta.shape[0], dtype=np.int64)
+    x0, lam, _ = lagrange_lp(np.ones(1), delta.mean(axis=0)[None], tg.rhs)
+    rhs = effective_rhs(root, x0)
+    if p["price_z"] and tg.rhs.size:
+        _, lam, _ = lagrange_lp(np.ones(1), delta.mean(axis=0)[None], rhs)
     rounds_out = []
     n_rounds = p["rounds"] if tg.rhs.size else 1
     seen: set[tuple] = set()
@@ -224,9 +239,12 @@ def fit_decision(
         sig = _signature(cand)
         _, leaf_s, n_leaves = _leaf_codes(cand, cs)
         shares, m = cell_means(leaf_s, n_leaves, delta)
-        _, lam_new, value = lagrange_lp(shares, m, tg.rhs)
+        priced = rhs
+        x_r, lam_new, value = lagrange_lp(shares, m, rhs)
+        rhs = effective_rhs(leaf_s, x_r)
         rounds_out.append({
             "prices_used": dict(zip(tg.keys[1:], np.round(lam, 6).tolist(), strict=True)),
+            "thresholds_priced": dict(zip(tg.keys[1:], np.round(priced, 8).tolist(), strict=True)),
             "leaves": n_leaves,
             "structure_value": round(value, 8),
             "prices_after": dict(zip(tg.keys[1:], np.round(lam_new, 6).tolist(), strict=True)),

@@ -105,6 +105,7 @@ _DECISION = {
     "guardrails": _Param("guardrails", None),
     "rounds": _Param("int", 3, lo=1, hi=10),
     "split_z": _Param("float", 1.0, lo=0.0, hi=10.0),
+    "price_z": _Param("float", 0.0, lo=0.0, hi=10.0),
     "folds": _Param("int", 3, lo=2, hi=10),
 }
 _BOOST = {

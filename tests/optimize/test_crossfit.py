@@ -10,8 +10,10 @@ from service.optimize.crossfit import (
     _scores,
     evaluate_candidates,
     fold_ids,
+    model_params_for,
     parse_candidates,
     registry,
+    run_pipeline,
 )
 from service.optimize.problem import Guardrail
 from service.stats import models as cohort_models
@@ -69,3 +71,20 @@ def test_held_out_lift_covers_the_truth_of_the_fold_plans():
     assert m["se"] >= m["se_within"] > 0
     assert out["recommended"] == "global/deterministic"
     assert row["status"] in ("verified", "unverified")
+
+
+def test_decision_focused_candidates_price_the_plans_guardrails():
+    # A policy tree splits where the constrained decision changes, which needs the guardrails'
+    # prices; the comparison and bench/decisions.py used to fit it without them, so it split on
+    # the success metric alone. Other methods take no guardrails; a caller's own are kept.
+    p = model_params_for(Candidate("policy_tree", "chance"), G, {"seed": 3})
+    assert p["seed"] == 3
+    assert [(g["metric"], g["threshold"]) for g in p["guardrails"]] == [("y1", 0.03), ("y2", 0.01)]
+    assert "guardrails" not in model_params_for(Candidate("causal_tree", "chance"), G, {})
+    own = [{"metric": "y1", "threshold": 0.05}]
+    assert model_params_for(Candidate("forest", "chance"), G, {"guardrails": own})["guardrails"] == own
+    table = d.simulate(20_000, "opposed", 0.5, 1)
+    fit, x, _ = run_pipeline(table, Candidate("policy_tree", "chance"), success="y0",
+                             guardrails=G, seed=0, draws=10)  # fmt: skip
+    assert [g["metric"] for g in fit.params["guardrails"]] == ["y1", "y2"]
+    assert x.shape == (fit.partition.n_cohorts, 4)

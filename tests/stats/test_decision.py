@@ -92,6 +92,22 @@ def test_policy_tree_splits_where_the_decision_changes_not_where_effects_vary():
     assert "x2" in tree.partition.used_features()
 
 
+def test_price_z_prices_the_guardrail_at_the_threshold_the_optimizer_will_hold():
+    # The calibrated optimizer keeps a guardrail's estimate about z sd below its threshold, so
+    # price_z prices it there. LP sensitivity (common practice): the optimum of a maximization LP
+    # is concave in a constraint's right-hand side, so a tighter threshold never lowers its price.
+    table = _design(20_000, seed=4)
+    guard = [{"metric": "harm", "threshold": 0.01}]
+    r = {}
+    for z in (0.0, 2.0):
+        fit = fit_cohort_model(table, "policy_tree", {"guardrails": guard, "max_depth": 1, "price_z": z})
+        r[z] = fit.diagnostics["rounds"][0]
+    assert r[0.0]["thresholds_priced"]["harm"] == pytest.approx(0.01)
+    # harm noise sd 0.3 on ~6,700 estimation rows per arm: the plan's sd is a few thousandths
+    assert 0.0 <= r[2.0]["thresholds_priced"]["harm"] < 0.01 - 0.002
+    assert r[2.0]["prices_used"]["harm"] >= r[0.0]["prices_used"]["harm"] - 1e-9
+
+
 @pytest.mark.parametrize("method", ["two_model", "forest"])
 def test_member_models_distil_into_the_decision_partition(method):
     table = _design(30_000, seed=5)
