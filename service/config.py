@@ -65,6 +65,13 @@ class Settings(BaseSettings):
     run_jobs_in_process: bool = Field(
         True, description="run fit and report jobs in a worker thread of the server"
     )
+    held_out_folds: int = Field(
+        5,
+        ge=0,
+        le=20,
+        description="folds of the cross-fitted held-out evaluation each plan draft queues as a "
+        "job (0 turns it off; the method comparison sets its own folds)",
+    )
     job_stale_seconds: float = Field(
         600.0, gt=0, description="a running job without a heartbeat this long is reclaimed"
     )

@@ -79,6 +79,9 @@ def make_settings(db_url: str, **overrides: object) -> Settings:
         "poll_interval_seconds": 0.2,
         "log_level": "WARNING",
         "db_pool_size": 10,
+        # each draft's cross-fitted held-out job refits its model per fold; the tests that read
+        # held-out figures turn it on (tests/api/test_held_out.py)
+        "held_out_folds": 0,
     }
     base.update(overrides)
     return Settings(**base)  # type: ignore[arg-type]

@@ -479,9 +479,7 @@ def render_version(v: dict[str, Any]) -> str:
             ),
         ]
     parts += render_prices((v.get("report") or {}).get("guardrail_prices") or [])
-    held = (v.get("report") or {}).get("held_out")
-    if isinstance(held, dict) and held.get("error"):
-        parts.append(f"held-out evaluation: {held['error']}")
+    parts += render_held_out((v.get("report") or {}).get("held_out"))
     diff = v.get("diff")
     if diff:
         parts += [
@@ -490,6 +488,28 @@ def render_version(v: dict[str, Any]) -> str:
             f"{diff['members']} readout members would change arm",
         ]
     return "\n".join(parts)
+
+
+def render_held_out(held: Any) -> list[str]:
+    """The draft's cross-fitted held-out evaluation: its figures, or why there are none yet."""
+    if not isinstance(held, dict):
+        return []
+    if held.get("status") != "complete":
+        why = held.get("error") or {"pending": "running (see its job)"}.get(
+            str(held.get("status")), str(held.get("status"))
+        )
+        return ["", f"held-out evaluation: {why}"]
+    table = [
+        [k, fmt_num(m["lift"]), fmt_num(m["se"]).lstrip("+"), fmt_num(m.get("threshold_absolute")),
+         "" if m.get("probability_holds") is None else f"{m['probability_holds']:.3f}"]
+        for k, m in (held.get("metrics") or {}).items()
+    ]  # fmt: skip
+    return [
+        "",
+        f"held-out evaluation ({held.get('folds')} folds the model and optimizer never saw; "
+        f"against all-control): {held.get('verdict')}",
+        format_table(table, ["metric", "lift", "se", "allowed", "P(holds)"]),
+    ]
 
 
 def render_prices(rows: list[dict[str, Any]]) -> list[str]:

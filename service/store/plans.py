@@ -101,10 +101,13 @@ def add_version(*, session: Session, **fields: Any) -> PlanVersion:
     return row
 
 
-def get_version(*, session: Session, plan: str, version: int) -> PlanVersion:
-    row = session.execute(
-        select(PlanVersion).where(PlanVersion.plan == plan, PlanVersion.version == version)
-    ).scalar_one_or_none()
+def get_version(
+    *, session: Session, plan: str, version: int, lock: bool = False
+) -> PlanVersion:
+    """One version; `lock` takes its row lock (level 4 of the lock order, store/db.py) for a
+    read-modify-write of its report by a job."""
+    q = select(PlanVersion).where(PlanVersion.plan == plan, PlanVersion.version == version)
+    row = session.execute(q.with_for_update() if lock else q).scalar_one_or_none()
     if row is None:
         raise NotFound(f"plan '{plan}' has no version {version}")
     return row

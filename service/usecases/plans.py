@@ -35,7 +35,6 @@ from service.usecases.experiments import load_readout_table, specs_of
 from service.usecases.models import moments_of
 
 INLINE_MAX_DRAWS = 1000  # larger impact reports run as a job
-HELD_OUT_FOLDS = 5
 ACTIVATABLE = ("approved", "superseded")
 
 
@@ -128,11 +127,14 @@ def _holdout(body: dict[str, Any], arm_keys: tuple[str, ...]) -> dict[str, Any]:
     return {"share": float(h["share"]), "arm": h["arm"]}
 
 
-def _evaluate(ctx: dict[str, Any], spec: dict[str, Any], seed: int) -> dict[str, Any]:
+def _evaluate(
+    ctx: dict[str, Any], spec: dict[str, Any], seed: int, folds: int, progress: Any = None
+) -> dict[str, Any]:
     """Honest held-out figures (issue 11 item 2): the whole pipeline (this model's method and
     parameters, the calibrated optimizer) is cross-fitted over folds of the readout, and each
     fold's plan is scored with doubly robust scores on the fold it never saw; see
-    service/optimize/crossfit.py. They estimate the procedure's lift against all-control."""
+    service/optimize/crossfit.py. They estimate the procedure's lift against all-control.
+    It refits the model once per fold, so it runs as a job (`held_out`), never in a request."""
     table: UnitTable = ctx["table"]
     params = dict((ctx.get("model_params") or {}).get("method_params") or {})
     cand = Candidate(ctx["model_method"], spec["method"], spec["allocation"])
@@ -141,17 +143,19 @@ def _evaluate(ctx: dict[str, Any], spec: dict[str, Any], seed: int) -> dict[str,
         [cand],
         success=spec["success_metric"],
         guardrails=_guardrails(spec),
-        folds=HELD_OUT_FOLDS,
+        folds=folds,
         seed=seed,
         model_params={cand.model: params},
+        progress=progress,
     )
     row = out["candidates"][0]
     return {
+        "status": "complete",
         "method": "cross-fitted: the model and the calibrated optimizer re-run without each fold, "
         "the fold's plan scored by doubly robust scores on that fold (against all-control)",
         "folds": out["folds"],
         "metrics": row["metrics"],
-        "status": row["status"],
+        "verdict": row["status"],
         "folds_without_plan": row["folds_without_plan"],
         "seconds": out["seconds"],
     }
@@ -290,6 +294,12 @@ def draft_version(
         job_id = None
     else:
         report = {"status": "pending", "calibration": cal_view}
+    folds = services.settings.held_out_folds
+    report["held_out"] = (
+        {"status": "pending", "folds": folds}
+        if folds
+        else {"status": "off", "reason": "APPORTION_HELD_OUT_FOLDS is 0 on this server"}
+    )
     alloc_view = _allocation_view(sol.allocation, ctx, shares)
     with services.db.write() as s:
         repo.ensure_pointer(session=s, plan=plan)  # level 2 (store/db.py): version numbers
@@ -316,6 +326,15 @@ def draft_version(
             )
             job_id = job.id
             row.report = {**row.report, "job": f"/v1/jobs/{job.id}"}
+        if folds:
+            ho_job = job_repo.create_job(
+                session=s, kind="held_out", payload={"plan": plan, "version": version}
+            )
+            job_id = job_id or ho_job.id
+            row.report = {
+                **row.report,
+                "held_out": {**report["held_out"], "job": f"/v1/jobs/{ho_job.id}"},
+            }
         audit.append(
             s,
             actor=actor,
@@ -358,15 +377,10 @@ def _full_report(
             row["arm_key"] = arm_keys[row["arm"]]
             if str(row.get("plan", "")).startswith("arm "):
                 row["plan"] = f"{arm_keys[row['arm']]} for everyone"
-    try:
-        held_out = _evaluate(ctx, spec, seed)
-    except InvalidInput as exc:  # e.g. too few rows for the folds: say why, do not fail the draft
-        held_out = {"error": exc.detail}
     return {
         **report,
         "status": "complete",
         "guardrail_prices": guardrail_sensitivity(problem, sol, seed=seed, options=options),
-        "held_out": held_out,
         "method": spec["method"],
         "allocation": spec["allocation"],
     }
@@ -416,8 +430,13 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
     with services.db.write() as s:  # lock order (store/db.py): plan, job row, version row
         repo.pointer(session=s, plan=plan, lock=True)
         job_repo.finish(session=s, job_id=job.id)
-        row = repo.get_version(session=s, plan=plan, version=version)
-        row.report = {**report, "solution": row.report.get("solution"), "job": f"/v1/jobs/{job.id}"}
+        row = repo.get_version(session=s, plan=plan, version=version, lock=True)
+        row.report = {
+            **report,
+            "held_out": row.report.get("held_out"),  # its own job writes it
+            "solution": row.report.get("solution"),
+            "job": f"/v1/jobs/{job.id}",
+        }
         audit.append(
             s,
             actor=Actor("report-job", "analyst"),
@@ -426,6 +445,55 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
             entity_id=f"{plan}/{version}",
             payload={"draws": spec["draws"], "job": job.id},
         )
+
+
+@jobs.handler("held_out")
+def _run_held_out(services: Services, job: Job, progress: Any) -> None:
+    """The draft's cross-fitted held-out evaluation (`_evaluate`), written into its report."""
+    plan, version = job.payload["plan"], int(job.payload["version"])
+    with services.db.read() as s:
+        row = repo.get_version(session=s, plan=plan, version=version)
+        spec = dict(row.spec)
+        folds = int((row.report.get("held_out") or {}).get("folds") or 0)
+    ctx = _model_context(services, int(spec["model_id"]))
+    try:
+        held_out = _evaluate(ctx, spec, int(spec["seed"]), folds, progress)
+    except InvalidInput as exc:  # e.g. too few rows for the folds: say why, keep the draft
+        held_out = {"status": "unavailable", "error": exc.detail}
+    _write_held_out(services, job, plan, version, {**held_out, "job": f"/v1/jobs/{job.id}"})
+
+
+def _write_held_out(
+    services: Services, job: Job, plan: str, version: int, held_out: dict[str, Any]
+) -> None:
+    with services.db.write() as s:  # lock order (store/db.py): plan, job row, version row
+        repo.pointer(session=s, plan=plan, lock=True)
+        job_repo.finish(session=s, job_id=job.id)
+        _set_held_out(s, plan, version, held_out)
+        audit.append(
+            s,
+            actor=Actor("report-job", "analyst"),
+            action="plan.held_out",
+            entity="plan_version",
+            entity_id=f"{plan}/{version}",
+            payload={"status": held_out["status"], "folds": held_out.get("folds"), "job": job.id},
+        )
+
+
+def _set_held_out(session: Any, plan: str, version: int, held_out: dict[str, Any]) -> None:
+    row = repo.get_version(session=session, plan=plan, version=version, lock=True)
+    row.report = {**row.report, "held_out": held_out}
+
+
+def _on_held_out_failed(session: Any, job: Job, message: str) -> None:
+    """A failed or reclaimed evaluation says so in the report instead of staying pending (the job
+    row is locked already, so this takes the version row alone: levels 3 then 4)."""
+    plan, version = job.payload["plan"], int(job.payload["version"])
+    _set_held_out(session, plan, version,
+                  {"status": "failed", "error": message, "job": f"/v1/jobs/{job.id}"})  # fmt: skip
+
+
+jobs.FAILURE_HOOKS["held_out"] = _on_held_out_failed
 
 
 # ---- reading -----------------------------------------------------------------------------------

@@ -38,6 +38,7 @@ ACTION_TEXT = {
     "plan.activate": "made live",
     "plan.rollback": "rolled back",
     "plan.report": "report attached",
+    "plan.held_out": "held-out evaluation attached",
 }
 
 
@@ -341,38 +342,42 @@ def _comparison_section(v: dict[str, Any], rows: list[MetricRow]) -> str:
 
 
 def _held_out_section(v: dict[str, Any], rows: list[MetricRow]) -> str:
+    """The cross-fitted held-out evaluation (its own job, so it may still be running)."""
     ho = (v.get("report") or {}).get("held_out")
     if not isinstance(ho, dict):
         return ""
-    if "error" in ho:
-        return (
-            f'<section id="held-out"><h2>Held-out evaluation</h2><p class="muted">Not available: '
-            f"{e(ho['error'])}</p></section>"
-        )
+    head = '<section id="held-out"><h2>Held-out evaluation</h2>'
+    status = ho.get("status")
+    if status != "complete":
+        why = {
+            "pending": "Running: the model and optimizer are re-run without each fold. "
+            "Reload the page when the job is done.",
+            "off": "Not computed on this server.",
+        }.get(str(status), f"Not available: {ho.get('error', status)}")
+        return f'{head}<p class="muted">{e(why)}</p></section>'
     kinds = {r.metric: r.kind for r in rows}
     body = []
-    for key, entry in ho.items():
-        if not isinstance(entry, dict) or "lift" not in entry:
-            continue
+    for key, entry in (ho.get("metrics") or {}).items():
         fmt = display(kinds.get(key, "mean"))[0]
-        lift = entry["lift"]
-        cells = []
-        for est in ("ipw", "dr"):
-            val, se = lift.get(est), lift.get(f"{est}_se")
-            cells.append(
-                "n/a"
-                if val is None
-                else f"{fmt(val)} \u00b1 {fmt(se).lstrip('+') if se is not None else 'n/a'}"
-            )
+        allowed = entry.get("threshold_absolute")
+        prob = entry.get("probability_holds")
         body.append(
-            f'<tr><th scope="row">{e(key)}</th><td>{e(cells[0])}</td><td>{e(cells[1])}</td></tr>'
+            f'<tr><th scope="row">{e(key)}</th><td>{e(fmt(entry["lift"]))} \u00b1 '
+            f"{e(fmt(entry['se']).lstrip('+'))}</td>"
+            f"<td>{'' if allowed is None else e(fmt(allowed))}</td>"
+            f"<td>{'' if prob is None else _pct(prob, 1)}</td></tr>"
         )
-    if not body:
-        return ""
+    verdict = {
+        "verified": "every guardrail holds on the held-out folds",
+        "unverified": "no guardrail is broken on the held-out folds, but not every one is "
+        "shown to hold",
+        "refused": "a guardrail is broken on the held-out folds",
+    }.get(str(ho.get("verdict")), str(ho.get("verdict")))
     return (
-        '<section id="held-out"><h2>Held-out evaluation</h2><p class="muted">Lift of the plan over the baseline '
-        "estimated on rows the model did not see (estimate \u00b1 standard error).</p><table><thead><tr>"
-        "<th>Metric</th><th>Inverse-propensity</th><th>Doubly robust</th></tr></thead>"
+        f'{head}<p class="muted">Lift against all-control on rows whose fold the model and '
+        f"the optimizer never saw ({e(ho.get('folds'))} folds; estimate \u00b1 standard error). "
+        f"Verdict: <strong>{e(verdict)}</strong>.</p><table><thead><tr><th>Metric</th>"
+        "<th>Held-out lift</th><th>Allowed</th><th>Holds (held-out)</th></tr></thead>"
         f"<tbody>{''.join(body)}</tbody></table></section>"
     )
 

