@@ -54,6 +54,7 @@ __all__ = [
 
 _NoneType = type(None)
 _EXACT_INT = 2**53  # ints up to this size compare with a float64 threshold as their double does
+_MAX_CACHED_ANSWERS = 65_536  # distinct batch answers kept per plan version (cleared when full)
 _SHARE_TOL = 1e-6  # an allocation row may miss 1 by this much (solver rounding); it is renormalised
 
 
@@ -173,6 +174,7 @@ class CompiledPlan:
         "_feature_keys",
         "_checks",
         "_kernel",
+        "_answers",
         "_cum_lists",
         "_holdout_index",
         "_holdout_state",
@@ -222,6 +224,7 @@ class CompiledPlan:
         s(self, "_feature_keys", tuple(f.key for f in feats))
         s(self, "_checks", tuple((f.key, f.kind == "numeric") for f in feats))
         self._compile_flat(partition)
+        s(self, "_answers", {})  # the batch path's answers, see _distinct
         s(self, "_portable", [])  # the portable document, made on first request (portable.py)
         # the single lookup: the portable evaluator reading this version's own document
         s(self, "_kernel", PortablePlan.from_document(compiled_document(self)))
@@ -411,9 +414,8 @@ class CompiledPlan:
                 continue
             if type(col) is not list and type(col) is not tuple:
                 col = list(col)
-            kinds = set(map(type, col))
             if numeric:
-                if kinds <= {float, int, _NoneType}:
+                if set(map(type, col)) <= {float, int, _NoneType}:
                     try:
                         xnum[fi] = np.array(col, dtype=np.float64)
                         continue
@@ -421,12 +423,20 @@ class CompiledPlan:
                         pass
                 xnum[fi] = [_numeric_value(key, v, members[i], i) for i, v in enumerate(col)]
             else:
+                # levels the plan knows are str, so only a value the table does not know
+                # (missing, unknown, or of another type) needs a look at its type
                 lut = self._level_codes[fi]
-                if kinds <= {str, _NoneType}:
-                    xcat[fi] = np.fromiter(map(lut.get, col, repeat(miss, n)), np.intp, n)
-                    continue
-                vals = [_categorical_value(key, v, members[i], i) for i, v in enumerate(col)]
-                xcat[fi] = np.fromiter(map(lut.get, vals, repeat(miss, n)), np.intp, n)
+                try:
+                    codes = np.fromiter(map(lut.get, col, repeat(miss, n)), np.intp, n)
+                except TypeError:  # an unhashable value (a list, an object): check them all
+                    vals = [_categorical_value(key, v, members[i], i) for i, v in enumerate(col)]
+                    codes = np.fromiter(map(lut.get, vals, repeat(miss, n)), np.intp, n)
+                for i in np.flatnonzero(codes == miss).tolist():
+                    v = col[i]
+                    if v is not None and type(v) is not str:
+                        v = _categorical_value(key, v, members[i], i)  # raises unless NaN or str
+                        codes[i] = miss if v is None else lut.get(v, miss)
+                xcat[fi] = codes
         return xnum, xcat
 
     def _walk(self, xnum: np.ndarray, xcat: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
@@ -466,6 +476,7 @@ class CompiledPlan:
         nf = len(keys)
         names: list[tuple[str, ...]] = [()]
         pattern = np.zeros(n, dtype=np.intp)
+        bits: np.ndarray | None = np.zeros(1, dtype=np.int64)  # each pattern's bits, if packed
         if used.any():
             rows = np.packbits(used, axis=0, bitorder="little")  # (ceil(F / 8), n) uint8
             if rows.shape[0] <= 7:  # the bit pattern as one int64: bit j = feature j
@@ -475,6 +486,7 @@ class CompiledPlan:
                 bits, pattern = _group(packed, 1 << nf)
                 names = [tuple(keys[j] for j in range(nf) if p >> j & 1) for p in bits.tolist()]
             else:
+                bits = None
                 _, first_p, pattern = np.unique(
                     used.T, axis=0, return_index=True, return_inverse=True
                 )
@@ -489,17 +501,26 @@ class CompiledPlan:
         rest, a_of = np.divmod(vals, n_arms)  # undo the code: arm, holdout, cohort, pattern
         rest, h_of = np.divmod(rest, 2)
         p_of, c_of = np.divmod(rest, n_cohorts)
-        arm_keys, version = self.arm_keys, self.version
-        objs = list(
-            map(
-                _new_assignment,
-                map(arm_keys.__getitem__, a_of.tolist()),
-                c_of.tolist(),
-                repeat(version, vals.size),
-                h_of.astype(bool).tolist(),
-                map(names.__getitem__, p_of.tolist()),
-            )
-        )
+        # The same answers recur from batch to batch: they are kept on the plan under a code
+        # that does not depend on the batch (the pattern's bits instead of its index here), so
+        # a batch builds objects only for answers no earlier batch had.
+        cache = self._answers
+        if bits is not None and nf < 62 - (n_cohorts * 2 * n_arms).bit_length():
+            stable = (((bits[p_of] * n_cohorts + c_of) * 2 + h_of) * n_arms + a_of).tolist()
+            objs: list[Any] = list(map(cache.get, stable))
+        else:
+            stable, objs = None, [None] * vals.size
+        todo = [i for i, o in enumerate(objs) if o is None]
+        if todo:
+            arm_keys, version = self.arm_keys, self.version
+            a_l, c_l, h_l, p_l = a_of.tolist(), c_of.tolist(), h_of.tolist(), p_of.tolist()
+            if stable is not None and len(cache) + len(todo) > _MAX_CACHED_ANSWERS:
+                cache.clear()
+            for i in todo:
+                a = _new_assignment(arm_keys[a_l[i]], c_l[i], version, h_l[i] == 1, names[p_l[i]])
+                objs[i] = a
+                if stable is not None:
+                    cache[stable[i]] = a
         return objs, inverse
 
 

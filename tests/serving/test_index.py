@@ -400,3 +400,24 @@ def test_batch_equals_single_with_many_features():
     single = [cp.assign(i, r) for i, r in zip(ids, rows, strict=True)]
     assert cp.assign_batch(ids, rows) == single
     assert len({a.defaults_used for a in single}) > 10
+
+
+def test_batch_answers_are_kept_between_calls_and_equal_the_single_path():
+    """A second batch reuses the answer objects of the first (the plan keeps them), and the
+    categorical fast path (codes first, types only where the table missed) still treats a NaN
+    level as missing, an unknown level as a default and a str subclass as its str."""
+
+    class Level(str):
+        pass
+
+    rng = np.random.default_rng(21)
+    cp = _plan(random_partition(rng, depth=6, n_cohorts=4), rng.dirichlet(np.ones(3), size=4))
+    ids, rows = _members(rng, 600)
+    odd = [float("nan"), "never-seen", Level("beginner"), np.str_("advanced"), None]
+    for i, r in enumerate(rows[:50]):
+        r["level"] = odd[i % len(odd)]
+    first = cp.assign_batch(ids, rows)
+    second = cp.assign_batch(list(reversed(ids)), list(reversed(rows)))
+    assert first == [cp.assign(m, r) for m, r in zip(ids, rows, strict=True)]
+    assert all(a is b for a, b in zip(first, reversed(second), strict=True))
+    assert len({id(a) for a in first}) < len(first)  # equal answers share one object

@@ -23,6 +23,8 @@ import json
 import logging
 import secrets
 import time
+from itertools import repeat
+from operator import itemgetter
 from typing import Annotated, Any, NotRequired
 
 import numpy as np
@@ -140,8 +142,10 @@ _JSON = b"application/json"
 _PROBLEM_TYPE = b"application/problem+json"
 # (plan, version, arm) -> the counter child; `labels()` costs more than the increment itself.
 _COUNTERS: dict[tuple[str, int, str], Any] = {}
-# (plan, version, arm, cohort, holdout, defaults) -> (JSON body, counter child) for single lookups.
-_ANSWERS: dict[tuple[Any, ...], tuple[bytes, Any]] = {}
+# id(answer) -> (answer, its JSON text, its JSON bytes, its arm's counter child). The compiled plan
+# shares equal answers between calls (service/lookup.py and the batch path keep them), so each
+# is encoded once; the entry holds the answer, so its id cannot be reused while it is cached.
+_ENCODED: dict[int, tuple[Any, str, bytes, Any]] = {}
 _MAX_CACHED = 65_536  # both caches are cleared when full (old plan versions drop out)
 
 
@@ -153,6 +157,16 @@ def _counter(plan: str, version: int, arm: str) -> Any:
             _COUNTERS.clear()
         child = _COUNTERS[key] = ASSIGNMENTS.labels(plan, str(version), arm)
     return child
+
+
+def _encoded(plan: str, a: Any) -> tuple[Any, str, bytes, Any]:
+    hit = _ENCODED.get(id(a))
+    if hit is None or hit[0] is not a:
+        text = json.dumps(a.to_dict())
+        if len(_ENCODED) >= _MAX_CACHED:
+            _ENCODED.clear()
+        hit = _ENCODED[id(a)] = (a, text, text.encode(), _counter(plan, a.plan_version, a.arm))
+    return hit
 
 
 def _compiled(services: Any, plan: str, header: str | None) -> Any:
@@ -186,44 +200,42 @@ def _invalid(exc: ValidationError) -> InvalidInput:
     return InvalidInput(f"the body does not match the schema: {names}{more}", errors=out)
 
 
-def answer_single(services: Any, plan: str, header: str | None, raw: bytes) -> bytes:
-    compiled = _compiled(services, plan, header)
+def _parse(adapter: TypeAdapter[Any], raw: bytes) -> Any:
+    """The body validated against the documented schema, or our 422 naming the fields."""
     try:
-        body = SINGLE.validate_json(raw)
+        return adapter.validate_json(raw)
     except ValidationError as exc:
         raise _invalid(exc) from None
-    a = compiled.assign(body["member_id"], body.get("features", {}))
-    key = (plan, a.plan_version, a.arm, a.cohort, a.holdout, a.defaults_used)
-    hit = _ANSWERS.get(key)
-    if hit is None:
-        if len(_ANSWERS) >= _MAX_CACHED:
-            _ANSWERS.clear()
-        hit = _ANSWERS[key] = (
-            json.dumps(a.to_dict()).encode(),
-            _counter(plan, a.plan_version, a.arm),
-        )
-    hit[1].inc()
-    return hit[0]
+
+
+_member_id = itemgetter("member_id")
+_EMPTY: dict[str, Any] = {}
+
+
+def answer_single(services: Any, plan: str, header: str | None, raw: bytes) -> bytes:
+    compiled = _compiled(services, plan, header)
+    body = _parse(SINGLE, raw)
+    hit = _encoded(plan, compiled.assign(body["member_id"], body.get("features", _EMPTY)))
+    hit[3].inc()
+    return hit[2]
 
 
 def answer_batch(services: Any, plan: str, header: str | None, raw: bytes) -> bytes:
     compiled = _compiled(services, plan, header)
-    try:
-        items = BATCH.validate_json(raw)["members"]
-    except ValidationError as exc:
-        raise _invalid(exc) from None
-    ids = [m["member_id"] for m in items]
-    feats = [m.get("features", {}) for m in items]
+    items = _parse(BATCH, raw)["members"]
+    ids = list(map(_member_id, items))
+    feats = list(map(dict.get, items, repeat("features"), repeat(_EMPTY)))
     distinct, index = compiled.assign_batch_compact(ids, feats)
-    counts: dict[str, int] = {}
-    for a, k in zip(distinct, np.bincount(index, minlength=len(distinct)).tolist(), strict=True):
-        counts[a.arm] = counts.get(a.arm, 0) + k
-    for arm, k in counts.items():
-        _counter(plan, compiled.version, arm).inc(k)
+    hits = [_encoded(plan, a) for a in distinct]
+    counts: dict[Any, int] = {}
+    for hit, k in zip(hits, np.bincount(index, minlength=len(hits)).tolist(), strict=True):
+        counts[hit[3]] = counts.get(hit[3], 0) + k
+    for child, k in counts.items():
+        child.inc(k)
     # each distinct answer is encoded once; the body is byte for byte what
     # json.dumps({"assignments": [a.to_dict() for a in out]}) gives
-    parts = np.empty(len(distinct), dtype=object)
-    parts[:] = [json.dumps(a.to_dict()) for a in distinct]
+    parts = np.empty(len(hits), dtype=object)
+    parts[:] = [h[1] for h in hits]
     return ('{"assignments": [' + ", ".join(parts.take(index).tolist()) + "]}").encode()
 
 
