@@ -9,7 +9,8 @@
     ├── Forbidden           403
     ├── NotFound            404
     ├── Conflict            409  a stale revision, a duplicate key
-    │   └── InvalidTransition 409  a lifecycle step that the version's state does not allow
+    │   ├── InvalidTransition 409  a lifecycle step that the version's state does not allow
+    │   └── JobLost         409  a worker's job was reclaimed while it ran (jobs only, never HTTP)
     └── NotReady            503
 
 Domain code raises these with messages that carry the values; it never imports the web layer.
@@ -88,3 +89,11 @@ class NotReady(ApportionError):
     status = 503
     title = "Not ready"
     slug = "not-ready"
+
+
+class JobLost(Conflict):
+    """The job was reclaimed (its heartbeat looked stale) while this worker still ran it: the
+    worker's late writes are refused and its transaction rolled back."""
+
+    def __init__(self, job_id: str) -> None:
+        super().__init__(f"job {job_id} was reclaimed while it ran; its result was not stored")

@@ -15,7 +15,7 @@ from typing import Any
 from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
-from service.errors import NotFound
+from service.errors import JobLost, NotFound
 from service.store.db import utcnow
 from service.store.tables import Job
 
@@ -65,28 +65,46 @@ def claim_next(
     return row
 
 
-def set_progress(*, session: Session, job_id: str, progress: float) -> None:
-    session.execute(
+def _held(job: Job) -> Any:
+    """The claim a worker holds: this job, still running, by this worker, on this attempt. A job
+    reclaimed while its worker was only slow (requeued, perhaps claimed again elsewhere) is no
+    longer held, so the old worker's late writes match no row."""
+    return (
+        (Job.id == job.id)
+        & (Job.status == "running")
+        & (Job.worker == job.worker)
+        & (Job.attempts == job.attempts)
+    )
+
+
+def set_progress(*, session: Session, job: Job, progress: float) -> bool:
+    """Progress and heartbeat; False when the job is no longer held (the worker should stop)."""
+    res = session.execute(
         update(Job)
-        .where(Job.id == job_id, Job.status == "running")
+        .where(_held(job))
         .values(progress=max(0.0, min(1.0, progress)), heartbeat_at=time.time())
     )
+    return bool(res.rowcount)
 
 
-def finish(*, session: Session, job_id: str) -> None:
-    session.execute(
+def finish(*, session: Session, job: Job) -> None:
+    """Mark a held job done; raises JobLost (rolling back the caller's transaction, and so the
+    result it was about to store) when the job was reclaimed meanwhile."""
+    res = session.execute(
         update(Job)
-        .where(Job.id == job_id)
+        .where(_held(job))
         .values(status="done", progress=1.0, finished_at=utcnow(), error=None)
     )
+    if not res.rowcount:
+        raise JobLost(job.id)
 
 
-def fail(*, session: Session, job_id: str, error: str) -> None:
-    session.execute(
-        update(Job)
-        .where(Job.id == job_id)
-        .values(status="failed", finished_at=utcnow(), error=error)
+def fail(*, session: Session, job: Job, error: str) -> bool:
+    """Mark a held job failed; False (and nothing written) when it was reclaimed meanwhile."""
+    res = session.execute(
+        update(Job).where(_held(job)).values(status="failed", finished_at=utcnow(), error=error)
     )
+    return bool(res.rowcount)
 
 
 def reclaim_stale(*, session: Session, stale_seconds: float) -> list[Job]:

@@ -8,10 +8,11 @@ import os
 import socket
 import threading
 import time
+import uuid
 from collections.abc import Callable
 from typing import Any
 
-from service.errors import ApportionError
+from service.errors import ApportionError, JobLost
 from service.observability import JOB_FAILURES, JOB_SECONDS
 from service.store import jobs as repo
 from service.store.tables import Job
@@ -50,18 +51,22 @@ def run_one(services: Services, worker: str) -> bool:
         if now - last[0] >= 0.2 or p >= 1.0:  # heartbeat at most five times a second
             last[0] = now
             with services.db.write() as s2:
-                repo.set_progress(session=s2, job_id=job.id, progress=p)
+                held = repo.set_progress(session=s2, job=job, progress=p)
+            if not held:  # reclaimed meanwhile: stop working on it
+                raise JobLost(job.id)
 
     try:
         HANDLERS[job.kind](services, job, progress)
+    except JobLost:  # another attempt owns the job now; write nothing
+        log.warning("job reclaimed while it ran", extra={"job_id": job.id, "kind": job.kind})
     except Exception as exc:  # the job fails; the worker lives on
         msg = exc.detail if isinstance(exc, ApportionError) else f"{type(exc).__name__}: {exc}"
         if not isinstance(exc, ApportionError):
             log.error("job failed", exc_info=exc, extra={"job_id": job.id, "kind": job.kind})
         JOB_FAILURES.labels(job.kind).inc()
         with services.db.write() as s3:
-            repo.fail(session=s3, job_id=job.id, error=msg[:2000])
-            _on_failed(s3, job, msg[:2000])
+            if repo.fail(session=s3, job=job, error=msg[:2000]):
+                _on_failed(s3, job, msg[:2000])
     else:
         JOB_SECONDS.labels(job.kind).observe(time.perf_counter() - start)
     return True
@@ -87,7 +92,9 @@ class JobRunner:
         self, services: Services, *, worker_name: str | None = None, idle_seconds: float = 0.5
     ) -> None:
         self.services = services
-        self.worker = worker_name or f"{socket.gethostname()}:{os.getpid()}"
+        # unique per runner: two apps in one process (tests, `--workers` forks) must not share
+        # the claim a job's writes are conditioned on (store/jobs.py `_held`)
+        self.worker = worker_name or f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
         self.idle = idle_seconds
         self._wake = threading.Event()
         self._stop = threading.Event()

@@ -122,7 +122,7 @@ def _run_fit(services: Services, job: Job, progress: Any) -> None:
     result = fit_result(fit, table.arm_keys, time.perf_counter() - t0)
     mask = np.packbits(np.asarray(fit.estimation_mask, dtype=bool)).tobytes()
     with services.db.write() as s:  # lock order (store/db.py): the job row, then the model's
-        job_repo.finish(session=s, job_id=job.id)
+        job_repo.finish(session=s, job=job)
         result["estimation_mask_blob"] = blobs.put_blob(session=s, data=mask)
         repo.set_result(session=s, model_id=model_id, status="done", result=result)
 

@@ -429,7 +429,7 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
     )
     with services.db.write() as s:  # lock order (store/db.py): plan, job row, version row
         repo.pointer(session=s, plan=plan, lock=True)
-        job_repo.finish(session=s, job_id=job.id)
+        job_repo.finish(session=s, job=job)
         row = repo.get_version(session=s, plan=plan, version=version, lock=True)
         row.report = {
             **report,
@@ -468,7 +468,7 @@ def _write_held_out(
 ) -> None:
     with services.db.write() as s:  # lock order (store/db.py): plan, job row, version row
         repo.pointer(session=s, plan=plan, lock=True)
-        job_repo.finish(session=s, job_id=job.id)
+        job_repo.finish(session=s, job=job)
         _set_held_out(s, plan, version, held_out)
         audit.append(
             s,

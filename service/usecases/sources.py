@@ -198,4 +198,4 @@ def _run_import(services: Services, job: Job, progress: Any) -> None:
     with services.db.write() as s:
         row = job_repo.get_job(session=s, job_id=job.id)
         row.payload = {**p, "result": {"readout_version": view["version"]}}
-        job_repo.finish(session=s, job_id=job.id)
+        job_repo.finish(session=s, job=job)

@@ -6,9 +6,11 @@ from __future__ import annotations
 import threading
 import time
 
+import pytest
 from support import make_settings
 
 from service.app import build_services
+from service.errors import JobLost
 from service.store import jobs as repo
 from service.store.migrate import upgrade
 from service.usecases import jobs as uc
@@ -30,7 +32,7 @@ def test_two_workers_never_run_the_same_job(db_url: str, monkeypatch) -> None:  
         with lock:
             runs.append((job.id, services.extras["name"]))
         with services.db.write() as s:
-            repo.finish(session=s, job_id=job.id)
+            repo.finish(session=s, job=job)
 
     monkeypatch.setitem(uc.HANDLERS, "probe", handler)
     a.extras["name"], b.extras["name"] = "a", "b"
@@ -115,4 +117,48 @@ def test_an_interrupted_fit_that_runs_out_of_attempts_leaves_its_model_failed(db
     model = models.get_model(services.db, model_id=started["model_id"])
     assert job["status"] == "failed" and job["error"].startswith("interrupted: no heartbeat")
     assert model["status"] == "failed" and model["error"] == job["error"]
+    services.db.dispose()
+
+
+def test_a_slow_worker_whose_job_was_reclaimed_stores_nothing(db_url: str, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """Issue 10: a job's finish was unconditional, so a worker that was only slow (its job
+    reclaimed and run again by another) overwrote the second run's result with its own. Writes are
+    now conditioned on the claim (job, worker, attempt); the late finish rolls its transaction back
+    and the late failure writes nothing."""
+    services = _services(db_url)
+    results: list[str] = []
+
+    def handler(services, job, progress):  # type: ignore[no-untyped-def]
+        with services.db.write() as s:
+            results.append(job.worker)  # "the result": kept only when the finish commits
+            repo.finish(session=s, job=job)
+
+    monkeypatch.setitem(uc.HANDLERS, "probe", handler)
+    with services.db.write() as s:
+        job_id = repo.create_job(session=s, kind="probe", payload={}).id
+    with services.db.write() as s:
+        slow = repo.claim_next(session=s, worker="slow", kinds=("probe",))
+        s.expunge(slow)
+    time.sleep(1.2)
+    uc.JobRunner(services, worker_name="fresh").reclaim()  # requeued: attempt 1 looked dead
+    assert uc.run_one(services, "fresh")  # attempt 2 runs and finishes
+    with services.db.read() as s:
+        done = repo.get_job(session=s, job_id=job_id)
+        assert done.status == "done" and done.worker == "fresh" and done.attempts == 2
+    # the slow attempt 1 now tries to finish, to fail, and to report progress: all refused
+    with pytest.raises(JobLost):
+        with services.db.write() as s:
+            repo.finish(session=s, job=slow)
+    with services.db.write() as s:
+        assert repo.fail(session=s, job=slow, error="late") is False
+        assert repo.set_progress(session=s, job=slow, progress=0.5) is False
+    with services.db.read() as s:
+        row = repo.get_job(session=s, job_id=job_id)
+        assert (row.status, row.worker, row.error, row.progress) == ("done", "fresh", None, 1.0)
+    services.db.dispose()
+
+
+def test_runners_in_one_process_have_distinct_names(db_url: str) -> None:
+    services = _services(db_url)
+    assert uc.JobRunner(services).worker != uc.JobRunner(services).worker
     services.db.dispose()
