@@ -268,7 +268,8 @@ def upload(
                 "units": {"plan": worst["n_plan"], "holdout": worst["n_holdout"]},
                 "alpha": worst["alpha"],
                 "upload": up.seq,
-                "uploaded_by": actor.name,
+                "uploaded_by": actor.identity,  # the owner: one person may hold several keys
+                "uploaded_with_key": actor.name,
                 "breached": [m["metric"] for m in enough],
             }
             try:
