@@ -139,6 +139,38 @@ def _csv_header(body: bytes) -> list[str]:
     return next(csv.reader(io.StringIO(line)), [])
 
 
+def csv_column_types(
+    include: list[str], text: set[str], number: set[str]
+) -> dict[str, pa.DataType]:
+    """Declared text columns as strings, metrics and numeric features as float64 (a column that
+    is both stays text); the rest Arrow infers."""
+    types: dict[str, pa.DataType] = {c: pa.string() for c in include if c in text}
+    types.update({c: pa.float64() for c in include if c in number and c not in text})
+    return types
+
+
+def csv_convert_options(types: dict[str, pa.DataType], include: list[str]) -> pacsv.ConvertOptions:
+    """An empty field is a missing value, quoted or not (the upload contract, README)."""
+    return pacsv.ConvertOptions(
+        column_types=types,
+        include_columns=include,
+        null_values=[""],
+        strings_can_be_null=True,
+        quoted_strings_can_be_null=True,
+    )
+
+
+def csv_collecting_bad_rows(bad: list[pacsv.InvalidRow]) -> pacsv.ParseOptions:
+    """Rows with the wrong number of fields are skipped and collected in `bad` so the reader
+    can list them all (with line numbers) instead of stopping at the first."""
+
+    def on_invalid(row: pacsv.InvalidRow) -> str:
+        bad.append(row)
+        return "skip"
+
+    return pacsv.ParseOptions(invalid_row_handler=on_invalid)
+
+
 def _read_csv(
     body: bytes, wanted: list[str], text: set[str], number: set[str], problems: Problems
 ) -> tuple[pa.Table, list[str]]:
@@ -149,26 +181,15 @@ def _read_csv(
     names = _csv_header(body)
     present = set(names)
     include = [c for c in wanted if c in present]
-    types = {c: pa.string() for c in include if c in text}
-    types.update({c: pa.float64() for c in include if c in number and c not in text})
+    types = csv_column_types(include, text, number)
     bad_rows: list[pacsv.InvalidRow] = []
-
-    def on_invalid(row: pacsv.InvalidRow) -> str:
-        bad_rows.append(row)
-        return "skip"
 
     def read(column_types: dict[str, pa.DataType], threads: bool) -> pa.Table:
         return pacsv.read_csv(
             pa.BufferReader(buf),
             read_options=pacsv.ReadOptions(use_threads=threads, block_size=_CSV_BLOCK),
-            parse_options=pacsv.ParseOptions(invalid_row_handler=on_invalid),
-            convert_options=pacsv.ConvertOptions(
-                column_types=column_types,
-                include_columns=include,
-                null_values=[""],
-                strings_can_be_null=True,
-                quoted_strings_can_be_null=True,
-            ),
+            parse_options=csv_collecting_bad_rows(bad_rows),
+            convert_options=csv_convert_options(column_types, include),
         )
 
     try:

@@ -33,7 +33,15 @@ from service.stats.table import FeatureSpec, MetricSpec
 
 from .columns import plain, to_labels
 from .dataset import DatasetSpec, DatasetWriter, Manifest
-from .formats import _read_ndjson, _unreadable, check_text
+from .formats import (
+    _CSV_CONVERSION,
+    _read_ndjson,
+    _unreadable,
+    check_text,
+    csv_collecting_bad_rows,
+    csv_column_types,
+    csv_convert_options,
+)
 from .parse import _arm_order, _arms, _components, _features, _names
 from .problems import Problems
 from .screen import check_names, screen_file
@@ -43,7 +51,6 @@ BATCH_ROWS = 1 << 17  # Parquet rows per batch
 DUPLICATES_MEMORY = "256MB"  # DuckDB's memory limit for the duplicate-id check (spills beyond)
 NDJSON_WHOLE_BYTES = 256 << 20  # NDJSON whose block types disagree is re-read whole up to this
 MAX_DISCOVERED_LEVELS = 10_000  # a categorical feature with more levels is not a feature
-_CSV_CONVERSION = re.compile(r"In CSV column #(\d+): .*conversion error")
 _JSON_MIXED = re.compile(r"Column\(/([^)]*)\) changed from (\w+) to (\w+) in row (\d+)")
 _HEADER_LIMIT = 1 << 20
 
@@ -142,25 +149,14 @@ def _csv_source(path: str, problems: Problems) -> Source:
     block = max(BATCH_BYTES, 2 * len(first) + 2)  # Arrow needs the header within the first block
 
     def csv_batches(text: set[str], number: set[str], include: list[str]):  # type: ignore[no-untyped-def]
-        types = {c: pa.string() for c in include if c in text}
-        types.update({c: pa.float64() for c in include if c in number and c not in text})
         bad: list[pacsv.InvalidRow] = []
-
-        def on_invalid(row: pacsv.InvalidRow) -> str:
-            bad.append(row)
-            return "skip"
-
         try:
             reader = pacsv.open_csv(
                 path,
                 read_options=pacsv.ReadOptions(use_threads=True, block_size=block),
-                parse_options=pacsv.ParseOptions(invalid_row_handler=on_invalid),
-                convert_options=pacsv.ConvertOptions(
-                    column_types=types,
-                    include_columns=include,
-                    null_values=[""],
-                    strings_can_be_null=True,
-                    quoted_strings_can_be_null=True,
+                parse_options=csv_collecting_bad_rows(bad),
+                convert_options=csv_convert_options(
+                    csv_column_types(include, text, number), include
                 ),
             )
             for batch in reader:
