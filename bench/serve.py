@@ -30,6 +30,7 @@ import argparse
 import json
 import os
 import re
+import resource
 import shutil
 import signal
 import socket
@@ -225,6 +226,7 @@ def run_wrk(
     body_file: Path | None,
     pid: int | None = None,
     threads: int = 1,
+    wrk_cpu: str | None = None,
 ) -> dict[str, Any]:
     cmd = [
         "wrk",
@@ -241,14 +243,20 @@ def run_wrk(
     ]
     if body_file is not None:
         cmd += ["--", str(body_file)]
+    if wrk_cpu is not None:  # pin the load generator, so it competes for one known core
+        cmd = ["taskset", "-c", wrk_cpu, *cmd]
     cpu0 = _cpu_seconds(pid) if pid else 0.0
+    kids0 = resource.getrusage(resource.RUSAGE_CHILDREN)
     out = subprocess.run(cmd, capture_output=True, text=True, check=True, timeout=seconds + 60)
+    kids1 = resource.getrusage(resource.RUSAGE_CHILDREN)
     cpu = _cpu_seconds(pid) - cpu0 if pid else float("nan")
+    wrk_cpu_s = (kids1.ru_utime - kids0.ru_utime) + (kids1.ru_stime - kids0.ru_stime)
     m = re.search(r"^RESULT (\{.*\})$", out.stdout, re.M)
     if not m:
         raise RuntimeError(f"no RESULT line from wrk: {out.stdout}\n{out.stderr}")
     res = json.loads(m.group(1))
     res["server_cpu_us_per_request"] = cpu / max(res["requests"], 1) * 1e6
+    res["wrk_cpu_us_per_request"] = wrk_cpu_s / max(res["requests"], 1) * 1e6
     return res
 
 
@@ -266,6 +274,37 @@ def http_batch(c: httpx.Client, h: dict[str, str], members: list[dict], repeats:
         if k:  # the first call warms up
             times.append(dt)
     return {"median_ms": statistics.median(times), "min_ms": min(times)}
+
+
+def alternate_batches(
+    p_lookup: int, p_ref: int, h: dict[str, str], members: list[dict], repeats: int
+) -> dict[str, Any]:
+    """The 10,000-member batch end to end on the lookup server and, alternately, the same body
+    on the reference server (which reads and parses it and answers a constant), so the ratio
+    says what the lookup adds to what the HTTP stack and a JSON parse cost on this machine."""
+    raw = json.dumps({"members": members}).encode()
+    hdr = {**h, "content-type": "application/json"}
+    times: dict[str, list[float]] = {"lookup": [], "reference": []}
+    with (
+        httpx.Client(base_url=f"http://127.0.0.1:{p_lookup}", timeout=600) as cl,
+        httpx.Client(base_url=f"http://127.0.0.1:{p_ref}", timeout=600) as cr,
+    ):
+        for k in range(repeats + 1):
+            for name, c in (("reference", cr), ("lookup", cl)):
+                t0 = time.perf_counter()
+                r = c.post(f"/v1/plans/{PLAN}/assign/batch", content=raw, headers=hdr)
+                r.read()
+                dt = (time.perf_counter() - t0) * 1e3
+                if r.status_code != 200:
+                    raise RuntimeError(f"{name} batch -> {r.status_code}: {r.text[:300]}")
+                if k:  # the first pair warms up
+                    times[name].append(dt)
+    lk, rf = statistics.median(times["lookup"]), statistics.median(times["reference"])
+    return {
+        "batch_lookup_ms": round(lk, 2),
+        "batch_reference_ms": round(rf, 2),
+        "batch_lookup_over_reference": round(lk / rf, 2),
+    }
 
 
 def _live_everywhere(c: httpx.Client, h: dict[str, str], body: dict, tries: int = 40) -> None:
@@ -298,13 +337,14 @@ def compare(
         rounds = []
         for _ in range(a.rounds):
             r = run_wrk(*[urls["reference"][0], auth, a.seconds, a.connections, bodies],
-                        urls["reference"][1], a.threads)  # fmt: skip
+                        urls["reference"][1], a.threads, a.wrk_cpu)  # fmt: skip
             s = run_wrk(*[urls["lookup"][0], auth, a.seconds, a.connections, bodies],
-                        urls["lookup"][1], a.threads)  # fmt: skip
+                        urls["lookup"][1], a.threads, a.wrk_cpu)  # fmt: skip
             for name, res in (("lookup", s), ("reference", r)):
                 if res["non_2xx"] or res["socket_errors"]:
                     raise RuntimeError(f"{name} run had errors: {res}")
             rounds.append((s, r))
+        batches = alternate_batches(p1, p2, keys["reader"], members[: a.batch], a.repeats)
     finally:
         _stop(lookup)
         _stop(ref)
@@ -327,6 +367,20 @@ def compare(
         ),
         "lookup_server_cpu_us": round(med(0, "server_cpu_us_per_request"), 1),
         "reference_server_cpu_us": round(med(1, "server_cpu_us_per_request"), 1),
+        "wrk_cpu_us_per_lookup": round(med(0, "wrk_cpu_us_per_request"), 1),
+        # the most a second worker can add when wrk shares the cores: one worker at best keeps
+        # one core busy (1 / server_cpu per second); two keep every core busy with their own
+        # work plus wrk's, (cores / (server_cpu + wrk_cpu)) per second
+        "two_worker_ceiling": round(
+            min(
+                2.0,
+                (os.cpu_count() or 1)
+                * med(0, "server_cpu_us_per_request")
+                / (med(0, "server_cpu_us_per_request") + med(0, "wrk_cpu_us_per_request")),
+            ),
+            2,
+        ),  # fmt: skip
+        **batches,
         "rounds_rps": [[round(s["rps"]), round(r["rps"])] for s, r in rounds],
     }
 
@@ -345,6 +399,7 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=7, help="HTTP batch calls timed")
     ap.add_argument("--seed", type=int, default=3)
     ap.add_argument("--skip-inprocess", action="store_true")
+    ap.add_argument("--wrk-cpu", default=None, help="pin wrk to these CPUs (taskset -c), e.g. 0")
     a = ap.parse_args()
     if shutil.which("wrk") is None:
         sys.exit("wrk is not on PATH (Debian: apt-get install wrk)")

@@ -181,8 +181,11 @@ class CompiledPlan:
         "_arm_state",
         "_level_codes",
         "_missing_code",
+        "_width",
         "_is_leaf",
-        "_children",
+        "_cuts",
+        "_next",
+        "_defaulted",
         "_portable",
     )
 
@@ -240,9 +243,14 @@ class CompiledPlan:
 
     # ---- compilation ---------------------------------------------------------------------------
     def _compile_flat(self, p: Partition) -> None:
-        """Flat arrays for the vectorised walk. Leaves point at themselves so the walk can run a
-        fixed `depth` steps; categorical levels get one code space per feature, and the code
-        `_missing_code` (one past the longest) stands for missing or unknown everywhere."""
+        """Flat arrays for the vectorised walk. Every value becomes a small integer code first:
+        a categorical level its index in the feature's level table, a number the count of the
+        feature's distinct split thresholds at or below it (so x < threshold k, the k-th
+        smallest, is code <= k), and `_missing_code` (one past the largest code of any feature)
+        stands for missing, NaN or an unknown level. Then every node, numeric or categorical, is
+        one row of a (node, code) -> next node table, and a step of the walk is a few gathers
+        for all members at once. Leaves send every code to themselves, so the walk runs a fixed
+        `depth` steps."""
         s = object.__setattr__
         n = p.n_nodes
         codes: list[dict[str, int]] = []
@@ -256,8 +264,14 @@ class CompiledPlan:
                         for lv in (*p.left_levels[nd], *p.right_levels[nd]):
                             lut.setdefault(lv, len(lut))
             codes.append(lut)
-        missing = max((len(c) for c in codes), default=0)
         is_leaf = np.asarray(p.feature) < 0
+        cuts = [
+            np.unique(np.asarray(p.threshold, dtype=np.float64)[np.asarray(p.feature) == fi])
+            if f.kind == "numeric"
+            else np.zeros(0)
+            for fi, f in enumerate(p.features)
+        ]
+        missing = max([len(c) for c in codes] + [len(c) + 1 for c in cuts] + [0])
         feat = np.where(is_leaf, 0, p.feature).astype(np.intp)
         is_num = np.zeros(n, dtype=bool)
         thr = np.full(n, np.nan)
@@ -270,6 +284,10 @@ class CompiledPlan:
             if f.kind == "numeric":
                 is_num[nd] = True
                 thr[nd] = float(p.threshold[nd])
+                ft = cuts[int(feat[nd])]
+                k = int(np.searchsorted(ft, thr[nd]))  # thr[nd] == ft[k]
+                dirs[nd, : k + 1] = 1
+                dirs[nd, k + 1 : len(ft) + 1] = 0
             else:
                 lut = codes[int(feat[nd])]
                 for lv in p.right_levels[nd]:
@@ -277,23 +295,27 @@ class CompiledPlan:
                 for lv in p.left_levels[nd]:
                     dirs[nd, lut[lv]] = 1
         self_idx = np.arange(n, dtype=np.intp)
+        left = np.where(is_leaf, self_idx, p.left).astype(np.intp)
+        right = np.where(is_leaf, self_idx, p.right).astype(np.intp)
+        default = np.where(np.asarray(p.default_left, dtype=bool), left, right)
+        nxt = np.where(
+            dirs == 1, left[:, None], np.where(dirs == 0, right[:, None], default[:, None])
+        )
+        s(self, "_cuts", tuple(_frozen(c) for c in cuts))
+        s(self, "_next", _frozen(nxt.astype(np.intp).reshape(-1)))
+        s(self, "_defaulted", _frozen((dirs == -1).reshape(-1)))
         s(self, "_level_codes", tuple(codes))
         s(self, "_missing_code", missing)
+        s(self, "_width", missing + 1)
         s(self, "_is_leaf", _frozen(is_leaf))
         s(self, "node_feature", _frozen(feat))
         s(self, "node_is_numeric", _frozen(is_num))
         s(self, "node_threshold", _frozen(thr))
         s(self, "node_directions", _frozen(dirs))
-        s(self, "node_left", _frozen(np.where(is_leaf, self_idx, p.left).astype(np.intp)))
-        s(self, "node_right", _frozen(np.where(is_leaf, self_idx, p.right).astype(np.intp)))
+        s(self, "node_left", _frozen(left))
+        s(self, "node_right", _frozen(right))
         s(self, "node_default_left", _frozen(np.asarray(p.default_left, dtype=bool).copy()))
         s(self, "node_cohort", _frozen(np.asarray(p.cohort, dtype=np.intp).copy()))
-        # children[2 * node + go_left]: right child at even, left child at odd positions
-        s(
-            self,
-            "_children",
-            _frozen(np.stack([self.node_right, self.node_left], axis=1).reshape(-1)),
-        )
 
     # ---- single lookup ---------------------------------------------------------------------------
     def assign(self, member_id: str, features: Mapping[str, Any]) -> Assignment:
@@ -379,8 +401,7 @@ class CompiledPlan:
                 )
         if n == 0:
             return [], np.zeros(0, dtype=np.intp)
-        xnum, xcat = self._encode_columns(members, columns, n)
-        cohort, used = self._walk(xnum, xcat, n)
+        cohort, used = self._walk(self._encode_columns(members, columns, n), n)
 
         encoded = list(map(str.encode, members))  # UTF-8
         arm = np.full(n, self._holdout_index, dtype=np.intp)
@@ -401,13 +422,11 @@ class CompiledPlan:
 
     def _encode_columns(
         self, members: list[str], columns: Mapping[str, Sequence[Any]], n: int
-    ) -> tuple[np.ndarray, np.ndarray]:
-        """(F, n) float64 numeric values (NaN missing or not numeric) and (F, n) level codes
-        (`_missing_code` for missing, unknown or not categorical), checking every value's type."""
-        nf = len(self._feature_keys)
+    ) -> np.ndarray:
+        """(F, n) codes of every plan feature's values (see `_compile_flat`; `_missing_code` for
+        missing, NaN or unknown), checking every value's type."""
         miss = self._missing_code
-        xnum = np.full((nf, n), np.nan)
-        xcat = np.full((nf, n), miss, dtype=np.intp)
+        out = np.full((len(self._feature_keys), n), miss, dtype=np.intp)
         for fi, (key, numeric) in enumerate(self._checks):
             col = columns.get(key)
             if col is None:
@@ -415,13 +434,17 @@ class CompiledPlan:
             if type(col) is not list and type(col) is not tuple:
                 col = list(col)
             if numeric:
+                x = None
                 if set(map(type, col)) <= {float, int, _NoneType}:
                     try:
-                        xnum[fi] = np.array(col, dtype=np.float64)
-                        continue
+                        x = np.array(col, dtype=np.float64)  # None -> NaN
                     except OverflowError:
                         pass
-                xnum[fi] = [_numeric_value(key, v, members[i], i) for i, v in enumerate(col)]
+                if x is None:
+                    x = np.array([_numeric_value(key, v, members[i], i) for i, v in enumerate(col)])
+                codes = np.searchsorted(self._cuts[fi], x, side="right")
+                codes[np.isnan(x)] = miss
+                out[fi] = codes
             else:
                 # levels the plan knows are str, so only a value the table does not know
                 # (missing, unknown, or of another type) needs a look at its type
@@ -436,34 +459,26 @@ class CompiledPlan:
                     if v is not None and type(v) is not str:
                         v = _categorical_value(key, v, members[i], i)  # raises unless NaN or str
                         codes[i] = miss if v is None else lut.get(v, miss)
-                xcat[fi] = codes
-        return xnum, xcat
+                out[fi] = codes
+        return out
 
-    def _walk(self, xnum: np.ndarray, xcat: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-        """Cohort per member (n,) and the (F, n) mask of features whose default was taken.
-
-        Leaves behave as categorical nodes that send every code "left" to themselves, so each of
-        the `depth` steps is the same few gathers for every member."""
+    def _walk(self, codes: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """Cohort per member (n,) and the (F, n) mask of features whose default was taken: per
+        step, each member's node and the code of the node's feature pick the next node."""
         node = np.zeros(n, dtype=np.intp)
-        used = np.zeros(xnum.shape, dtype=bool)
+        used = np.zeros(codes.shape, dtype=bool)
         ar = np.arange(n, dtype=np.intp)
-        xn_flat, xc_flat = xnum.reshape(-1), xcat.reshape(-1)
-        feat, is_num, thr = self.node_feature, self.node_is_numeric, self.node_threshold
-        dirs_flat, width = self.node_directions.reshape(-1), self.node_directions.shape[1]
-        dleft, child = self.node_default_left, self._children
+        flat = codes.reshape(-1)
+        feat, width, nxt, defaulted = self.node_feature, self._width, self._next, self._defaulted
         for _ in range(self.depth):
-            f = feat[node]
-            cell = f * n + ar
-            xn = xn_flat.take(cell)
-            d = dirs_flat.take(node * width + xc_flat.take(cell))
-            num = is_num[node]
-            known = np.where(num, xn == xn, d >= 0)
-            go_left = np.where(known, np.where(num, xn < thr[node], d == 1), dleft[node])
-            if not known.all():
-                miss = ~known
-                used[f[miss], ar[miss]] = True
-            node = child.take(2 * node + go_left)
-        return self.node_cohort[node], used
+            f = feat.take(node)
+            idx = node * width
+            idx += flat.take(f * n + ar)
+            d = defaulted.take(idx)
+            if d.any():
+                used[f[d], ar[d]] = True
+            node = nxt.take(idx)
+        return self.node_cohort.take(node), used
 
     def _distinct(
         self, arm: np.ndarray, cohort: np.ndarray, holdout: np.ndarray, used: np.ndarray, n: int

@@ -421,3 +421,23 @@ def test_batch_answers_are_kept_between_calls_and_equal_the_single_path():
     assert first == [cp.assign(m, r) for m, r in zip(ids, rows, strict=True)]
     assert all(a is b for a, b in zip(first, reversed(second), strict=True))
     assert len({id(a) for a in first}) < len(first)  # equal answers share one object
+
+
+def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path():
+    """The batch path turns a number into the count of the feature's thresholds at or below it;
+    at a threshold, one double below it, at the infinities, NaN and an int beyond 2**53 it must
+    send members where the single path (x < threshold goes left) sends them."""
+    rng = np.random.default_rng(5)
+    p = random_partition(rng, depth=6, n_cohorts=4)
+    cp = _plan(p, rng.dirichlet(np.ones(3), size=4))
+    numeric = [f.key for f in p.features if f.kind == "numeric"]
+    cuts = sorted({float(t) for t, f in zip(p.threshold, p.feature, strict=True) if f >= 0
+                   and p.features[int(f)].kind == "numeric"})  # fmt: skip
+    values: list = [*cuts, *(np.nextafter(c, -np.inf) for c in cuts)]
+    values += [np.inf, -np.inf, float("nan"), None, 2**60, -(2**60), 0]
+    rows = [
+        {k: values[(i + j) % len(values)] for j, k in enumerate(numeric)}
+        for i in range(len(values) * 3)
+    ]
+    ids = [f"edge-{i}" for i in range(len(rows))]
+    assert cp.assign_batch(ids, rows) == [cp.assign(m, r) for m, r in zip(ids, rows, strict=True)]
