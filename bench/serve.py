@@ -19,6 +19,14 @@ medians. Then the 10,000-member `POST .../assign/batch` end to end (median of `-
 with the servers stopped, bench/serve_inprocess.py's `measure()` in this process (single lookup
 median, 10k batch, the portable evaluator's rate and the compiled document's size).
 
+Per worker count also: the 10,000-member batch on the lookup server and on the reference server
+(which reads and parses the same body), alternately (`batch_lookup_over_reference`); wrk's own
+CPU per request (from the children's rusage); and `two_worker_ceiling`, the most two workers can
+give over one when wrk runs on the same cores: one worker keeps at most one core busy, so it
+serves at most 1 / server_cpu requests a second, and two serve at most cores / (server_cpu +
+wrk_cpu); the ratio of the two bounds is 2 * server_cpu / (server_cpu + wrk_cpu) on two cores.
+`--wrk-cpu 0` pins wrk to CPU 0 (taskset), so it competes for one known core.
+
 Prints ONE JSON line. Needs `wrk` on PATH (Debian package `wrk`). wrk and the servers share the
 machine's cores, so the figures are for that shared setting; `loadavg_1m_before` says how busy
 the machine already was.

@@ -320,8 +320,11 @@ class CompiledPlan:
     # ---- single lookup ---------------------------------------------------------------------------
     def assign(self, member_id: str, features: Mapping[str, Any]) -> Assignment:
         """The assignment of one member. Raises InvalidInput for a bad id or a wrongly typed value."""
-        member = normalise_member_id(member_id)
-        if not isinstance(features, Mapping):
+        # the common case (a str id, a dict) without the general checks' isinstance calls
+        member = member_id.strip() if type(member_id) is str else ""
+        if not member:
+            member = normalise_member_id(member_id)
+        if type(features) is not dict and not isinstance(features, Mapping):
             raise InvalidInput(
                 f"features of member '{member}' must be an object, got {type(features).__name__}",
                 errors=[{"field": "features", "member_id": member}],
