@@ -841,15 +841,25 @@ def draft_spec(base: dict[str, Any], args: argparse.Namespace) -> dict[str, Any]
     return spec
 
 
-def finish_report(api: Api, version: dict[str, Any], *, bar: ProgressBar | None) -> dict[str, Any]:
-    """A draft with many bootstrap draws gets its report from a job: wait for it, read again."""
+def finish_report(
+    api: Api, version: dict[str, Any], *, bar: Callable[[str], ProgressBar | None] | None = None
+) -> dict[str, Any]:
+    """A draft's jobs: the impact report when it has many bootstrap draws, and the cross-fitted
+    held-out evaluation (approval waits for both). Wait for each, then read the version again.
+    `bar(label)` makes a progress bar per job (None: no bars)."""
     report = version.get("report") or {}
-    job = report.get("job")
-    if report.get("status") != "pending" or not job:
+    jobs = [
+        (what, part.get("job"))
+        for what, part in (("impact report", report), ("held-out evaluation", report.get("held_out") or {}))
+        if part.get("status") == "pending" and part.get("job")
+    ]  # fmt: skip
+    if not jobs:
         return version
-    job_view = wait_for_job(api, str(job).rsplit("/", 1)[-1], bar=bar)
-    if job_view["status"] == "failed":
-        raise JobFailed(f"the impact report job failed: {job_view.get('error')}")
+    for what, job in jobs:
+        label = f"{what} {version['plan']}/{version['version']}"
+        job_view = wait_for_job(api, str(job).rsplit("/", 1)[-1], bar=bar(label) if bar else None)
+        if job_view["status"] == "failed" and what == "impact report":
+            raise JobFailed(f"the impact report job failed: {job_view.get('error')}")
     return api.get_version(version["plan"], version["version"])
 
 
@@ -859,8 +869,7 @@ def cmd_plan_draft(args: argparse.Namespace) -> int:
     with _api(args) as api:
         got = api.draft_plan(args.plan, spec)
         if not args.no_wait:
-            bar = None if args.json else ProgressBar(f"impact report {args.plan}/{got['version']}")
-            got = finish_report(api, got, bar=bar)
+            got = finish_report(api, got, bar=None if args.json else ProgressBar)
     _emit(args, got, lambda: render_version(got))
     return 0
 

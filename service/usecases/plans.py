@@ -431,6 +431,8 @@ def _run_report(services: Services, job: Job, progress: Any) -> None:
         repo.pointer(session=s, plan=plan, lock=True)
         job_repo.finish(session=s, job=job)
         row = repo.get_version(session=s, plan=plan, version=version, lock=True)
+        if row.status != "draft":  # rejected while the job ran: immutable, nothing to attach
+            return
         row.report = {
             **report,
             "held_out": row.report.get("held_out"),  # its own job writes it
@@ -453,8 +455,12 @@ def _run_held_out(services: Services, job: Job, progress: Any) -> None:
     plan, version = job.payload["plan"], int(job.payload["version"])
     with services.db.read() as s:
         row = repo.get_version(session=s, plan=plan, version=version)
-        spec = dict(row.spec)
+        spec, status = dict(row.spec), row.status
         folds = int((row.report.get("held_out") or {}).get("folds") or 0)
+    if status != "draft":  # rejected before the job ran: nothing to evaluate for a reviewer
+        with services.db.write() as s:
+            job_repo.finish(session=s, job=job)
+        return
     ctx = _model_context(services, int(spec["model_id"]))
     try:
         held_out = _evaluate(ctx, spec, int(spec["seed"]), folds, progress)
@@ -469,7 +475,8 @@ def _write_held_out(
     with services.db.write() as s:  # lock order (store/db.py): plan, job row, version row
         repo.pointer(session=s, plan=plan, lock=True)
         job_repo.finish(session=s, job=job)
-        _set_held_out(s, plan, version, held_out)
+        if not _set_held_out(s, plan, version, held_out):
+            return
         audit.append(
             s,
             actor=Actor("report-job", "analyst"),
@@ -480,9 +487,14 @@ def _write_held_out(
         )
 
 
-def _set_held_out(session: Any, plan: str, version: int, held_out: dict[str, Any]) -> None:
+def _set_held_out(session: Any, plan: str, version: int, held_out: dict[str, Any]) -> bool:
+    """Attach the figures to a draft; a version rejected meanwhile is immutable, and keeps
+    its report as the reviewer saw it (approval waits for the evaluation, `decide`)."""
     row = repo.get_version(session=session, plan=plan, version=version, lock=True)
+    if row.status != "draft":
+        return False
     row.report = {**row.report, "held_out": held_out}
+    return True
 
 
 def _on_held_out_failed(session: Any, job: Job, message: str) -> None:
@@ -561,8 +573,21 @@ def version_view(row: Any, *, live_version: int | None) -> dict[str, Any]:
         "salt_fingerprint": hashlib.sha256(row.salt.encode()).hexdigest()[:12],
         "spec": row.spec,
         "allocation": row.allocation,
-        "report": row.report,
+        "report": _report_view(row),
     }
+
+
+def _report_view(row: Any) -> dict[str, Any]:
+    """The stored report; a version rejected while its jobs were pending keeps them pending in
+    storage (it is immutable), so say here that they will not run."""
+    report = row.report or {}
+    if row.status == "rejected":
+        for key in ("held_out",):
+            part = report.get(key)
+            if isinstance(part, dict) and part.get("status") == "pending":
+                report = {**report, key: {**part, "status": "not run",
+                                          "error": "the version was rejected first"}}  # fmt: skip
+    return report
 
 
 def get_version(
@@ -662,6 +687,12 @@ def decide(
         if approve and row.report.get("status") != "complete":
             raise InvalidTransition(
                 f"plan version {plan}/{version} has no complete impact report yet"
+            )
+        held_out = row.report.get("held_out") or {}
+        if approve and held_out.get("status") == "pending":
+            raise InvalidTransition(
+                f"plan version {plan}/{version}: its held-out evaluation is still running "
+                f"({held_out.get('job')}); approve once the reviewer can read it"
             )
         row.status = "approved" if approve else "rejected"
         row.decided_by, row.decided_at, row.decision_reason = actor.name, utcnow(), reason

@@ -81,3 +81,70 @@ def test_off_by_setting_says_so(client: TestClient, keys) -> None:  # type: igno
     v = draft_plan(client, keys, model_id)
     assert v["report"]["held_out"]["status"] == "off"
     assert "held-out evaluation: off" in render_version(v)
+
+
+def test_approval_waits_for_the_evaluation_and_a_rejected_draft_skips_it(db_url: str) -> None:
+    """Found by running the demo: a version approved before its evaluation finished could never
+    take the figures (approved versions are immutable) and the job failed in a loop. Approval now
+    waits for the evaluation (409 while it runs); a rejected draft's job ends without writing."""
+    from service.usecases import jobs
+
+    app = create_app(make_settings(db_url, held_out_folds=2, run_jobs_in_process=False))
+    with TestClient(app, raise_server_exceptions=False) as c:
+        services = app.state.services
+        keys = make_keys(services)
+        model_id = _fitted_without_worker(c, keys, services)
+        v1 = draft_plan(c, keys, model_id)
+        approve = c.post(
+            "/v1/plans/lesson-length/versions/1/approve",
+            json={"reason": "looks fine"},
+            headers=keys.h(keys.approver),
+        )
+        assert approve.status_code == 409 and "held-out evaluation is still running" in (
+            approve.json()["detail"]
+        )
+        assert jobs.run_one(services, "test-worker")
+        assert wait_job(c, keys, v1["report"]["held_out"]["job"])["status"] == "done"
+        approve = c.post(
+            "/v1/plans/lesson-length/versions/1/approve",
+            json={"reason": "looks fine"},
+            headers=keys.h(keys.approver),
+        )
+        assert approve.status_code == 200, approve.text
+
+        v2 = draft_plan(c, keys, model_id)
+        reject = c.post(
+            "/v1/plans/lesson-length/versions/2/reject",
+            json={"reason": "not now"},
+            headers=keys.h(keys.approver),
+        )
+        assert reject.status_code == 200, reject.text
+        assert jobs.run_one(services, "test-worker")
+        assert wait_job(c, keys, v2["report"]["held_out"]["job"])["status"] == "done"
+        got = c.get("/v1/plans/lesson-length/versions/2", headers=keys.h(keys.reader)).json()
+        assert got["status"] == "rejected" and got["report"]["held_out"]["status"] == "not run"
+
+
+def _fitted_without_worker(client: TestClient, keys, services) -> int:  # type: ignore[no-untyped-def]
+    """The scenario's causal tree on 4,000 learners, its fit job run by hand (no worker thread)."""
+    from service.demo.scenario import experiment_declaration, simulate, to_csv_bytes
+    from service.usecases import jobs
+
+    decl = experiment_declaration()
+    assert client.post("/v1/experiments", json=decl, headers=keys.h(keys.analyst)).is_success
+    up = client.post(
+        f"/v1/experiments/{decl['key']}/readouts",
+        content=to_csv_bytes(simulate(4000, seed=1)),
+        headers={**keys.h(keys.analyst), "content-type": "text/csv"},
+    )
+    assert up.is_success, up.text
+    fit = client.post(
+        f"/v1/experiments/{decl['key']}/models",
+        json={"readout_version": up.json()["version"], "method": "causal_tree",
+              "params": {"max_depth": 2, "min_units_per_arm": 100}},
+        headers=keys.h(keys.analyst),
+    )  # fmt: skip
+    assert fit.status_code == 202, fit.text
+    assert jobs.run_one(services, "test-worker")
+    assert wait_job(client, keys, fit.json()["job"])["status"] == "done"
+    return int(fit.json()["model_id"])
