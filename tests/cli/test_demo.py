@@ -16,8 +16,10 @@ def test_demo_end_to_end(tmp_path: Path) -> None:
     # 100,000 learners: at this size the honest causal tree finds the level/device structure on
     # seeds 1-7 (tried while writing this test); at 20,000-60,000 the chance constraints on the
     # noisier estimates can leave the plan below ten_min, which is honest but not this test.
-    r = run_demo(learners=100_000, seed=7, port=0, draws=10, var_dir=tmp_path, out=out)  # 10: speed
+    r = run_demo(learners=100_000, seed=7, port=0, draws=10, held_out_folds=2, var_dir=tmp_path,
+                 out=out)  # 10 draws, 2 folds: speed  # fmt: skip
     text = out.getvalue()
+    assert "on 2 folds the model and optimizer never saw" in text  # the draft's held-out job
     assert Path(r["database"]).parent == tmp_path and Path(r["database"]).name.startswith("demo-")
 
     # the truth, from the scenario's effect functions (oracle: scipy linprog on the true effects)
