@@ -485,7 +485,9 @@ def render_version(v: dict[str, Any]) -> str:
         parts += [
             "",
             f"against live version {diff['live_version']}: {diff['share_changed']:.1%} of "
-            f"{diff['members']} readout members would change arm",
+            f"{diff['members']} readout members would change arm"
+            + (f" (a uniform sample of the readout's {diff['readout_rows']})"
+               if diff.get("sampled") else ""),
         ]
     return "\n".join(parts)
 

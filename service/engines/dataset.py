@@ -1,8 +1,12 @@
 """A readout as a Parquet dataset: its files in row order, their row counts and the experiment's
 specs (arms control first, features, metrics). The engines read the files; nothing here loads rows.
 
-Columns follow the upload format: `unit_id`, `arm` (the arm key), one column per feature (numeric,
-or strings for a categorical feature; null or empty is missing) and one per metric component.
+Two column layouts: the upload format (`unit_id`, `arm` holding the arm key, one column per
+feature named by its key, numeric or strings for a categorical feature, null or empty is missing,
+and one per metric component named by it) and the blob store's readout datasets
+(`service.ingest.dataset`: `arm` holding the arm code, features in `f0..`, components in `c0..`),
+opened with `ReadoutDataset.stored`. `column(name)` gives the Parquet column of a feature key or
+component name either way.
 """
 
 from __future__ import annotations
@@ -26,6 +30,12 @@ class ReadoutDataset:
     design_shares: np.ndarray
     features: tuple[FeatureSpec, ...]
     metrics: tuple[MetricSpec, ...]
+    columns: tuple[tuple[str, str], ...] = ()  # (feature key or component, Parquet column)
+    arm_coded: bool = False  # `arm` holds the arm's code (control 0) instead of its key
+
+    def column(self, name: str) -> str:
+        """The Parquet column holding feature `name` or metric component `name`."""
+        return dict(self.columns).get(name, name)
 
     @property
     def n_rows(self) -> int:
@@ -58,3 +68,19 @@ class ReadoutDataset:
         return ReadoutDataset(tuple(files), rows, tuple(arm_keys),
                               np.asarray(design_shares, dtype=np.float64), tuple(features),
                               tuple(metrics))  # fmt: skip
+
+    @staticmethod
+    def stored(paths, manifest) -> ReadoutDataset:
+        """A readout version in the blob store: its part files (local paths, in order) and its
+        manifest (`service.ingest.dataset.Manifest`), whose spec carries the discovered levels."""
+        spec = manifest.spec
+        cols = [(f.key, f"f{i}") for i, f in enumerate(spec.features)]
+        cols += [(c, f"c{i}") for i, c in enumerate(spec.columns)]
+        rows = tuple(int(f["rows"]) for f in manifest.files)
+        if len(paths) != len(rows) or sum(rows) != manifest.n_rows:
+            raise InvalidInput(f"the dataset lists {len(rows)} part files with {sum(rows)} rows; "
+                               f"got {len(paths)} paths and a manifest of {manifest.n_rows} rows")  # fmt: skip
+        return ReadoutDataset(tuple(str(p) for p in paths), rows, tuple(spec.arm_keys),
+                              np.asarray(spec.design_shares, dtype=np.float64),
+                              tuple(spec.features), tuple(spec.metrics), tuple(cols),
+                              arm_coded=True)  # fmt: skip

@@ -52,11 +52,6 @@ class DuckDBEngine(SqlEngine):
     def query(self, sql: str) -> pa.Table:
         return self.con.sql(sql).to_arrow_table()
 
-    def quantile_sql(self, x: str, probs: list[float]) -> str:
-        # quantile_disc is the inverted-CDF quantile (numpy's method="inverted_cdf")
-        v = f"CASE WHEN isnan({x}) THEN NULL ELSE {x} END"
-        return f"SELECT quantile_disc({v}, {probs}) AS q, MIN({v}) AS lo FROM src"
-
     def arm_codes(self) -> np.ndarray:
         t = self.query(f"SELECT CAST({self.arm_case()} AS TINYINT) AS a FROM src")
         return np.asarray(t.column("a").to_numpy(), dtype=np.int8)

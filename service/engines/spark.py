@@ -84,12 +84,6 @@ class SparkEngine(SqlEngine):
     def query(self, sql: str) -> pa.Table:
         return self.spark.sql(sql).toArrow()
 
-    def quantile_sql(self, x: str, probs: list[float]) -> str:
-        # percentile_disc is the inverted-CDF quantile; NaN counts as missing, as in numpy's bins
-        v = f"CASE WHEN isnan({x}) THEN NULL ELSE {x} END"
-        qs = ", ".join(f"percentile_disc({p}) WITHIN GROUP (ORDER BY {v})" for p in probs)
-        return f"SELECT array({qs}) AS q, MIN({v}) AS lo FROM src"
-
     def arm_codes(self) -> np.ndarray:
         t = self.query(f"SELECT _pos, CAST({self.arm_case()} AS TINYINT) AS a FROM src")
         out = np.empty(self.n, dtype=np.int8)

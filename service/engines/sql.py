@@ -16,6 +16,7 @@ import pyarrow as pa
 
 from service.stats.binning import FeatureBins
 from service.stats.estimates import CellMoments
+from service.stats.partition import Partition
 from service.stats.table import FeatureSpec, MetricSpec
 from service.stats.tree import Tree
 
@@ -29,6 +30,16 @@ def num(x: float) -> str:
     if not np.isfinite(x):
         return f"CAST('{'NaN' if np.isnan(x) else ('Infinity' if x > 0 else '-Infinity')}' AS DOUBLE)"
     return f"{x:.16e}"
+
+
+def inverted_cdf_positions(n: int, probs: np.ndarray) -> np.ndarray:
+    """The 0-based sorted positions numpy's `quantile(method="inverted_cdf")` takes for `probs`
+    of `n` values: index = n p - 1, rounded up unless it is whole, clipped to [0, n - 1] (numpy's
+    `_inverted_cdf` and `_discrete_interpolation_to_boundaries`, with the same float64 steps)."""
+    index = n * np.asarray(probs, dtype=np.float64) - 1
+    previous = np.floor(index)
+    pos = np.where(index - previous == 0, previous, previous + 1).astype(np.int64)
+    return np.clip(pos, 0, n - 1)
 
 
 class SqlEngine:
@@ -75,32 +86,50 @@ class SqlEngine:
         out = []
         for f in features:
             if f.kind == "categorical" and not f.levels:
-                col = self.ident(f.key)
+                col = self.col(f.key)
                 t = self.query(f"SELECT DISTINCT CAST({col} AS STRING) AS v FROM src "
                                f"WHERE {col} IS NOT NULL AND CAST({col} AS STRING) <> ''")  # fmt: skip
                 f = FeatureSpec(f.key, f.kind, tuple(sorted(t.column("v").to_pylist())))
             out.append(f)
         return tuple(out)
 
+    def col(self, name: str) -> str:
+        """The quoted Parquet column of a feature key or a metric component name."""
+        return self.ident(self.dataset.column(name))
+
     def arm_case(self) -> str:
+        if self.dataset.arm_coded:
+            return f"CAST({self.ident('arm')} AS INT)"
         whens = " ".join(f"WHEN {self.text(a)} THEN {j}" for j, a in enumerate(self.arm_keys))
         return f"CASE CAST({self.ident('arm')} AS STRING) {whens} END"
 
     def quantiles(self, key: str, probs: np.ndarray) -> tuple[np.ndarray, float] | None:
-        x = f"CAST({self.ident(key)} AS DOUBLE)"
-        t = self.query(self.quantile_sql(x, [float(p) for p in probs]))
-        row = t.to_pylist()[0]
-        if row["q"] is None or row["lo"] is None:
+        """numpy's inverted-CDF quantiles (`np.quantile(method="inverted_cdf")`) from counts per
+        distinct value: the sorted position numpy picks for each probability is worked out here
+        from the non-missing count, exactly as numpy works it out, and the value at that position
+        is the smallest one whose cumulative count reaches it. The engine holds one row per
+        distinct value (a GROUP BY, which spills to disk like any aggregation), never the column
+        sorted whole, so memory stays bounded on any number of rows; the result is exact."""
+        x = f"CAST({self.col(key)} AS DOUBLE)"
+        v = f"SELECT CASE WHEN isnan({x}) THEN NULL ELSE {x} END AS v FROM src"
+        row = self.query(f"SELECT COUNT(v) AS n, MIN(v) AS lo FROM ({v}) AS vals").to_pylist()[0]
+        n = int(row["n"] or 0)
+        if n == 0:
             return None
-        return np.asarray(row["q"], dtype=np.float64), float(row["lo"])
-
-    def quantile_sql(self, x: str, probs: list[float]) -> str:
-        raise NotImplementedError
+        rank = inverted_cdf_positions(n, np.asarray(probs, dtype=np.float64)) + 1  # 1-based
+        picks = ", ".join(f"MIN(CASE WHEN cum >= {int(k)} THEN v END) AS q{i}"
+                          for i, k in enumerate(rank))  # fmt: skip
+        t = self.query(
+            f"SELECT {picks} FROM (SELECT v, SUM(cnt) OVER (ORDER BY v ROWS BETWEEN UNBOUNDED "
+            f"PRECEDING AND CURRENT ROW) AS cum FROM (SELECT v, COUNT(*) AS cnt FROM ({v}) AS vals "
+            "WHERE v IS NOT NULL GROUP BY v) AS counts) AS cumulative"
+        ).to_pylist()[0]
+        return np.array([t[f"q{i}"] for i in range(rank.size)], dtype=np.float64), float(row["lo"])
 
     def non_finite(self) -> dict[str, int]:
         parts = []
         for i, c in enumerate(self.components):
-            x = f"CAST({self.ident(c)} AS DOUBLE)"
+            x = f"CAST({self.col(c)} AS DOUBLE)"
             parts.append(f"SUM(CASE WHEN {x} IS NULL OR isnan({x}) OR {x} IN "
                          f"({num(np.inf)}, {num(-np.inf)}) THEN 1 ELSE 0 END) AS n{i}")  # fmt: skip
         if not parts:
@@ -115,7 +144,7 @@ class SqlEngine:
             small = "TINYINT" if int(bins.n_bins[f]) <= 127 else "SMALLINT"
             cols.append(f"CAST({self._bin_expr(spec, bins, f)} AS {small}) AS b{f}")
         for i, c in enumerate(self.components):
-            cols.append(f"CAST({self.ident(c)} AS DOUBLE) AS c{i}")
+            cols.append(f"CAST({self.col(c)} AS DOUBLE) AS c{i}")
         self.store_work(", ".join(cols), np.asarray(role, dtype=np.int8))
         self._bins = bins
         self._y = []
@@ -124,7 +153,7 @@ class SqlEngine:
         """`binning.bin_features`' code: the number of thresholds <= x (a binary search as nested
         CASE), categorical level codes, and the last code for missing values."""
         miss = int(bins.n_bins[f]) - 1
-        col = self.ident(spec.key)
+        col = self.col(spec.key)
         if spec.kind == "categorical":
             whens = " ".join(f"WHEN {self.text(v)} THEN {i}" for i, v in enumerate(spec.levels))
             return f"CASE CAST({col} AS STRING) {whens} ELSE {miss} END" if whens else str(miss)
@@ -215,14 +244,59 @@ class SqlEngine:
 
     def cell_moments(self, tree: Tree, cohort_of_node: np.ndarray, n_cohorts: int,
                      roles: tuple[int, ...]) -> CellMoments:  # fmt: skip
-        """`estimates.cell_moments`, in two passes as there: the means per cell, then the
-        cross-products of the values centred on their cell's mean."""
-        C, J, Q = n_cohorts, len(self.arm_keys), len(self.components)
+        """`estimates.cell_moments` per (cohort, arm) on the working rows of `roles`."""
         cohort = self.route_expr(tree, lambda leaf: int(cohort_of_node[leaf]))
-        where = f"r IN ({', '.join(map(str, roles))})"
+        cs = ", ".join(f"c{i}" for i in range(len(self.components)))
+        return self._moments(f"SELECT {cohort} AS g, a{', ' + cs if cs else ''} FROM work "
+                             f"WHERE r IN ({', '.join(map(str, roles))})", n_cohorts)  # fmt: skip
+
+    def partition_moments(self, partition: Partition) -> CellMoments:
+        """`estimates.cell_moments` per (cohort of `partition`, arm) over every row of the readout,
+        routed as `Partition.route` routes them; needs no working table (no `load`)."""
+        cs = "".join(f", CAST({self.col(c)} AS DOUBLE) AS c{i}"
+                     for i, c in enumerate(self.components))  # fmt: skip
+        return self._moments(f"SELECT {self.partition_expr(partition)} AS g, {self.arm_case()} AS a"
+                             f"{cs} FROM src", partition.n_cohorts)  # fmt: skip
+
+    def partition_expr(self, partition: Partition) -> str:
+        """SQL for the cohort `Partition.route` gives a row of `src`: a numeric split sends
+        x < threshold left, a categorical split sends its listed levels each way, and missing or
+        unlisted values go the node's default way."""
+        p = partition
+
+        def walk(node: int) -> str:
+            if p.feature[node] < 0:
+                return str(int(p.cohort[node]))
+            f = p.features[int(p.feature[node])]
+            col = self.col(f.key)
+            left, right = walk(int(p.left[node])), walk(int(p.right[node]))
+            if left == right:
+                return left
+            if f.kind == "numeric":
+                x = f"CAST({col} AS DOUBLE)"
+                go_left = f"{x} < {num(p.threshold[node])}"
+                known = f"NOT ({x} IS NULL OR isnan({x}))"
+            else:
+                x = f"CAST({col} AS STRING)"
+                ll, rl = p.left_levels[node], p.right_levels[node]
+                go_left = f"{x} IN ({', '.join(self.text(v) for v in ll)})" if ll else "FALSE"
+                go_right = f"{x} IN ({', '.join(self.text(v) for v in rl)})" if rl else "FALSE"
+                known = f"(({go_left}) OR ({go_right}))"
+                go_left = f"({go_left})"
+            default = "TRUE" if bool(p.default_left[node]) else "FALSE"
+            cond = f"(CASE WHEN {known} THEN {go_left} ELSE {default} END)"
+            return f"(CASE WHEN COALESCE({cond}, {default}) THEN {left} ELSE {right} END)"
+
+        return walk(0)
+
+    def _moments(self, inner: str, n_cohorts: int) -> CellMoments:
+        """`estimates.cell_moments` over the rows of `inner` (a SELECT giving the cohort `g`, the
+        arm code `a` and the components `c0..`), in two passes as there: the means per cell, then
+        the cross-products of the values centred on their cell's mean."""
+        C, J, Q = n_cohorts, len(self.arm_keys), len(self.components)
         sums = ", ".join(f"SUM(c{i}) AS s{i}" for i in range(Q))
-        t = self.query(f"SELECT {cohort} AS g, a, COUNT(*) AS n{', ' + sums if Q else ''} "
-                       f"FROM work WHERE {where} GROUP BY 1, 2")  # fmt: skip
+        t = self.query(f"SELECT g, a, COUNT(*) AS n{', ' + sums if Q else ''} "
+                       f"FROM ({inner}) AS rows_in GROUP BY 1, 2")  # fmt: skip
         n = np.zeros((C, J), dtype=np.int64)
         total = np.zeros((C, J, Q))
         g, a = _ints(t, "g"), _ints(t, "a")
@@ -244,8 +318,8 @@ class SqlEngine:
                               for i in range(Q) for k in range(i, Q))  # fmt: skip
             c_cols = ", ".join(f"c{i}" for i in range(Q))
             t2 = self.query(
-                f"SELECT t.cell AS cell, {prods} FROM (SELECT {cohort} * {J} + a AS cell, "
-                f"{c_cols} FROM work WHERE {where}) AS t JOIN (VALUES {rows}) AS m(cell, {m_cols}) "
+                f"SELECT t.cell AS cell, {prods} FROM (SELECT g * {J} + a AS cell, {c_cols} "
+                f"FROM ({inner}) AS rows_in) AS t JOIN (VALUES {rows}) AS m(cell, {m_cols}) "
                 "ON t.cell = m.cell GROUP BY t.cell"
             )
             idx = _ints(t2, "cell")

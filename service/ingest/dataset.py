@@ -298,6 +298,11 @@ def read_dataset(
         raise InvalidInput(
             f"the dataset has {t.num_rows} rows, its manifest says {manifest.n_rows}"
         )
+    return unit_table(t, spec)
+
+
+def unit_table(t: pa.Table, spec: DatasetSpec) -> tuple[UnitTable, dict[str, np.ndarray]]:
+    """(table, flags) from rows in the dataset's columns: labels back to codes."""
     values: dict[str, np.ndarray] = {}
     for i, f in enumerate(spec.features):
         col = t.column(f"f{i}")
@@ -327,3 +332,31 @@ def read_dataset(
         columns=columns,
     )
     return table, flags
+
+
+def sample_dataset(
+    fs: pafs.FileSystem, paths: list[str], manifest: Manifest, size: int, seed: int
+) -> tuple[UnitTable, dict[str, np.ndarray]]:
+    """A uniform sample of `size` rows without replacement (all rows when there are fewer), in
+    the dataset's row order, read one row group at a time: memory holds the sample and one row
+    group (the file handles stay open until return), whatever the dataset's size. The same seed gives the same rows."""
+    spec = manifest.spec
+    n = manifest.n_rows
+    if size >= n:
+        return read_dataset(fs, paths, manifest)
+    files = [pq.ParquetFile(fs.open_input_file(p)) for p in paths]
+    groups = [(k, g) for k, pf in enumerate(files) for g in range(pf.metadata.num_row_groups)]
+    sizes = np.array([files[k].metadata.row_group(g).num_rows for k, g in groups], dtype=np.int64)
+    if int(sizes.sum()) != n:
+        raise InvalidInput(f"the dataset has {int(sizes.sum())} rows, its manifest says {n}")
+    rng = np.random.default_rng([seed, 0x5A])
+    # how many sampled rows fall in each row group (a multivariate hypergeometric draw), then
+    # which rows within it: together a uniform sample of `size` rows, in O(groups + size) memory
+    take = rng.multivariate_hypergeometric(sizes, size, method="marginals")
+    parts: list[pa.Table] = []
+    for (k, g), rows, m in zip(groups, sizes, take, strict=True):
+        if m:
+            idx = np.sort(rng.choice(int(rows), size=int(m), replace=False))
+            group = files[k].read_row_group(g).select(spec.schema().names)
+            parts.append(group.take(pa.array(idx)).cast(spec.schema()))
+    return unit_table(pa.concat_tables(parts), spec)

@@ -8,9 +8,11 @@ from typing import Any
 import numpy as np
 
 from service.errors import InvalidInput, NotFound
+from service.ingest.dataset import read_dataset
 from service.stats.estimates import CellMoments
 from service.stats.models import METHODS, fit_cohort_model, validate_params
 from service.stats.partition import Partition
+from service.stats.pushdown import PUSHDOWN_METHODS, fit_on_engine
 from service.store import audit, blobs
 from service.store import experiments as exp_repo
 from service.store import jobs as job_repo
@@ -19,8 +21,9 @@ from service.store.audit import Actor
 from service.store.db import Database
 from service.store.tables import Job
 from service.usecases import jobs
+from service.usecases.cellstats import engine_name, open_readout_engine
 from service.usecases.context import Services
-from service.usecases.experiments import load_readout_table, specs_of
+from service.usecases.experiments import readout_data, specs_of
 
 
 def start_fit(
@@ -50,6 +53,15 @@ def start_fit(
                 errors=[{"field": "success_metric", "problem": "unknown metric"}],
             )
         resolved = validate_params(method, dict(params), specs)
+        engine = engine_name(services, readout.n_rows)
+        if engine != "memory" and method not in PUSHDOWN_METHODS:
+            raise InvalidInput(
+                f"method '{method}' is fitted in memory only, and readout {readout_version} has "
+                f"{readout.n_rows} rows, more than the in-memory limit of "
+                f"{services.settings.fit_engine_min_rows} (APPORTION_FIT_ENGINE_MIN_ROWS); "
+                f"fit one of {', '.join(PUSHDOWN_METHODS)} on the {engine} engine",
+                errors=[{"field": "method", "problem": f"not fitted on the {engine} engine"}],
+            )
         srm = readout.summary.get("sample_ratio", {})
         if srm.get("flagged") and not override_reason:
             raise InvalidInput(
@@ -109,17 +121,19 @@ def _run_fit(services: Services, job: Job, progress: Any) -> None:
         method, params, readout_id = row.method, row.params, row.readout_id
     with services.db.write() as s:
         repo.get_model(session=s, model_id=model_id).status = "running"
-    table, _ = load_readout_table(services.db, readout_id=readout_id)
+    data = readout_data(services.db, readout_id=readout_id)
+    engine = engine_name(services, data.n_rows)
     progress(0.05)
     t0 = time.perf_counter()
-    fit = fit_cohort_model(
-        table,
-        method,
-        params["method_params"],
-        success_metric=params.get("success_metric"),
-        progress=lambda p: progress(0.05 + 0.9 * p),
-    )
-    result = fit_result(fit, table.arm_keys, time.perf_counter() - t0)
+    kwargs = {"success_metric": params.get("success_metric"),
+              "progress": lambda p: progress(0.05 + 0.9 * p)}  # fmt: skip
+    if engine == "memory":
+        table, _ = read_dataset(data.filesystem, list(data.paths), data.manifest)
+        fit = fit_cohort_model(table, method, params["method_params"], **kwargs)
+    else:  # above the in-memory limit: the rows stay in their Parquet files
+        with open_readout_engine(services, data, engine) as eng:
+            fit = fit_on_engine(eng, method, params["method_params"], **kwargs)
+    result = fit_result(fit, data.manifest.spec.arm_keys, time.perf_counter() - t0)
     mask = np.packbits(np.asarray(fit.estimation_mask, dtype=bool)).tobytes()
     with services.db.write() as s:  # lock order (store/db.py): the job row, then the model's
         job_repo.finish(session=s, job=job)

@@ -30,8 +30,9 @@ from service.store.audit import Actor, canonical_json
 from service.store.db import utcnow
 from service.store.tables import Job
 from service.usecases import jobs, live
+from service.usecases.cellstats import readout_rows
 from service.usecases.context import Services
-from service.usecases.experiments import load_readout_table, specs_of
+from service.usecases.experiments import specs_of
 from service.usecases.models import moments_of
 
 INLINE_MAX_DRAWS = 1000  # larger impact reports run as a job
@@ -53,11 +54,15 @@ def _model_context(services: Services, model_id: int) -> dict[str, Any]:
         assert exp is not None
         result, declaration, readout_id = row.result, exp.declaration, row.readout_id
         model_method, model_params = row.method, dict(row.params or {})
-    table, _ = load_readout_table(services.db, readout_id=readout_id)
+    # The rows, or on a readout above the in-memory limit a uniform sample of that many rows (the
+    # draft's estimates come from the model's stored cell moments, never from these rows; only the
+    # held-out evaluation, the live baseline and the diff against live read rows).
+    rows = readout_rows(services, readout_id=readout_id, seed=0)
     return {
         "result": result,
         "specs": specs_of(declaration),
-        "table": table,
+        "table": rows.table,
+        "rows": rows,
         "experiment": declaration["key"],
         "partition": Partition.from_dict(result["partition"]),
         "model_id": model_id,
@@ -158,6 +163,7 @@ def _evaluate(
         "verdict": row["status"],
         "folds_without_plan": row["folds_without_plan"],
         "seconds": out["seconds"],
+        **ctx["rows"].describe(),
     }
 
 
@@ -540,6 +546,7 @@ def _diff_against_live(services: Services, row: Any, ptr: Any) -> dict[str, Any]
         "live_version": ptr.active_version,
         "members": int(table.n),
         "share_changed": float(changed.mean()) if table.n else 0.0,
+        **{k: v for k, v in ctx["rows"].describe().items() if k != "rows_used"},
         "weighted_by": "the readout's members (their features and ids)",
         "cohorts": [
             {

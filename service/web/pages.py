@@ -375,11 +375,20 @@ def _held_out_section(v: dict[str, Any], rows: list[MetricRow]) -> str:
     }.get(str(ho.get("verdict")), str(ho.get("verdict")))
     return (
         f'{head}<p class="muted">Lift against all-control on rows whose fold the model and '
-        f"the optimizer never saw ({e(ho.get('folds'))} folds; estimate \u00b1 standard error). "
+        f"the optimizer never saw ({e(ho.get('folds'))} folds; estimate \u00b1 standard error"
+        f"{_sample_note(ho)}). "
         f"Verdict: <strong>{e(verdict)}</strong>.</p><table><thead><tr><th>Metric</th>"
         "<th>Held-out lift</th><th>Allowed</th><th>Holds (held-out)</th></tr></thead>"
         f"<tbody>{''.join(body)}</tbody></table></section>"
     )
+
+
+def _sample_note(d: dict[str, Any]) -> str:
+    """Says so when a figure was computed on a uniform sample of a large readout's rows."""
+    if not d.get("sampled"):
+        return ""
+    used = d.get("rows_used", d.get("members"))
+    return f"; a uniform sample of {e(_count(used))} of the readout's {e(_count(d.get('readout_rows')))} rows"
 
 
 def _diff_section(v: dict[str, Any]) -> str:
@@ -401,7 +410,7 @@ def _diff_section(v: dict[str, Any]) -> str:
     return (
         f'<section id="diff"><h2>Change from live plan</h2><p><strong>{_pct(d.get("share_changed"), 1)}</strong> '
         f"of members would get a different arm than under live version {e(d.get('live_version'))} "
-        f'<span class="muted">(counted over {e(_count(d.get("members")))} members of the readout)</span>.</p>'
+        f'<span class="muted">(counted over {e(_count(d.get("members")))} members of the readout{_sample_note(d)})</span>.</p>'
         f"<table><thead><tr><th>#</th><th>Cohort</th><th>Members</th><th>Arm changes</th></tr></thead>"
         f"<tbody>{rows}</tbody></table></section>"
     )

@@ -129,3 +129,43 @@ def test_engine_choice():
         choose_engine(10, spark_master=None, duckdb_min_rows=100, requested="spark")
     with pytest.raises(InvalidInput, match="engine must be one of"):
         choose_engine(10, spark_master=None, duckdb_min_rows=100, requested="gpu")
+
+
+def test_quantile_positions_are_numpys():
+    # Reference: numpy.quantile(method="inverted_cdf") (Hyndman and Fan's definition 1) on
+    # distinct values 0..n-1, where the value is the position; sizes include ones where n * p is
+    # whole and ones where float64 rounding decides.
+    from service.engines.sql import inverted_cdf_positions
+
+    for n in (1, 2, 3, 7, 10, 64, 100, 999, 1000, 12_345):
+        for max_bins in (2, 3, 10, 16, 64, 255):
+            probs = np.arange(1, max_bins) / max_bins
+            want = np.quantile(np.arange(n), probs, method="inverted_cdf")
+            np.testing.assert_array_equal(inverted_cdf_positions(n, probs), want)
+
+
+def test_engine_quantiles_equal_numpys_with_ties_and_missing(tmp_path):
+    # Reference: numpy.quantile(method="inverted_cdf") over the non-missing values.
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from service.engines.dataset import ReadoutDataset
+    from service.stats.table import FeatureSpec, MetricSpec
+
+    rng = np.random.default_rng(8)
+    x = np.round(rng.gamma(2.0, 3.0, 5_000), 1)  # many ties
+    x[rng.choice(5_000, 400, replace=False)] = np.nan
+    mask = np.zeros(5_000, dtype=bool)
+    mask[:50] = True  # nulls as well as NaN
+    t = pa.table({"unit_id": [f"u{i}" for i in range(5_000)], "arm": ["a"] * 2_500 + ["b"] * 2_500,
+                  "x": pa.array(x, mask=mask), "y": rng.normal(size=5_000)})  # fmt: skip
+    pq.write_table(t, tmp_path / "q.parquet", row_group_size=700)
+    ds = ReadoutDataset.open(str(tmp_path / "q.parquet"), arm_keys=("a", "b"), design_shares=[0.5, 0.5],
+                             features=(FeatureSpec("x", "numeric"),), metrics=(MetricSpec("y", "mean"),))  # fmt: skip
+    kept = x[~mask & ~np.isnan(x)]
+    for max_bins in (4, 16, 64):
+        probs = np.arange(1, max_bins) / max_bins
+        with open_engine(ds, "duckdb", memory_limit="64MB") as eng:
+            q, lo = eng.quantiles("x", probs)
+        np.testing.assert_array_equal(q, np.quantile(kept, probs, method="inverted_cdf"))
+        assert lo == kept.min()
