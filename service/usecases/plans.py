@@ -30,7 +30,7 @@ from service.store.audit import Actor, canonical_json
 from service.store.db import utcnow
 from service.store.tables import Job
 from service.usecases import jobs, live
-from service.usecases.cellstats import readout_rows
+from service.usecases.cellstats import Rows, readout_rows
 from service.usecases.context import Services
 from service.usecases.experiments import specs_of
 from service.usecases.models import moments_of
@@ -54,21 +54,26 @@ def _model_context(services: Services, model_id: int) -> dict[str, Any]:
         assert exp is not None
         result, declaration, readout_id = row.result, exp.declaration, row.readout_id
         model_method, model_params = row.method, dict(row.params or {})
-    # The rows, or on a readout above the in-memory limit a uniform sample of that many rows (the
-    # draft's estimates come from the model's stored cell moments, never from these rows; only the
-    # held-out evaluation, the live baseline and the diff against live read rows).
-    rows = readout_rows(services, readout_id=readout_id, seed=0)
     return {
         "result": result,
         "specs": specs_of(declaration),
-        "table": rows.table,
-        "rows": rows,
+        "load_rows": lambda: readout_rows(services, readout_id=readout_id, seed=0),
         "experiment": declaration["key"],
         "partition": Partition.from_dict(result["partition"]),
         "model_id": model_id,
         "model_method": model_method,
         "model_params": model_params,
     }
+
+
+def _rows(ctx: dict[str, Any]) -> Rows:
+    """The readout's rows, read on first use: all of them, or above the in-memory limit a uniform
+    sample of that many (the draft's estimates come from the model's stored cell moments, never
+    from rows; only the held-out evaluation, the live baseline and the diff against live read
+    rows, and they say when they ran on a sample)."""
+    if "rows" not in ctx:
+        ctx["rows"] = ctx["load_rows"]()
+    return ctx["rows"]
 
 
 def table_columns(table: UnitTable) -> dict[str, list[Any]]:
@@ -85,7 +90,7 @@ def _live_allocation_on(services: Services, plan: str, ctx: dict[str, Any]) -> n
             f"baseline 'live' needs a live version of plan '{plan}'; it has none",
             errors=[{"field": "baseline", "problem": "no live version"}],
         )
-    table: UnitTable = ctx["table"]
+    table: UnitTable = _rows(ctx).table
     live_cohort = np.array(
         [a.cohort for a in compiled.assign_columns(list(table.unit_ids), table_columns(table))]
     )
@@ -140,7 +145,7 @@ def _evaluate(
     fold's plan is scored with doubly robust scores on the fold it never saw; see
     service/optimize/crossfit.py. They estimate the procedure's lift against all-control.
     It refits the model once per fold, so it runs as a job (`held_out`), never in a request."""
-    table: UnitTable = ctx["table"]
+    table: UnitTable = _rows(ctx).table
     params = dict((ctx.get("model_params") or {}).get("method_params") or {})
     cand = Candidate(ctx["model_method"], spec["method"], spec["allocation"])
     out = evaluate_candidates(
@@ -163,7 +168,7 @@ def _evaluate(
         "verdict": row["status"],
         "folds_without_plan": row["folds_without_plan"],
         "seconds": out["seconds"],
-        **ctx["rows"].describe(),
+        **_rows(ctx).describe(),
     }
 
 
@@ -529,7 +534,7 @@ def _diff_against_live(services: Services, row: Any, ptr: Any) -> dict[str, Any]
         if key in _diff_cache:
             return _diff_cache[key]
     ctx = _model_context(services, row.model_id)
-    table: UnitTable = ctx["table"]
+    table: UnitTable = _rows(ctx).table
     members, cols = list(table.unit_ids), table_columns(table)
     mine = live.compile_version(row, ctx["partition"], revision=0).assign_columns(members, cols)
     current = live.load_compiled(services.db, row.plan)
@@ -546,7 +551,7 @@ def _diff_against_live(services: Services, row: Any, ptr: Any) -> dict[str, Any]
         "live_version": ptr.active_version,
         "members": int(table.n),
         "share_changed": float(changed.mean()) if table.n else 0.0,
-        **{k: v for k, v in ctx["rows"].describe().items() if k != "rows_used"},
+        **{k: v for k, v in _rows(ctx).describe().items() if k != "rows_used"},
         "weighted_by": "the readout's members (their features and ids)",
         "cohorts": [
             {

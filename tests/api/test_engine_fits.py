@@ -4,6 +4,8 @@ row-reading steps run on a uniform sample and say so."""
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pytest
 from fastapi.testclient import TestClient
@@ -19,7 +21,7 @@ N = 4_000
 def big(db_url: str):  # type: ignore[no-untyped-def]
     from service.app import create_app
 
-    app = create_app(make_settings(db_url, fit_engine_min_rows=LIMIT))
+    app = create_app(make_settings(db_url, fit_engine_min_rows=LIMIT, held_out_folds=2))
     with TestClient(app, raise_server_exceptions=False) as c:
         keys = make_keys(c.app.state.services)  # type: ignore[attr-defined]
         decl = experiment_declaration()
@@ -60,7 +62,13 @@ def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
 
     # the plan draft reads rows for its held-out evaluation: a uniform sample of LIMIT rows
     v = draft_plan(c, keys, int(r.json()["model_id"]))
+    url = f"/v1/plans/lesson-length/versions/{v['version']}"
+    deadline = time.monotonic() + 300
+    while v["report"]["held_out"]["status"] == "pending" and time.monotonic() < deadline:
+        time.sleep(0.2)
+        v = c.get(url, headers=keys.h(keys.reader)).json()
     held = v["report"]["held_out"]
+    assert held["status"] == "complete", held
     assert held.get("sampled") is True, held
     assert held["rows_used"] == LIMIT and held["readout_rows"] == N
     page = c.get(f"/ui/fragments/plans/lesson-length/versions/{v['version']}",
