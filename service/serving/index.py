@@ -54,6 +54,9 @@ __all__ = [
 
 _NoneType = type(None)
 _EXACT_INT = 2**53  # ints up to this size compare with a float64 threshold as their double does
+# The batch walk's (node, code) -> next node table is kept while it has at most this many cells
+# (8 bytes each, 16 MiB); beyond, the walk compares numeric codes instead (see _compile_flat).
+TABLE_CELLS = 1 << 21
 _MAX_CACHED_ANSWERS = 65_536  # distinct batch answers kept per plan version (cleared when full)
 _SHARE_TOL = 1e-6  # an allocation row may miss 1 by this much (solver rounding); it is renormalised
 
@@ -186,6 +189,8 @@ class CompiledPlan:
         "_cuts",
         "_next",
         "_defaulted",
+        "_children",
+        "node_rank",
         "_portable",
     )
 
@@ -246,11 +251,13 @@ class CompiledPlan:
         """Flat arrays for the vectorised walk. Every value becomes a small integer code first:
         a categorical level its index in the feature's level table, a number the count of the
         feature's distinct split thresholds at or below it (so x < threshold k, the k-th
-        smallest, is code <= k), and `_missing_code` (one past the largest code of any feature)
-        stands for missing, NaN or an unknown level. Then every node, numeric or categorical, is
-        one row of a (node, code) -> next node table, and a step of the walk is a few gathers
-        for all members at once. Leaves send every code to themselves, so the walk runs a fixed
-        `depth` steps."""
+        smallest, is code <= k, `node_rank`), and `_missing_code` (one past the largest code of
+        any feature) stands for missing, NaN or an unknown level. When the table is small
+        (nodes x codes at most `TABLE_CELLS`), every node, numeric or categorical, is one row of
+        a (node, code) -> next node table, and a step of the walk is a few gathers for all
+        members at once; a larger tree (many thresholds on one feature) walks with a comparison
+        per numeric node instead, in memory linear in the nodes. Leaves send every code to
+        themselves, so the walk runs a fixed `depth` steps."""
         s = object.__setattr__
         n = p.n_nodes
         codes: list[dict[str, int]] = []
@@ -271,23 +278,24 @@ class CompiledPlan:
             else np.zeros(0)
             for fi, f in enumerate(p.features)
         ]
-        missing = max([len(c) for c in codes] + [len(c) + 1 for c in cuts] + [0])
+        levels_width = max((len(c) for c in codes), default=0)  # codes of categorical levels
+        missing = max([levels_width] + [len(c) + 1 for c in cuts])
         feat = np.where(is_leaf, 0, p.feature).astype(np.intp)
         is_num = np.zeros(n, dtype=bool)
         thr = np.full(n, np.nan)
-        dirs = np.full((n, missing + 1), -1, dtype=np.int8)  # 1 left, 0 right, -1 default
+        rank = np.zeros(n, dtype=np.intp)
+        # categorical directions by level code (1 left, 0 right, -1 default); the last column
+        # stands for every code past the levels (missing); leaves send every code left (self)
+        dirs = np.full((n, levels_width + 1), -1, dtype=np.int8)
         for nd in range(n):
             if is_leaf[nd]:
-                dirs[nd] = 1  # a leaf "knows" every code and sends it to itself
+                dirs[nd] = 1
                 continue
             f = p.features[int(feat[nd])]
             if f.kind == "numeric":
                 is_num[nd] = True
                 thr[nd] = float(p.threshold[nd])
-                ft = cuts[int(feat[nd])]
-                k = int(np.searchsorted(ft, thr[nd]))  # thr[nd] == ft[k]
-                dirs[nd, : k + 1] = 1
-                dirs[nd, k + 1 : len(ft) + 1] = 0
+                rank[nd] = int(np.searchsorted(cuts[int(feat[nd])], thr[nd]))  # cuts[k] == thr
             else:
                 lut = codes[int(feat[nd])]
                 for lv in p.right_levels[nd]:
@@ -297,25 +305,40 @@ class CompiledPlan:
         self_idx = np.arange(n, dtype=np.intp)
         left = np.where(is_leaf, self_idx, p.left).astype(np.intp)
         right = np.where(is_leaf, self_idx, p.right).astype(np.intp)
-        default = np.where(np.asarray(p.default_left, dtype=bool), left, right)
-        nxt = np.where(
-            dirs == 1, left[:, None], np.where(dirs == 0, right[:, None], default[:, None])
-        )
+        default_left = np.asarray(p.default_left, dtype=bool).copy()
+        width = missing + 1
+        if n * width <= TABLE_CELLS:
+            code = np.arange(width)[None, :]
+            side = np.where(  # (n, width): 1 left, 0 right, -1 default
+                is_num[:, None],
+                np.where(code == missing, -1, (code <= rank[:, None]).astype(np.int8)),
+                dirs[:, np.minimum(code[0], levels_width)],
+            )
+            default = np.where(default_left, left, right)
+            nxt = np.where(
+                side == 1, left[:, None], np.where(side == 0, right[:, None], default[:, None])
+            )
+            s(self, "_next", _frozen(nxt.astype(np.intp).reshape(-1)))
+            s(self, "_defaulted", _frozen((side == -1).reshape(-1)))
+        else:
+            s(self, "_next", None)
+            s(self, "_defaulted", None)
         s(self, "_cuts", tuple(_frozen(c) for c in cuts))
-        s(self, "_next", _frozen(nxt.astype(np.intp).reshape(-1)))
-        s(self, "_defaulted", _frozen((dirs == -1).reshape(-1)))
         s(self, "_level_codes", tuple(codes))
         s(self, "_missing_code", missing)
-        s(self, "_width", missing + 1)
+        s(self, "_width", width)
         s(self, "_is_leaf", _frozen(is_leaf))
         s(self, "node_feature", _frozen(feat))
         s(self, "node_is_numeric", _frozen(is_num))
         s(self, "node_threshold", _frozen(thr))
+        s(self, "node_rank", _frozen(rank))
         s(self, "node_directions", _frozen(dirs))
         s(self, "node_left", _frozen(left))
         s(self, "node_right", _frozen(right))
-        s(self, "node_default_left", _frozen(np.asarray(p.default_left, dtype=bool).copy()))
+        s(self, "node_default_left", _frozen(default_left))
         s(self, "node_cohort", _frozen(np.asarray(p.cohort, dtype=np.intp).copy()))
+        # children[2 * node + go_left]: right child at even, left child at odd positions
+        s(self, "_children", _frozen(np.stack([right, left], axis=1).reshape(-1)))
 
     # ---- single lookup ---------------------------------------------------------------------------
     def assign(self, member_id: str, features: Mapping[str, Any]) -> Assignment:
@@ -468,6 +491,8 @@ class CompiledPlan:
     def _walk(self, codes: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
         """Cohort per member (n,) and the (F, n) mask of features whose default was taken: per
         step, each member's node and the code of the node's feature pick the next node."""
+        if self._next is None:
+            return self._walk_compare(codes, n)
         node = np.zeros(n, dtype=np.intp)
         used = np.zeros(codes.shape, dtype=bool)
         ar = np.arange(n, dtype=np.intp)
@@ -481,6 +506,30 @@ class CompiledPlan:
             if d.any():
                 used[f[d], ar[d]] = True
             node = nxt.take(idx)
+        return self.node_cohort.take(node), used
+
+    def _walk_compare(self, codes: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """`_walk` for trees whose (node, code) table would be too large: a numeric node
+        compares the code with its rank, a categorical one looks the code up in its row."""
+        node = np.zeros(n, dtype=np.intp)
+        used = np.zeros(codes.shape, dtype=bool)
+        ar = np.arange(n, dtype=np.intp)
+        flat = codes.reshape(-1)
+        miss = self._missing_code
+        feat, is_num, rank = self.node_feature, self.node_is_numeric, self.node_rank
+        dirs_flat, lw = self.node_directions.reshape(-1), self.node_directions.shape[1] - 1
+        dleft, child = self.node_default_left, self._children
+        for _ in range(self.depth):
+            f = feat.take(node)
+            c = flat.take(f * n + ar)
+            num = is_num.take(node)
+            d = dirs_flat.take(node * (lw + 1) + np.minimum(c, lw))
+            known = np.where(num, c != miss, d >= 0)
+            go_left = np.where(known, np.where(num, c <= rank.take(node), d == 1), dleft.take(node))
+            if not known.all():
+                unknown = ~known
+                used[f[unknown], ar[unknown]] = True
+            node = child.take(2 * node + go_left)
         return self.node_cohort.take(node), used
 
     def _distinct(

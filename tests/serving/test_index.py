@@ -423,10 +423,16 @@ def test_batch_answers_are_kept_between_calls_and_equal_the_single_path():
     assert len({id(a) for a in first}) < len(first)  # equal answers share one object
 
 
-def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path():
+@pytest.mark.parametrize("table", [True, False], ids=["table", "compare"])
+def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path(table, monkeypatch):
     """The batch path turns a number into the count of the feature's thresholds at or below it;
     at a threshold, one double below it, at the infinities, NaN and an int beyond 2**53 it must
-    send members where the single path (x < threshold goes left) sends them."""
+    send members where the single path (x < threshold goes left) sends them, with the (node,
+    code) table and with the comparison walk that large trees use instead."""
+    from service.serving import index
+
+    if not table:
+        monkeypatch.setattr(index, "TABLE_CELLS", 0)
     rng = np.random.default_rng(5)
     p = random_partition(rng, depth=6, n_cohorts=4)
     cp = _plan(p, rng.dirichlet(np.ones(3), size=4))
@@ -439,5 +445,10 @@ def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path(
         {k: values[(i + j) % len(values)] for j, k in enumerate(numeric)}
         for i in range(len(values) * 3)
     ]
+    for i, r in enumerate(rows):  # categorical features too: known, unseen and missing levels
+        for f in p.features:
+            if f.kind == "categorical" and i % 3:
+                r[f.key] = (*f.levels, "unseen")[i % (len(f.levels) + 1)]
     ids = [f"edge-{i}" for i in range(len(rows))]
+    assert (cp._next is None) is not table
     assert cp.assign_batch(ids, rows) == [cp.assign(m, r) for m, r in zip(ids, rows, strict=True)]
