@@ -16,6 +16,7 @@ from service.api import openapi, problems
 from service.api.routes import (
     assign,
     audit,
+    comparisons,
     experiments,
     health,
     jobs,
@@ -114,7 +115,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     problems.install(app)
     openapi.install(app)
     # the lookup routes first: route matching walks the routers in this order
-    for r in (assign, health, keys, audit, experiments, models, jobs, plans, watch, ui):
+    for r in (assign, health, keys, audit, experiments, comparisons, models, jobs, plans, watch, ui):
         app.include_router(r.router)
     app.add_middleware(RequestContextMiddleware)
     # in front of everything, FastAPI's own per-request work included: the lookups skip the

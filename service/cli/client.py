@@ -181,6 +181,16 @@ class Api:
     def get_job(self, job_id: str) -> dict[str, Any]:
         return self._get(f"/v1/jobs/{job_id}")
 
+    # method comparisons
+    def start_comparison(self, key: str, body: dict[str, Any]) -> dict[str, Any]:
+        return self._post(f"/v1/experiments/{key}/comparisons", body)
+
+    def get_comparison(self, key: str, number: int) -> dict[str, Any]:
+        return self._get(f"/v1/experiments/{key}/comparisons/{number}")
+
+    def list_comparisons(self, key: str) -> dict[str, Any]:
+        return self._get(f"/v1/experiments/{key}/comparisons")
+
     # plans
     def list_plans(self) -> list[dict[str, Any]]:
         return self._get("/v1/plans")["plans"]
@@ -822,12 +832,125 @@ def cmd_job_show(args: argparse.Namespace) -> int:
     return 0 if got["status"] != "failed" else 1
 
 
+def render_comparison(c: dict[str, Any]) -> str:
+    """A comparison: what was compared, then (when done) one row per candidate in the server's
+    order (guardrails holding on held-out folds first, by held-out success lift), every
+    guardrail's held-out lift beside it, and the recommendation with its reason."""
+    spec = c.get("spec") or {}
+    head = _kv(
+        [
+            ("comparison", f"{c['experiment']} #{c['number']}"),
+            ("readout", c.get("readout_version")),
+            ("success metric", spec.get("success_metric")),
+            ("folds", spec.get("folds")),
+            ("status", c["status"]),
+        ]
+    )
+    if c["status"] == "failed":
+        return f"{head}\n\nthe comparison failed: {c.get('error')}"
+    if c["status"] != "done":
+        return f"{head}\nprogress  {c.get('progress', 0):.0%}"
+    success = spec.get("success_metric")
+    guards = [g["metric"] for g in spec.get("guardrails") or []]
+    rows = []
+    for r in c.get("table") or []:
+        m = r["metrics"]
+        cells = [r["rank"], r["candidate"], r["status"],
+                 f"{fmt_num(m[success]['lift'])} ± {m[success]['se']:.4f}"]  # fmt: skip
+        cells += [f"{fmt_num(m[g]['lift'])} ± {m[g]['se']:.4f}" for g in guards]
+        cells += [r.get("folds_without_plan"), r.get("seconds")]
+        rows.append(cells)
+    headers = ["rank", "candidate", "guardrails", f"{success} lift"]
+    headers += [f"{g} lift" for g in guards] + ["folds w/o plan", "seconds"]
+    rec = c.get("recommended")
+    tail = [
+        "",
+        "Held-out lifts against all-control, ± standard error; each candidate's plans were made",
+        "without the fold they are scored on. guardrails: verified (holds with the stated",
+        "confidence), unverified (estimate within the threshold, not yet with that confidence),",
+        "refused (estimate beyond the threshold).",
+        "",
+        f"recommended: {rec or 'none'}",
+        f"why: {c.get('reason')}",
+    ]
+    return "\n".join([head, "", format_table(rows, headers), *tail])
+
+
+@_command
+def cmd_comparison_start(args: argparse.Namespace) -> int:
+    body: dict[str, Any] = dict(read_json_file(args.spec)) if args.spec else {}
+    for opt in ("success_metric", "folds", "seed", "confidence", "notes"):
+        v = getattr(args, opt, None)
+        if v is not None:
+            body[opt] = v
+    if args.readout is not None:
+        body["readout_version"] = args.readout
+    if args.model is not None:
+        body["model_id"] = args.model
+    if args.candidate:
+        body["candidates"] = list(args.candidate)
+    if args.guardrail:
+        body["guardrails"] = [_guardrail_arg(g) for g in args.guardrail]
+    if "success_metric" not in body:
+        raise LocalError("give the success metric with --success-metric (or in the spec file)")
+    with _api(args) as api:
+        started = api.start_comparison(args.key, body)
+        if args.no_wait:
+            _emit(args, started, lambda: (
+                f"comparison {started['number']} queued as job {started['job_id']}; read it with "
+                f"'apportion comparison show {args.key} {started['number']}'"))  # fmt: skip
+            return 0
+        bar = None if args.json else ProgressBar(f"comparison {started['number']}")
+        job = wait_for_job(api, started["job_id"], bar=bar)
+        got = api.get_comparison(args.key, started["number"])
+    _emit(args, got, lambda: render_comparison(got))
+    return 0 if job["status"] == "done" else 1
+
+
+def _guardrail_arg(text: str) -> dict[str, Any]:
+    """METRIC=THRESHOLD[:relative][@CONFIDENCE], e.g. refund=0.01 or churn=2:relative@0.9."""
+    metric, sep, rest = text.partition("=")
+    if not sep or not metric or not rest:
+        raise LocalError(f"--guardrail must look like metric=threshold[:relative][@confidence], got '{text}'")
+    rest, _, conf = rest.partition("@")
+    value, _, unit = rest.partition(":")
+    try:
+        g: dict[str, Any] = {"metric": metric.strip(), "threshold": float(value)}
+        if conf:
+            g["confidence"] = float(conf)
+    except ValueError as exc:
+        raise LocalError(f"--guardrail '{text}': threshold and confidence must be numbers") from exc
+    if unit:
+        g["unit"] = unit
+    return g
+
+
+@_command
+def cmd_comparison_show(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        got = api.get_comparison(args.key, args.number)
+    _emit(args, got, lambda: render_comparison(got))
+    return 0 if got["status"] != "failed" else 1
+
+
+@_command
+def cmd_comparison_list(args: argparse.Namespace) -> int:
+    with _api(args) as api:
+        got = api.list_comparisons(args.key)
+    rows = [[c["number"], c["status"], c["success_metric"], c["candidates"], c["recommended"],
+             c["created_by"], c["created_at"]] for c in got["comparisons"]]  # fmt: skip
+    _emit(args, got, lambda: format_table(
+        rows, ["number", "status", "success", "candidates", "recommended", "by", "at"]))  # fmt: skip
+    return 0
+
+
 def draft_spec(base: dict[str, Any], args: argparse.Namespace) -> dict[str, Any]:
     """The draft body: the spec file, then the options given on the command line."""
     spec = dict(base)
     if args.model is not None:
         spec["model_id"] = args.model
-    for opt in ("success_metric", "method", "allocation", "baseline", "draws", "seed", "notes"):
+    for opt in ("success_metric", "method", "allocation", "baseline", "draws", "seed", "notes",
+                "comparison"):  # fmt: skip
         v = getattr(args, opt, None)
         if v is not None:
             spec[opt] = v
@@ -1227,6 +1350,30 @@ def add_commands(sub: argparse._SubParsersAction, *, audit: argparse._SubParsers
     p = leaf(jsub, "show", cmd_job_show, "a job's status and progress")
     p.add_argument("id")
 
+    cm = sub.add_parser("comparison", help="compare decision methods on a readout (HTTP)")
+    csub = cm.add_subparsers(dest="comparison_action", required=True)
+    p = leaf(csub, "start", cmd_comparison_start,
+             "cross-fit candidate methods on a readout and rank them (runs as a job)")  # fmt: skip
+    p.add_argument("key", help="experiment key")
+    p.add_argument("--readout", type=int, default=None, help="readout version")
+    p.add_argument("--model", type=int, default=None, help="or: a cohort model (its readout)")
+    p.add_argument("--spec", default=None, help="JSON file: candidates, guardrails, params...")
+    p.add_argument("--success-metric", default=None)
+    p.add_argument("--guardrail", action="append", metavar="METRIC=THRESHOLD[:relative][@CONF]",
+                   help="a guardrail (repeatable)")  # fmt: skip
+    p.add_argument("--candidate", action="append", metavar="MODEL/OPTIMIZER",
+                   help="a candidate (repeatable; default: every one the service offers)")  # fmt: skip
+    p.add_argument("--confidence", type=float, default=None)
+    p.add_argument("--folds", type=int, default=None)
+    p.add_argument("--seed", type=int, default=None)
+    p.add_argument("--notes", default=None)
+    p.add_argument("--no-wait", action="store_true", help="return once the job is queued")
+    p = leaf(csub, "show", cmd_comparison_show, "a comparison's table and recommendation")
+    p.add_argument("key")
+    p.add_argument("number", type=int)
+    p = leaf(csub, "list", cmd_comparison_list, "an experiment's comparisons")
+    p.add_argument("key")
+
     pl = sub.add_parser("plan", help="draft, review, activate and roll back plans (HTTP)")
     psub = pl.add_subparsers(dest="plan_action", required=True)
     p = leaf(psub, "draft", cmd_plan_draft, "draft a plan version from a cohort model")
@@ -1242,6 +1389,9 @@ def add_commands(sub: argparse._SubParsersAction, *, audit: argparse._SubParsers
     p.add_argument("--draws", type=int, default=None, help="bootstrap draws of the impact report")
     p.add_argument("--seed", type=int, default=None)
     p.add_argument("--notes", default=None)
+    p.add_argument(
+        "--comparison", type=int, default=None, help="the comparison number this method follows"
+    )
     p.add_argument("--no-wait", action="store_true", help="do not wait for a report job")
     leaf(psub, "list", cmd_plan_list, "all plans with their live version")
     p = leaf(psub, "show", cmd_plan_show, "a plan's versions and activations, or one version")

@@ -68,6 +68,7 @@ def _worker_loop() -> int:
     import threading
 
     from service.app import build_services
+    from service.usecases import comparisons as _comparisons  # noqa: F401  (comparison jobs)
     from service.usecases import models as _models  # noqa: F401  (registers the fit handler)
     from service.usecases import plans as _plans  # noqa: F401  (registers the report handler)
     from service.usecases import sources as _sources  # noqa: F401  (registers readout imports)

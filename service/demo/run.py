@@ -4,7 +4,8 @@ It starts the app with uvicorn in a background thread on 127.0.0.1 (port 8000 wh
 free one) over a fresh SQLite file under ./var/ (a new file each run, so reruns are clean), then
 drives every step with the same `Api` methods the `apportion` command line uses
 (`service/cli/client.py`): declare the experiment, upload a simulated readout, fit a `causal_tree`
-model, draft a `chance` plan with the scenario's three guardrails, approve it with a second key,
+model, compare a short list of decision methods on held-out folds of the readout, draft a plan with
+the recommended one (and the scenario's three guardrails), approve it with a second key,
 activate it, answer sample assignments, draft, approve and activate a second version and roll it
 back, verify the audit chain, and print a report that compares the plan with the truth: the
 scenario's effect functions evaluated on the plan's allocation per learner (`true_lifts`), the
@@ -39,6 +40,7 @@ from service.cli.client import (
     fmt_arms,
     fmt_num,
     format_table,
+    render_comparison,
     report_metric_rows,
     wait_for_job,
 )
@@ -236,6 +238,14 @@ def truth_table(
     }
 
 
+# the demo's short list (the full registry is the API's default; bench/compare.py times it)
+COMPARED = ("global/chance", "causal_tree/chance", "causal_tree/stochastic", "policy_tree/chance")
+
+
+def _indent(text: str) -> str:
+    return "\n".join(f"        {line}" if line else "" for line in text.splitlines())
+
+
 def run_demo(
     *,
     learners: int = 200_000,
@@ -269,7 +279,7 @@ def run_demo(
     app = create_app(settings)
     running = serve_in_thread(app, port=port)
     url = running.url
-    steps = _Steps(out, 14)
+    steps = _Steps(out, 15)
     post_launch = max(2_000, learners // 10)
     report: dict[str, Any] = {"url": url, "database": str(db_path), "learners": learners}
     try:
@@ -325,19 +335,47 @@ def run_demo(
             model = analyst.get_model(started["model_id"])
             out.write(f"        model {model['id']}: {len(model['cohorts'])} cohorts\n")
 
+        with steps.step("compare decision methods on held-out folds (POST .../comparisons, a job)"):
+            compared = analyst.start_comparison(sc.EXPERIMENT_KEY, {
+                "model_id": model["id"], "success_metric": sc.SUCCESS,
+                "guardrails": sc.GUARDRAILS, "candidates": list(COMPARED), "folds": 3,
+                "seed": seed,
+                "notes": "demo: which method to draft the plan with"})  # fmt: skip
+            wait_for_job(analyst, compared["job_id"], bar=ProgressBar("        comparison"))
+            comparison = analyst.get_comparison(sc.EXPERIMENT_KEY, compared["number"])
+            if comparison["status"] != "done":
+                raise RuntimeError(f"the comparison failed: {comparison.get('error')}")
+            out.write(_indent(render_comparison(comparison)) + "\n")
+            report["comparison"] = {k: comparison.get(k) for k in ("number", "recommended", "reason")}
+            chosen = comparison["recommended"] or "causal_tree/chance"
+            chosen_model, _, optimizer = chosen.partition("/")
+            if chosen_model != model["method"]:  # the recommendation needs its own cohort model
+                again = analyst.fit_model(sc.EXPERIMENT_KEY, readout_version=readout["version"],
+                                          method=chosen_model, params={"seed": seed},
+                                          success_metric=sc.SUCCESS)  # fmt: skip
+                job = wait_for_job(analyst, again["job_id"], bar=ProgressBar("        fit"))
+                if job["status"] != "done":
+                    raise RuntimeError(f"the fit failed: {job['error']}")
+                model = analyst.get_model(again["model_id"])
+                out.write(f"        model {model['id']} ({chosen_model}): "
+                          f"{len(model['cohorts'])} cohorts\n")  # fmt: skip
+
         spec = {
             "model_id": model["id"],
             "success_metric": sc.SUCCESS,
             "guardrails": sc.GUARDRAILS,
-            "method": "chance",
+            "method": optimizer,
             "allocation": "mixed",
             "holdout": {"share": 0.05, "arm": sc.ARMS[0]},
             "baseline": "control",
             "draws": draws,
             "seed": seed,
-            "notes": "demo: chance-constrained plan with the three guardrails at 80 % each",
+            "notes": f"demo: {chosen}, the method comparison {comparison['number']} recommended "
+            "(or the default when it recommended none)",
         }
-        with steps.step("draft version 1: a chance-constrained plan (POST /v1/plans/.../versions)"):
+        if comparison["recommended"]:
+            spec["comparison"] = comparison["number"]
+        with steps.step("draft version 1 with the recommended method (POST /v1/plans/.../versions)"):
             v1 = finish_report(analyst, analyst.draft_plan(PLAN, spec), bar=None)
             out.write(_held_out_line(v1["report"].get("held_out") or {}))
 
@@ -374,8 +412,8 @@ def run_demo(
             )
             report["assignments"] = answers
 
-        spec2 = {
-            **spec,
+        spec2 = {  # a point-estimate plan the comparison did not rank: it names no comparison
+            **{k: v for k, v in spec.items() if k != "comparison"},
             "method": "deterministic",
             "holdout": {"share": 0.10, "arm": sc.ARMS[0]},
             "notes": "demo: the point-estimate plan with a 10 % holdout",
@@ -386,7 +424,7 @@ def run_demo(
             act2 = approver.activate(PLAN, v2["version"], "demo: try the point-estimate plan")
 
         with steps.step("roll back to version 1 (POST /v1/plans/.../rollback)"):
-            back = approver.rollback(PLAN, "demo: back to the chance-constrained plan")
+            back = approver.rollback(PLAN, "demo: back to the recommended plan")
             plan_state = analyst.get_plan(PLAN)
             report["activations"] = [act1, act2, back]
             report["live_version"] = plan_state["live_version"]
@@ -410,6 +448,7 @@ def run_demo(
             truth = truth_table(v1, model, learners, seed)
             report.update(truth)
             report["cohorts"] = v1["allocation"]["cohorts"]
+            report["method_v1"] = chosen
 
         with steps.step("read the audit trail of the plan (GET /v1/audit)"):
             trail = analyst.audit(entity="plan", entity_id=PLAN)
@@ -438,7 +477,7 @@ def run_demo(
 
 def _print_report(r: dict[str, Any], out: TextIO) -> None:
     w = out.write
-    w("\n=== Report: plan lesson-length, version 1 (chance-constrained, mixed) ===\n\n")
+    w(f"\n=== Report: plan lesson-length, version 1 ({r.get('method_v1')}, mixed) ===\n\n")
     w("Cohorts and their arms:\n")
     w(
         format_table(

@@ -39,6 +39,11 @@ from service.stats.table import UnitTable
 
 FOLDS = 5
 FOLD_DRAWS = 40  # calibration draws per fold plan (the final plan uses the full count)
+# The comparison runs every candidate in every fold, and the calibration's re-solves dominate its
+# time (bench/compare.py): it calibrates each fold plan with half the draws. The held-out figures
+# stay honest (they score the plans actually made); the fold plans' margins are a little noisier
+# than a draft's (relative se of a 20-draw sd about 16 % against 11 % at 40).
+COMPARISON_DRAWS = 20
 # methods that need caller input (segments: which features) are not candidates by default
 NEEDS_INPUT = ("segments",)
 
@@ -112,18 +117,66 @@ def run_pipeline(
 ):
     """The candidate's plan on `table`: (cohort model fit, allocation (C, J), calibrated
     probabilities or None when no plan met the guardrails and control is served)."""
-    params = model_params_for(cand, guardrails, {"seed": seed, **(model_params or {})})
-    fit = cohort_models.fit_cohort_model(table, cand.model, params, success_metric=success)
+    fit = fit_model(table, cand.model, success=success, guardrails=guardrails,
+                    model_params=model_params, seed=seed)  # fmt: skip
+    x, prob = solve_on_fit(table, fit, cand, success=success, guardrails=guardrails, seed=seed,
+                           draws=draws)  # fmt: skip
+    return fit, x, prob
+
+
+def fit_model(table: UnitTable, model: str, *, success: str,
+              guardrails: tuple[Guardrail, ...] = (), model_params: dict | None = None,
+              seed: int = 0):  # fmt: skip
+    """The cohort model of one fold: fitted once and shared by every optimizer that uses it (a
+    decision-focused method prices the guardrails, `model_params_for`)."""
+    params = model_params_for(Candidate(model, "deterministic"), guardrails,
+                              {"seed": seed, **(model_params or {})})  # fmt: skip
+    return cohort_models.fit_cohort_model(table, model, params, success_metric=success)
+
+
+def solve_on_fit(
+    table: UnitTable,
+    fit,
+    cand: Candidate,
+    *,
+    success: str,
+    guardrails: tuple[Guardrail, ...],
+    seed: int = 0,
+    draws: int = FOLD_DRAWS,
+):
+    """The calibrated allocation (C, J) of `cand`'s optimizer on a fitted model, and its
+    calibrated probabilities (None when no plan met the guardrails and control is served)."""
     problem = build_problem(shares=fit.shares, moments=fit.moments, metrics=table.metrics,
                             success=success, guardrails=guardrails)  # fmt: skip
     try:
         sol, cal, _, _ = calibrated_solve(problem, cand.optimizer, cand.allocation, seed=seed,
                                           draws=draws)  # fmt: skip
-        return fit, sol.allocation, cal.probability
+        return sol.allocation, cal.probability
     except Infeasible:
         x = np.zeros((fit.partition.n_cohorts, table.n_arms))
         x[:, 0] = 1.0
-        return fit, x, None
+        return x, None
+
+
+MIN_PER_ARM_AND_FOLD = 10  # held-out units of every arm in every fold (each trains on the rest)
+
+
+def check_folds(arm_counts: dict[str, int], folds: int) -> None:
+    """InvalidInput unless every arm has at least MIN_PER_ARM_AND_FOLD units per fold: a fold
+    with a handful of units of some arm gives a doubly robust score dominated by one weight and a
+    standard error that means nothing."""
+    if folds < 2 or folds > 20:
+        raise InvalidInput(f"folds must be in 2..20, got {folds}", errors=[{"field": "folds"}])
+    need = MIN_PER_ARM_AND_FOLD * folds
+    short = {a: int(c) for a, c in arm_counts.items() if int(c) < need}
+    if short:
+        listed = ", ".join(f"{a!r} has {c}" for a, c in short.items())
+        raise InvalidInput(
+            f"too few rows for {folds} folds: every arm needs at least {need} units "
+            f"({MIN_PER_ARM_AND_FOLD} per fold); {listed}. Use fewer folds or a larger readout",
+            errors=[{"field": "folds", "problem": "too few rows", "value": folds,
+                     "arms": short}],  # fmt: skip
+        )
 
 
 def _scores(table: UnitTable, fit, x: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -177,10 +230,13 @@ def evaluate_candidates(
     seed: int = 0,
     model_params: dict[str, dict] | None = None,
     progress: Callable[[float], None] | None = None,
+    draws: int = FOLD_DRAWS,
 ) -> dict:
-    """Cross-fit every candidate and rank them (see the module docstring and `recommend`)."""
-    if folds < 2 or folds > 20:
-        raise InvalidInput(f"folds must be in 2..20, got {folds}", errors=[{"field": "folds"}])
+    """Cross-fit every candidate and rank them (see the module docstring and `recommend`);
+    `draws`: calibration draws per fold plan."""
+    check_folds({str(k): int(v) for k, v in
+                 zip(table.arm_keys, np.bincount(table.arm, minlength=table.n_arms), strict=True)},
+                folds)  # fmt: skip
     t_all = time.perf_counter()
     fold = fold_ids(table.arm, folds, seed)
     n = table.n
@@ -190,23 +246,38 @@ def evaluate_candidates(
     infeasible = {c.name: 0 for c in candidates}
     fold_vals = {c.name: [] for c in candidates}
     seconds = {c.name: 0.0 for c in candidates}
-    steps, done = folds * len(candidates), 0
+    by_model: dict[str, list[Candidate]] = {}
+    for cand in candidates:  # each model is fitted once per fold; every optimizer reuses it
+        by_model.setdefault(cand.model, []).append(cand)
+    steps, done = folds * (len(by_model) + len(candidates)), 0
+    fit_seconds = dict.fromkeys(by_model, 0.0)
+
+    def tick() -> None:
+        nonlocal done
+        done += 1
+        if progress is not None:
+            progress(done / steps)
+
     for f in range(folds):
         train, test = np.flatnonzero(fold != f), np.flatnonzero(fold == f)
         tr = table.take(train)
-        for cand in candidates:
+        for model, group in by_model.items():
             t0 = time.perf_counter()
-            params = (model_params or {}).get(cand.model)
-            fit, x, prob = run_pipeline(tr, cand, success=success, guardrails=guardrails,
-                                        model_params=params, seed=seed + f)  # fmt: skip
-            psi[cand.name][test] = _scores(table, fit, x, test)
-            if cand is candidates[0]:
+            fit = fit_model(tr, model, success=success, guardrails=guardrails, seed=seed + f,
+                            model_params=(model_params or {}).get(model))  # fmt: skip
+            fit_seconds[model] += time.perf_counter() - t0
+            fit_share = (time.perf_counter() - t0) / len(group)
+            tick()
+            if model == candidates[0].model:
                 base[test] = _control_scores(table, fit, test)
-            infeasible[cand.name] += prob is None
-            seconds[cand.name] += time.perf_counter() - t0
-            done += 1
-            if progress is not None:
-                progress(done / steps)
+            for cand in group:
+                t0 = time.perf_counter()
+                x, prob = solve_on_fit(tr, fit, cand, success=success, guardrails=guardrails,
+                                       seed=seed + f, draws=draws)  # fmt: skip
+                psi[cand.name][test] = _scores(table, fit, x, test)
+                infeasible[cand.name] += prob is None
+                seconds[cand.name] += fit_share + time.perf_counter() - t0
+                tick()
         for cand in candidates:
             fv = {k: _metric_influence(table, k, psi[cand.name][test], base[test])[0] for k in keys}
             fold_vals[cand.name].append(fv)
@@ -225,7 +296,9 @@ def evaluate_candidates(
                      "metrics": metrics, "folds_without_plan": infeasible[cand.name],
                      "seconds": round(seconds[cand.name], 3)})  # fmt: skip
     out = recommend(table, rows, psi, base, success=success, guardrails=guardrails)
-    out.update(folds=folds, seed=seed, units=n, seconds=round(time.perf_counter() - t_all, 3))
+    out.update(folds=folds, seed=seed, units=n, draws=draws,
+               seconds=round(time.perf_counter() - t_all, 3),
+               fit_seconds={m: round(v, 3) for m, v in fit_seconds.items()})  # fmt: skip
     return out
 
 

@@ -72,7 +72,6 @@ def _bad(field: str, detail: str, **values: object) -> InvalidInput:
 def _check_metrics(
     moments: CellMoments, metrics: tuple[MetricSpec, ...], success: str, guardrails
 ) -> None:
-    keys = [m.key for m in metrics]
     comps = set(moments.components)
     for m in metrics:
         missing = [c for c in m.columns if c not in comps]
@@ -83,6 +82,14 @@ def _check_metrics(
                 f"(have {list(moments.components)})",
                 metric=m.key,
             )
+    check_objective(metrics, success, guardrails)
+
+
+def check_objective(metrics: tuple[MetricSpec, ...], success: str, guardrails) -> None:
+    """InvalidInput unless the success metric and every guardrail name a declared metric once,
+    with a unit, confidence and threshold sign that fit it (needs no data: callers check a
+    request with it before they store anything)."""
+    keys = [m.key for m in metrics]
     if success not in keys:
         raise _bad("success", f"unknown success metric {success!r}; known: {keys}", value=success)
     seen: set[str] = set()

@@ -212,3 +212,27 @@ class WatchUpload(Base):
     result: Mapped[dict[str, Any]] = mapped_column(JSON)
     created_at: Mapped[str] = mapped_column(String(40))
     created_by: Mapped[str] = mapped_column(String(100))
+
+
+# ---- added by migration 0005: method comparisons -------------------------------------------
+
+
+class Comparison(Base):
+    """A method comparison on one readout: numbered per experiment (1, 2, ...), run as a job;
+    `result` holds the held-out table once the job is done (or {"error": ...} when it failed)."""
+
+    __tablename__ = "comparisons"
+    __table_args__ = (
+        UniqueConstraint("experiment_id", "number", name="uq_comparisons_experiment_number"),
+    )
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    experiment_id: Mapped[int] = mapped_column(ForeignKey("experiments.id"), index=True)
+    number: Mapped[int] = mapped_column(Integer)
+    readout_id: Mapped[int] = mapped_column(ForeignKey("readouts.id"))
+    model_id: Mapped[int | None] = mapped_column(ForeignKey("cohort_models.id"), nullable=True)
+    spec: Mapped[dict[str, Any]] = mapped_column(JSON)
+    status: Mapped[str] = mapped_column(String(20))
+    job_id: Mapped[str] = mapped_column(ForeignKey("jobs.id"))
+    result: Mapped[dict[str, Any] | None] = mapped_column(JSON, nullable=True)
+    created_at: Mapped[str] = mapped_column(String(40))
+    created_by: Mapped[str] = mapped_column(String(100))

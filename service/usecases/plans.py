@@ -29,7 +29,7 @@ from service.store import plans as repo
 from service.store.audit import Actor, canonical_json
 from service.store.db import utcnow
 from service.store.tables import Job
-from service.usecases import jobs, live
+from service.usecases import comparisons, jobs, live
 from service.usecases.cellstats import Rows, readout_rows
 from service.usecases.context import Services
 from service.usecases.experiments import specs_of
@@ -268,6 +268,11 @@ def draft_version(
         int(body.get("seed", 0)),
     )
     holdout = _holdout(body, specs.arm_keys)
+    followed = None
+    if body.get("comparison") is not None:  # checked before the solve: a bad link stores nothing
+        followed = comparisons.followed(services, model_id=ctx["model_id"],
+                                        number=int(body["comparison"]),
+                                        candidate=f"{ctx['model_method']}/{method}")  # fmt: skip
     sol, shrunk, cal_view, cal = _calibrated(
         problem, method, allocation, seed, body.get("options") or {}
     )
@@ -299,6 +304,8 @@ def draft_version(
             "experiment": ctx["experiment"],
         }
     )
+    if followed is not None:
+        spec["comparison"] = followed
     if draws <= INLINE_MAX_DRAWS:
         report = _full_report(ctx, shrunk, sol, spec, draws, seed, (cal_view, cal),
                               options=body.get("options") or {})  # fmt: skip

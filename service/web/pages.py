@@ -174,6 +174,8 @@ def _summary(v: dict[str, Any], plan: dict[str, Any], rows: list[MetricRow]) -> 
         ),
         ("Cohort model", e(f"model {v.get('model_id')} on experiment {spec.get('experiment')}")),
     ]
+    if isinstance(spec.get("comparison"), dict):
+        facts.append(("Method chosen by", _comparison_link(spec["comparison"])))
     if v.get("decided_by"):
         facts.append(
             (
@@ -338,6 +340,21 @@ def _comparison_section(v: dict[str, Any], rows: list[MetricRow]) -> str:
         f'<section id="comparison"><h2>Single-arm comparison</h2><p class="muted">Projected lift against the '
         f"baseline if everyone got one arm, beside this plan.</p><table><thead><tr><th>Allocation</th>{head}"
         f"<th>All guardrails hold (point estimates)</th></tr></thead><tbody>{''.join(body)}</tbody></table></section>"
+    )
+
+
+def _comparison_link(c: dict[str, Any]) -> str:
+    """Where the draft's method came from: the comparison's address (the JSON API; the CLI's
+    `comparison show` prints it) and how the method fared there."""
+    rank = f"ranked {c.get('rank')}" if c.get("rank") is not None else "unranked"
+    if c.get("follows_recommendation"):
+        verdict = "the recommended candidate"
+    else:
+        verdict = f"not the recommended candidate ({c.get('recommended') or 'none'})"
+    return (
+        f'<span id="comparison-link">comparison {e(c.get("number"))}: {e(c.get("candidate"))}, '
+        f"{e(rank)}, held-out guardrails {e(c.get('status'))}, {e(verdict)} \u00b7 "
+        f"<code>{e(c.get('href'))}</code></span>"
     )
 
 

@@ -58,6 +58,13 @@ class DraftIn(BaseModel):
         False, description="re-randomize everyone instead of keeping the plan's salt"
     )
     notes: Text | None = Field(None, max_length=5000)
+    comparison: int | None = Field(
+        None,
+        ge=1,
+        le=INT64_MAX,
+        description="the number of the experiment's comparison this draft's method follows; "
+        "it must be done and have compared this model's method with this optimizer",
+    )
     options: SolverOptions | None = Field(
         None, description="solver options; which ones depends on the method (422 otherwise)"
     )
