@@ -863,12 +863,18 @@ def render_comparison(c: dict[str, Any]) -> str:
     headers = ["rank", "candidate", "guardrails", f"{success} lift"]
     headers += [f"{g} lift" for g in guards] + ["folds w/o plan", "seconds"]
     rec = c.get("recommended")
+    allowed = []
+    for g in guards:  # the same allowance for every candidate (relative ones in metric units)
+        t = next((r["metrics"][g].get("threshold_absolute") for r in c.get("table") or []), None)
+        if t is not None:
+            allowed.append(f"{g} {'>=' if t < 0 else '<='} {fmt_num(t)}")
     tail = [
         "",
         "Held-out lifts against all-control, ± standard error; each candidate's plans were made",
         "without the fold they are scored on. guardrails: verified (holds with the stated",
         "confidence), unverified (estimate within the threshold, not yet with that confidence),",
         "refused (estimate beyond the threshold).",
+        *([f"allowed lifts: {', '.join(allowed)}"] if allowed else []),
         "",
         f"recommended: {rec or 'none'}",
         f"why: {c.get('reason')}",

@@ -48,6 +48,7 @@ def test_a_comparison_runs_as_a_job_and_reads_back_ordered(client: TestClient, k
     assert r.status_code == 202, r.text
     started = r.json()
     assert started["comparison"] == f"{URL}/1" and started["status"] == "queued"
+    assert r.headers["location"] == started["comparison"]
     job = wait_job(client, keys, started["job"])
     assert job["status"] == "done" and job["progress"] == 1.0, job
     got = client.get(started["comparison"], headers=keys.h(keys.reader)).json()

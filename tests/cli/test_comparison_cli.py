@@ -40,6 +40,7 @@ def test_comparison_start_prints_the_ordered_table(cli, files) -> None:  # type:
     top = body["table"][0]["metrics"]
     assert f"{top['spend']['lift']:+.4f} ± {top['spend']['se']:.4f}" in lines[header + 2]
     assert f"recommended: {body['recommended'] or 'none'}" in r.out and "why: " in r.out
+    assert "allowed lifts: refund <= +0.0200" in r.out
     assert body["spec"]["guardrails"][0]["confidence"] == 0.9
     listed = cli("reader", "comparison", "list", "checkout-copy")
     row = next(line for line in listed.out.splitlines() if line.split()[:2] == ["1", "done"])

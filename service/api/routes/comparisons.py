@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from fastapi import APIRouter, status
+from fastapi import APIRouter, Response, status
 from pydantic import BaseModel, Field
 
 from service.api.body import GuardedRoute
@@ -65,9 +65,15 @@ class ComparisonIn(BaseModel):
     summary="Compare decision methods on held-out folds of a readout (runs as a job)",
 )
 def start(
-    key: ExperimentKey, body: ComparisonIn, actor: AnalystDep, services: ServicesDep
+    key: ExperimentKey,
+    body: ComparisonIn,
+    actor: AnalystDep,
+    services: ServicesDep,
+    response: Response,
 ) -> dict[str, Any]:
-    return uc.start(services, key=key, body=body.model_dump(), actor=actor)
+    out = uc.start(services, key=key, body=body.model_dump(), actor=actor)
+    response.headers["Location"] = out["comparison"]
+    return out
 
 
 @router.get(
