@@ -48,13 +48,15 @@ def main() -> None:
     t0 = time.perf_counter()
     fit_cohort_model(table, "causal_tree", {"max_depth": 8, "cv_folds": 0})
     ref_s = time.perf_counter() - t0
+    print(f"reference causal_tree fit {ref_s:.1f} s; load {os.getloadavg()[0]:.1f}", file=sys.stderr)
     marks: list[int] = []
 
     def progress(p: float) -> None:
         tenth = int(p * 10)
         if not marks or tenth > marks[-1]:
             marks.append(tenth)
-            print(f"comparison {p:.0%} at {time.perf_counter() - t1:.0f} s", file=sys.stderr)
+            print(f"comparison {p:.0%} at {time.perf_counter() - t1:.0f} s, "
+                  f"load {os.getloadavg()[0]:.1f}", file=sys.stderr)  # fmt: skip
 
     t1 = time.perf_counter()
     # guardrails also shape the decision-focused partitions, as the comparison job passes them
