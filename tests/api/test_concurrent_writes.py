@@ -82,6 +82,27 @@ def test_concurrent_fits_of_one_experiment_get_distinct_model_versions(
     _verify(client, keys)
 
 
+def test_concurrent_comparisons_of_one_experiment_get_distinct_numbers(
+    client: TestClient, keys
+) -> None:  # type: ignore[no-untyped-def]
+    client.post("/v1/experiments", json=EXPERIMENT, headers=keys.h(keys.analyst))
+    assert _upload(client, keys, rows_csv(400, seed=2))().status_code == 201
+    body = {"readout_version": 1, "success_metric": "spend", "candidates": ["global/deterministic"],
+            "folds": 2}  # fmt: skip
+    answers = burst(
+        [
+            lambda: client.post(
+                f"/v1/experiments/{EXP}/comparisons", json=body, headers=keys.h(keys.analyst)
+            )
+            for _ in range(4)
+        ]
+    )
+    assert [r.status_code for r in answers] == [202] * 4, [r.text for r in answers]
+    assert sorted(r.json()["number"] for r in answers) == [1, 2, 3, 4]
+    assert len(_actions(client, keys, "comparison.start")) == 4
+    _verify(client, keys)
+
+
 @pytest.fixture
 def three_approved(client: TestClient, keys) -> int:  # type: ignore[no-untyped-def]
     model = small_model(client, keys)
