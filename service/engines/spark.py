@@ -48,6 +48,7 @@ def spark_session(master: str, conf: dict[str, str] | None = None):
 
 class SparkEngine(SqlEngine):
     name = "spark"
+    union_width = 64
 
     def __init__(
         self, dataset: ReadoutDataset, *, master: str = "local[2]", scratch: str | None = None,

@@ -32,6 +32,10 @@ def num(x: float) -> str:
     return f"{x:.16e}"
 
 
+DISTINCT_CAP = 100_000  # distinct values of a feature whose counts come back in one table
+BUCKETS = 1 << 14  # equal-width buckets that narrow down a feature with more distinct values
+
+
 def inverted_cdf_positions(n: int, probs: np.ndarray) -> np.ndarray:
     """The 0-based sorted positions numpy's `quantile(method="inverted_cdf")` takes for `probs`
     of `n` values: index = n p - 1, rounded up unless it is whole, clipped to [0, n - 1] (numpy's
@@ -46,6 +50,7 @@ class SqlEngine:
     """Implements `service.stats.pushdown.RowEngine` on top of a SQL backend."""
 
     name = "sql"
+    union_width = 1  # features counted in one query (Spark: all, its queries cost a fixed delay)
 
     def __init__(self, dataset: ReadoutDataset) -> None:
         self.dataset = dataset
@@ -103,28 +108,89 @@ class SqlEngine:
         whens = " ".join(f"WHEN {self.text(a)} THEN {j}" for j, a in enumerate(self.arm_keys))
         return f"CASE CAST({self.ident('arm')} AS STRING) {whens} END"
 
-    def quantiles(self, key: str, probs: np.ndarray) -> tuple[np.ndarray, float] | None:
-        """numpy's inverted-CDF quantiles (`np.quantile(method="inverted_cdf")`) from counts per
-        distinct value: the sorted position numpy picks for each probability is worked out here
-        from the non-missing count, exactly as numpy works it out, and the value at that position
-        is the smallest one whose cumulative count reaches it. The engine holds one row per
-        distinct value (a GROUP BY, which spills to disk like any aggregation), never the column
-        sorted whole, so memory stays bounded on any number of rows; the result is exact."""
-        x = f"CAST({self.col(key)} AS DOUBLE)"
-        v = f"SELECT CASE WHEN isnan({x}) THEN NULL ELSE {x} END AS v FROM src"
-        row = self.query(f"SELECT COUNT(v) AS n, MIN(v) AS lo FROM ({v}) AS vals").to_pylist()[0]
-        n = int(row["n"] or 0)
-        if n == 0:
-            return None
-        rank = inverted_cdf_positions(n, np.asarray(probs, dtype=np.float64)) + 1  # 1-based
-        picks = ", ".join(f"MIN(CASE WHEN cum >= {int(k)} THEN v END) AS q{i}"
-                          for i, k in enumerate(rank))  # fmt: skip
-        t = self.query(
-            f"SELECT {picks} FROM (SELECT v, SUM(cnt) OVER (ORDER BY v ROWS BETWEEN UNBOUNDED "
-            f"PRECEDING AND CURRENT ROW) AS cum FROM (SELECT v, COUNT(*) AS cnt FROM ({v}) AS vals "
-            "WHERE v IS NOT NULL GROUP BY v) AS counts) AS cumulative"
-        ).to_pylist()[0]
-        return np.array([t[f"q{i}"] for i in range(rank.size)], dtype=np.float64), float(row["lo"])
+    def quantiles(self, keys: list[str], probs: np.ndarray) -> dict[str, tuple[np.ndarray, float] | None]:
+        """Per numeric feature of `keys`, numpy's inverted-CDF quantiles at `probs`
+        (`np.quantile(method="inverted_cdf")` over the non-missing values) and the minimum; None
+        for a feature whose values are all missing. Exact, not approximate.
+
+        Computed from GROUP BY counts, never from a column sorted whole, so the engine's memory
+        stays bounded (an aggregation spills to disk) and only small tables come back: one scan
+        gives each feature's non-missing count, minimum, maximum and approximate number of
+        distinct values; a feature with at most `DISTINCT_CAP` distinct values then sends its
+        (value, count) pairs, and the sorted position numpy picks for each probability
+        (`inverted_cdf_positions`) is read off their cumulative counts. A feature with more
+        distinct values is counted first in `BUCKETS` equal-width buckets between its minimum and
+        maximum, and then only the buckets holding a wanted position send their (value, count)
+        pairs."""
+        if not keys:
+            return {}
+        probs = np.asarray(probs, dtype=np.float64)
+        xs = [f"CASE WHEN isnan(CAST({self.col(k)} AS DOUBLE)) THEN NULL "
+              f"ELSE CAST({self.col(k)} AS DOUBLE) END" for k in keys]  # fmt: skip
+        head = ", ".join(f"COUNT(x{i}) AS n{i}, MIN(x{i}) AS lo{i}, MAX(x{i}) AS hi{i}, "
+                         f"approx_count_distinct(x{i}) AS d{i}" for i in range(len(keys)))  # fmt: skip
+        cols = ", ".join(f"{x} AS x{i}" for i, x in enumerate(xs))
+        row = self.query(f"SELECT {head} FROM (SELECT {cols} FROM src) AS vals").to_pylist()[0]
+        out: dict[str, tuple[np.ndarray, float] | None] = {k: None for k in keys}
+        few, many = [], []
+        for i in range(len(keys)):
+            if int(row[f"n{i}"] or 0) > 0:
+                (few if int(row[f"d{i}"]) <= DISTINCT_CAP else many).append(i)
+        wanted = {i: inverted_cdf_positions(int(row[f"n{i}"]), probs) + 1 for i in few + many}
+
+        def counted(parts: list[str]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+            """(bucket, value, count) per feature, sorted, from `SELECT f, b, v` parts (grouped
+            `self.union_width` features to a query)."""
+            w = max(1, self.union_width)
+            t = pa.concat_tables([
+                self.query(f"SELECT f, b, v, COUNT(*) AS cnt FROM ({' UNION ALL '.join(parts[g : g + w])}) "
+                           "AS vals WHERE v IS NOT NULL GROUP BY f, b, v")
+                for g in range(0, len(parts), w)
+            ])  # fmt: skip
+            f, bk, v, c = _ints(t, "f"), _ints(t, "b"), _floats(t, "v"), _ints(t, "cnt")
+            order = np.lexsort((v, bk, f))
+            f, bk, v, c = f[order], bk[order], v[order], c[order]
+            return {int(i): (bk[f == i], v[f == i], c[f == i]) for i in np.unique(f)}
+
+        def pick(v: np.ndarray, c: np.ndarray, before: np.ndarray, k: np.ndarray) -> np.ndarray:
+            """The value at 1-based position k, given the count of values before `v`'s first."""
+            return v[np.searchsorted(before + np.cumsum(c), k, side="left")]
+
+        if few:
+            by_f = counted([f"SELECT {i} AS f, 0 AS b, {xs[i]} AS v FROM src" for i in few])
+            for i in few:
+                _, v, c = by_f[i]
+                out[keys[i]] = (pick(v, c, np.zeros(1, np.int64), wanted[i]), float(row[f"lo{i}"]))
+        if many:
+            bucket = {}
+            for i in many:
+                lo, hi = float(row[f"lo{i}"]), float(row[f"hi{i}"])
+                width = (hi - lo) / BUCKETS
+                bucket[i] = (f"LEAST(GREATEST(CAST(FLOOR(({xs[i]} - {num(lo)}) / {num(width)}) "
+                             f"AS BIGINT), 0), {BUCKETS - 1})")  # fmt: skip
+            t = self.query(" UNION ALL ".join(
+                f"SELECT {i} AS f, b, COUNT(*) AS cnt FROM (SELECT {bucket[i]} AS b FROM src "
+                f"WHERE {xs[i]} IS NOT NULL) AS bs GROUP BY b" for i in many))  # fmt: skip
+            f, bk, c = _ints(t, "f"), _ints(t, "b"), _ints(t, "cnt")
+            need: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+            parts = []
+            for i in many:
+                order = np.argsort(bk[f == i])
+                b_i, c_i = bk[f == i][order], c[f == i][order]
+                at = np.searchsorted(np.cumsum(c_i), wanted[i], side="left")  # bucket of each k
+                need[i] = (b_i[at], (np.cumsum(c_i) - c_i)[at])  # its bucket, rows before it
+                sel = ", ".join(str(int(x)) for x in np.unique(b_i[at]))
+                parts.append(f"SELECT {i} AS f, {bucket[i]} AS b, {xs[i]} AS v FROM src "
+                             f"WHERE {bucket[i]} IN ({sel})")  # fmt: skip
+            by_f = counted(parts)
+            for i in many:
+                bk_i, v, c = by_f[i]
+                q = np.empty(probs.size)
+                for j, (b_j, before) in enumerate(zip(*need[i], strict=True)):
+                    in_b = bk_i == b_j
+                    q[j] = pick(v[in_b], c[in_b], np.int64(before), wanted[i][j : j + 1])[0]
+                out[keys[i]] = (q, float(row[f"lo{i}"]))
+        return out
 
     def non_finite(self) -> dict[str, int]:
         parts = []

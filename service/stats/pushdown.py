@@ -48,9 +48,11 @@ class RowEngine(Protocol):
         """(n,) int8 arm code of every row, in the readout's row order (0 = control)."""
         ...
 
-    def quantiles(self, key: str, probs: np.ndarray) -> tuple[np.ndarray, float] | None:
-        """Inverted-CDF quantiles of numeric feature `key` at `probs` and its minimum, over the
-        non-missing values; None when every value is missing."""
+    def quantiles(
+        self, keys: list[str], probs: np.ndarray
+    ) -> dict[str, tuple[np.ndarray, float] | None]:
+        """Per numeric feature of `keys`: its inverted-CDF quantiles at `probs` and its minimum,
+        over the non-missing values; None when every value is missing."""
         ...
 
     def non_finite(self) -> dict[str, int]:
@@ -162,9 +164,11 @@ def _bins(engine: RowEngine, keys: list[str], max_bins: int) -> FeatureBins:
     n_bins = np.empty(len(specs), dtype=np.int64)
     thresholds: list[np.ndarray | None] = []
     probs = np.arange(1, max_bins) / max_bins
+    numeric = [f.key for f in specs if f.kind == "numeric"] if max_bins >= 2 else []
+    quantiles = engine.quantiles(numeric, probs) if numeric else {}
     for i, f in enumerate(specs):
         if f.kind == "numeric":
-            q = engine.quantiles(f.key, probs) if max_bins >= 2 else None
+            q = quantiles.get(f.key)
             thr = np.empty(0) if q is None else thresholds_from_quantiles(*q)
             n_bins[i] = thr.size + 2
             thresholds.append(thr)

@@ -144,8 +144,15 @@ def test_quantile_positions_are_numpys():
             np.testing.assert_array_equal(inverted_cdf_positions(n, probs), want)
 
 
-def test_engine_quantiles_equal_numpys_with_ties_and_missing(tmp_path):
-    # Reference: numpy.quantile(method="inverted_cdf") over the non-missing values.
+@pytest.mark.parametrize("cap", [100_000, 10], ids=["value-counts", "buckets-then-values"])
+def test_engine_quantiles_equal_numpys_with_ties_and_missing(tmp_path, monkeypatch, cap):
+    # Reference: numpy.quantile(method="inverted_cdf") over the non-missing values. With a cap of
+    # 10 distinct values the feature takes the bucketed path (equal-width buckets, then the values
+    # of the buckets that hold a wanted position).
+    import service.engines.sql as sqlmod
+
+    monkeypatch.setattr(sqlmod, "DISTINCT_CAP", cap)
+    monkeypatch.setattr(sqlmod, "BUCKETS", 64)
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -153,7 +160,7 @@ def test_engine_quantiles_equal_numpys_with_ties_and_missing(tmp_path):
     from service.stats.table import FeatureSpec, MetricSpec
 
     rng = np.random.default_rng(8)
-    x = np.round(rng.gamma(2.0, 3.0, 5_000), 1)  # many ties
+    x = np.round(rng.gamma(2.0, 3.0, 5_000), 1)  # many ties, a long right tail
     x[rng.choice(5_000, 400, replace=False)] = np.nan
     mask = np.zeros(5_000, dtype=bool)
     mask[:50] = True  # nulls as well as NaN
@@ -166,6 +173,6 @@ def test_engine_quantiles_equal_numpys_with_ties_and_missing(tmp_path):
     for max_bins in (4, 16, 64):
         probs = np.arange(1, max_bins) / max_bins
         with open_engine(ds, "duckdb", memory_limit="64MB") as eng:
-            q, lo = eng.quantiles("x", probs)
+            q, lo = eng.quantiles(["x"], probs)["x"]
         np.testing.assert_array_equal(q, np.quantile(kept, probs, method="inverted_cdf"))
         assert lo == kept.min()
