@@ -4,20 +4,21 @@ Parquet files, for readouts too large for one machine. `APPORTION_SPARK_MASTER` 
 
 The working table is written once as Parquet under a scratch directory that every executor can
 read (a local directory for `local[...]`, shared storage on a cluster) and scanned per level.
-A row's role (estimation half, structure fold) is joined on its position in the readout: the
-file's offset plus Parquet's row index within the file.
+A row's role (estimation half, structure fold) is looked up by its position in the readout (the
+file's offset plus Parquet's row index within the file) in a broadcast array, by Python workers
+over Arrow batches: executors need numpy and pyarrow (deploy/ says so).
 """
 
 from __future__ import annotations
 
 import os
 import shutil
+import sys
 import tempfile
 import uuid
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from .dataset import ReadoutDataset
 from .sql import SqlEngine
@@ -30,6 +31,10 @@ def spark_session(master: str, conf: dict[str, str] | None = None):
     if master not in _SESSIONS:
         from pyspark.sql import SparkSession
 
+        # the Python workers (which add each row's role) run this interpreter and its packages
+        # unless PYSPARK_PYTHON names another (a cluster's executors: deploy/)
+        os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
+
         b = SparkSession.builder.master(master).appName("apportion-fit")
         defaults = {
             "spark.ui.enabled": "false",
@@ -37,6 +42,7 @@ def spark_session(master: str, conf: dict[str, str] | None = None):
             "spark.sql.ansi.enabled": "false",
             "spark.driver.memory": "2g",
             "spark.sql.session.timeZone": "UTC",
+            "spark.ui.showConsoleProgress": "false",  # no progress bars in the service's logs
         }
         for k, v in {**defaults, **(conf or {})}.items():
             b = b.config(k, v)
@@ -59,6 +65,7 @@ class SparkEngine(SqlEngine):
         self.spark = spark_session(master, conf)
         self._dir = tempfile.mkdtemp(prefix="apportion-spark-", dir=scratch)
         self._views: list[str] = []
+        self._broadcasts: list = []
         offset, parts = 0, []
         for path, rows in zip(dataset.files, dataset.file_rows, strict=True):
             df = self.spark.read.parquet(path).withColumn(
@@ -92,21 +99,32 @@ class SparkEngine(SqlEngine):
         return out
 
     def store_work(self, select: str, role: np.ndarray) -> None:
-        roles_path = os.path.join(self._dir, f"roles-{uuid.uuid4().hex}.parquet")
-        pq.write_table(
-            pa.table({"_pos": pa.array(np.arange(role.size, dtype=np.int64)),
-                      "r": pa.array(role, type=pa.int8())}),
-            roles_path, use_dictionary=False, compression="zstd",
-            column_encoding={"_pos": "DELTA_BINARY_PACKED", "r": "PLAIN"},
-        )  # fmt: skip
-        self._view("roles", self.spark.read.parquet(roles_path))
+        """The working table, written once as Parquet. Each row's role is looked up by its
+        position in a broadcast copy of `role` (one byte a row) by a Python worker over Arrow
+        batches: no join, so no shuffle of the readout (a join on the position cost a full sort
+        of both sides)."""
+        from pyspark.sql.types import ByteType, StructField, StructType
+
+        roles = self.spark.sparkContext.broadcast(np.asarray(role, dtype=np.int8))
+        self._broadcasts.append(roles)
+        rows = self.spark.sql(f"SELECT _pos, {select} FROM src")
+        schema = StructType([*rows.schema.fields, StructField("r", ByteType(), False)])
+
+        def add_role(batches):
+            table = roles.value
+            for b in batches:
+                pos = b.column(0).to_numpy(zero_copy_only=False)
+                yield pa.RecordBatch.from_arrays(
+                    [*b.columns, pa.array(table[pos], type=pa.int8())], schema=b.schema.append(
+                        pa.field("r", pa.int8(), nullable=False)))  # fmt: skip
+
         work_path = os.path.join(self._dir, f"work-{uuid.uuid4().hex}")
-        self.spark.sql(
-            f"SELECT roles.r AS r, {select} FROM src JOIN roles ON src._pos = roles._pos"
-        ).write.parquet(work_path)
+        rows.mapInArrow(add_role, schema).drop("_pos").write.parquet(work_path)
         self._view("work", self.spark.read.parquet(work_path))
 
     def close(self) -> None:
         for v in self._views:
             self.spark.catalog.dropTempView(v)
+        for b in self._broadcasts:
+            b.unpersist()
         shutil.rmtree(self._dir, ignore_errors=True)

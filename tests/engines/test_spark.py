@@ -17,16 +17,19 @@ pytest.importorskip("pyspark", reason="pyspark is not installed (pip install -e 
 SMALL = {**CASES["causal_tree_success"], "max_depth": 2, "features": ["tenure_days", "level"]}
 
 
-def test_spark_fit_equals_in_memory_fit(readout, tmp_path):
-    # One small fit keeps CI short (a Spark query costs seconds however small the data); the SQL
-    # plan is shared with DuckDB, whose tests cover cross-validation, `global` and deeper trees.
+@pytest.mark.parametrize("method", ["causal_tree", "global"])
+def test_spark_fit_equals_in_memory_fit(readout, tmp_path, method):
+    # Small fits keep CI short (a Spark query costs seconds however small the data); the SQL
+    # plan is shared with DuckDB, whose tests cover cross-validation and deeper trees.
     from service.engines import open_engine
 
     ds, table = readout
+    params = SMALL if method == "causal_tree" else {}
     conf = {"spark.sql.shuffle.partitions": "2"}
     with open_engine(ds, "spark", spark_master="local[2]", scratch=str(tmp_path),
                      spark_conf=conf) as eng:  # fmt: skip
-        fit = fit_on_engine(eng, "causal_tree", SMALL)
+        fit = fit_on_engine(eng, method, params)
     assert fit.diagnostics["engine"] == "spark"
-    assert fit.partition.n_cohorts >= 2  # a split was found, so the comparison has teeth
-    assert_same_fit(fit_cohort_model(table, "causal_tree", SMALL), fit)
+    if method == "causal_tree":
+        assert fit.partition.n_cohorts >= 2  # a split was found, so the comparison has teeth
+    assert_same_fit(fit_cohort_model(table, method, params), fit)
