@@ -75,6 +75,8 @@ class Server:
             "APPORTION_LOG_LEVEL": "WARNING",
             "APPORTION_POLL_INTERVAL_SECONDS": "0.3",
             "APPORTION_DB_POOL_SIZE": "12",
+            # as in support.make_settings: no held-out job per draft (approval would wait for it)
+            "APPORTION_HELD_OUT_FOLDS": "0",
             **self.env,
         }
         log = open(self.log_path, "ab")  # noqa: SIM115 - the child writes it until it exits
