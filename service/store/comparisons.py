@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from service.errors import NotFound
-from service.store.db import utcnow
+from service.store.db import next_number, utcnow
 from service.store.tables import Comparison
 
 
@@ -23,12 +23,9 @@ def add_comparison(
     created_by: str,
 ) -> Comparison:
     """The experiment's next comparison; the caller holds the experiment's lock (level 1)."""
-    last = session.execute(
-        select(func.max(Comparison.number)).where(Comparison.experiment_id == experiment_id)
-    ).scalar()
     row = Comparison(
         experiment_id=experiment_id,
-        number=(last or 0) + 1,
+        number=next_number(session, Comparison.number, Comparison.experiment_id == experiment_id),
         readout_id=readout_id,
         model_id=model_id,
         spec=spec,

@@ -34,7 +34,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event
+from sqlalchemy import Engine, create_engine, event, func, select
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session, sessionmaker
@@ -45,6 +45,14 @@ from service.store.blobstore import BlobStore
 def utcnow() -> str:
     """ISO-8601 UTC timestamp with microseconds: the one time format of the store."""
     return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def next_number(session: Session, column: Any, *where: Any) -> int:
+    """`max(column) + 1` over the rows matching `where` (1 when there are none): the "last + 1"
+    numbers of readouts, models, comparisons, plan versions and watch uploads. Call it only while
+    holding the lock of level 1 or 2 that owns the number (LOCK ORDER above)."""
+    last = session.execute(select(func.max(column)).where(*where)).scalar()
+    return int(last or 0) + 1
 
 
 def _finite(value: Any) -> Any:

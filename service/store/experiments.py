@@ -4,12 +4,12 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, NotFound
-from service.store.db import utcnow
+from service.store.db import next_number, utcnow
 from service.store.tables import Experiment, Readout
 
 
@@ -68,12 +68,9 @@ def add_readout(
     created_by: str,
 ) -> Readout:
     """The next version of the experiment's readouts; the caller holds the experiment's lock."""
-    last = session.execute(
-        select(func.max(Readout.version)).where(Readout.experiment_id == experiment.id)
-    ).scalar()
     row = Readout(
         experiment_id=experiment.id,
-        version=(last or 0) + 1,
+        version=next_number(session, Readout.version, Readout.experiment_id == experiment.id),
         content_hash=content_hash,
         content_type=content_type,
         blob_sha256=blob_sha256,

@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import func, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from service.errors import NotFound
-from service.store.db import utcnow
+from service.store.db import next_number, utcnow
 from service.store.tables import CohortModel
 
 
@@ -23,12 +23,11 @@ def add_model(
     created_by: str,
 ) -> CohortModel:
     """The next model version of the experiment; the caller holds the experiment's lock."""
-    last = session.execute(
-        select(func.max(CohortModel.version)).where(CohortModel.experiment_id == experiment_id)
-    ).scalar()
     row = CohortModel(
         experiment_id=experiment_id,
-        version=(last or 0) + 1,
+        version=next_number(
+            session, CohortModel.version, CohortModel.experiment_id == experiment_id
+        ),
         readout_id=readout_id,
         method=method,
         params=params,

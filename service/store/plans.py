@@ -6,11 +6,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import event, func, inspect, select
+from sqlalchemy import event, inspect, select
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, InvalidTransition, NotFound
-from service.store.db import insert_or_ignore, utcnow
+from service.store.db import insert_or_ignore, next_number, utcnow
 from service.store.tables import PlanActivation, PlanPointer, PlanVersion
 
 IMMUTABLE = (
@@ -88,10 +88,7 @@ def ensure_pointer(*, session: Session, plan: str) -> PlanPointer:
 
 def next_version(*, session: Session, plan: str) -> int:
     """The plan's next version number; the caller holds the plan's pointer lock."""
-    last = session.execute(
-        select(func.max(PlanVersion.version)).where(PlanVersion.plan == plan)
-    ).scalar()
-    return (last or 0) + 1
+    return next_number(session, PlanVersion.version, PlanVersion.plan == plan)
 
 
 def add_version(*, session: Session, **fields: Any) -> PlanVersion:
@@ -101,9 +98,7 @@ def add_version(*, session: Session, **fields: Any) -> PlanVersion:
     return row
 
 
-def get_version(
-    *, session: Session, plan: str, version: int, lock: bool = False
-) -> PlanVersion:
+def get_version(*, session: Session, plan: str, version: int, lock: bool = False) -> PlanVersion:
     """One version; `lock` takes its row lock (level 4 of the lock order, store/db.py) for a
     read-modify-write of its report by a job."""
     q = select(PlanVersion).where(PlanVersion.plan == plan, PlanVersion.version == version)

@@ -7,7 +7,7 @@ from typing import Any
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from service.store.db import utcnow
+from service.store.db import next_number, utcnow
 from service.store.tables import WatchUpload
 
 
@@ -31,15 +31,12 @@ def add_upload(
     created_by: str,
 ) -> WatchUpload:
     """The next upload number of the plan version; the caller holds the plan's pointer lock."""
-    last = session.execute(
-        select(func.max(WatchUpload.seq)).where(
-            WatchUpload.plan == plan, WatchUpload.version == version
-        )
-    ).scalar()
     row = WatchUpload(
         plan=plan,
         version=version,
-        seq=(last or 0) + 1,
+        seq=next_number(
+            session, WatchUpload.seq, WatchUpload.plan == plan, WatchUpload.version == version
+        ),
         blob_sha256=blob_sha256,
         n_rows=n_rows,
         result=result,
