@@ -17,6 +17,8 @@ import pyarrow as pa
 from service.errors import InvalidInput
 from service.stats.table import FeatureSpec, MetricSpec, UnitTable
 
+from .dataset import spec_of_table
+
 FORMAT = "apportion.unit-table"
 VERSION = 1
 _META_KEY = b"apportion"
@@ -24,27 +26,9 @@ _OPTIONS = pa.ipc.IpcWriteOptions(compression=pa.Codec("zstd", compression_level
 
 
 def _spec(table: UnitTable, flags: dict[str, np.ndarray]) -> dict[str, Any]:
-    return {
-        "format": FORMAT,
-        "version": VERSION,
-        "arm_keys": list(table.arm_keys),
-        "design_shares": [float(s) for s in np.asarray(table.design_shares, dtype=np.float64)],
-        "features": [
-            {"key": f.key, "kind": f.kind, "levels": list(f.levels)} for f in table.features
-        ],
-        "metrics": [
-            {
-                "key": m.key,
-                "kind": m.kind,
-                "direction": m.direction,
-                "numerator": m.numerator,
-                "denominator": m.denominator,
-            }
-            for m in table.metrics
-        ],
-        "columns": list(table.columns),
-        "flags": list(flags),
-    }
+    """The blob's metadata: its format and version, and the table's spec in the same form as a
+    Parquet readout's manifest (dataset.DatasetSpec)."""
+    return {"format": FORMAT, "version": VERSION, **spec_of_table(table, tuple(flags)).to_dict()}
 
 
 def encode_table(table: UnitTable, flags: dict | None = None) -> bytes:
