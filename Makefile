@@ -24,21 +24,21 @@ serve: $(STAMP)
 	$(BIN)/apportion serve --host 127.0.0.1 --port 8000
 
 demo: $(STAMP)
-	$(BIN)/python -m service.demo.run
+	$(BIN)/python -m apportion.demo.run
 
 test: $(DEVSTAMP)
-	$(BIN)/ruff check service tests bench migrations
+	$(BIN)/ruff check apportion tests bench migrations
 	$(BIN)/python -m pytest
 	@command -v node >/dev/null || { echo "make test: the JavaScript evaluator's tests need Node.js >= 18 (Debian: apt-get install nodejs)"; exit 1; }
 	node --test js/test/
 
 lint: $(DEVSTAMP)
-	$(BIN)/ruff check service tests bench migrations
-	$(BIN)/ruff format --check service tests bench migrations
+	$(BIN)/ruff check apportion tests bench migrations
+	$(BIN)/ruff format --check apportion tests bench migrations
 
 format: $(DEVSTAMP)
-	$(BIN)/ruff format service tests bench migrations
-	$(BIN)/ruff check --fix service tests bench migrations
+	$(BIN)/ruff format apportion tests bench migrations
+	$(BIN)/ruff check --fix apportion tests bench migrations
 
 openapi: $(STAMP)
 	$(BIN)/apportion openapi --out openapi/openapi.json

@@ -1,4 +1,4 @@
-"""Benchmark: the method comparison job's computation (service/optimize/crossfit.py,
+"""Benchmark: the method comparison job's computation (apportion/optimize/crossfit.py,
 `evaluate_candidates`) on a 1,000,000-unit readout (20 features, 4 arms, 4 metrics; bench/fit.py's
 readout), 5 folds, every candidate the service offers (model method x optimizer), against a
 reference run in the same process: one `causal_tree` fit on the whole table (max_depth 8, no
@@ -26,13 +26,13 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from fit import readout  # noqa: E402
 from member import GUARDRAILS  # noqa: E402
 
-from service.optimize.crossfit import (  # noqa: E402
+from apportion.optimize.crossfit import (  # noqa: E402
     COMPARISON_DRAWS,
     evaluate_candidates,
     parse_candidates,
 )
-from service.optimize.problem import Guardrail  # noqa: E402
-from service.stats.models import fit_cohort_model  # noqa: E402
+from apportion.optimize.problem import Guardrail  # noqa: E402
+from apportion.stats.models import fit_cohort_model  # noqa: E402
 
 
 def main() -> None:
@@ -48,7 +48,9 @@ def main() -> None:
     t0 = time.perf_counter()
     fit_cohort_model(table, "causal_tree", {"max_depth": 8, "cv_folds": 0})
     ref_s = time.perf_counter() - t0
-    print(f"reference causal_tree fit {ref_s:.1f} s; load {os.getloadavg()[0]:.1f}", file=sys.stderr)
+    print(
+        f"reference causal_tree fit {ref_s:.1f} s; load {os.getloadavg()[0]:.1f}", file=sys.stderr
+    )
     marks: list[int] = []
 
     def progress(p: float) -> None:

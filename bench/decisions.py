@@ -2,8 +2,8 @@
 
 For each design (aligned / opposed at sigma 0.5, 1, 2, and the demo scenario), candidate and
 seed: simulate a readout, fit the cohort model (decision-focused methods get the guardrails, as a
-plan passes them), draft the calibrated plan (service/optimize/calibrate.py) and score it on the
-design's truth sample (service/demo/designs.py; the demo's own truth in service/demo/scenario.py).
+plan passes them), draft the calibrated plan (apportion/optimize/calibrate.py) and score it on the
+design's truth sample (apportion/demo/designs.py; the demo's own truth in apportion/demo/scenario.py).
 
 Every run appends one JSON line to --out (default bench/decisions_runs.jsonl) and runs already in
 that file are skipped, so the grid can be run in parts and resumed after an interruption. The
@@ -38,14 +38,14 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from service.demo import designs as d  # noqa: E402
-from service.demo import scenario as sc  # noqa: E402
-from service.errors import Infeasible  # noqa: E402
-from service.optimize.calibrate import Z95, calibrated_solve  # noqa: E402
-from service.optimize.crossfit import model_params_for, parse_candidates, registry  # noqa: E402
-from service.optimize.linear import linearize  # noqa: E402
-from service.optimize.problem import Guardrail, build_problem  # noqa: E402
-from service.stats.models import fit_cohort_model  # noqa: E402
+from apportion.demo import designs as d  # noqa: E402
+from apportion.demo import scenario as sc  # noqa: E402
+from apportion.errors import Infeasible  # noqa: E402
+from apportion.optimize.calibrate import Z95, calibrated_solve  # noqa: E402
+from apportion.optimize.crossfit import model_params_for, parse_candidates, registry  # noqa: E402
+from apportion.optimize.linear import linearize  # noqa: E402
+from apportion.optimize.problem import Guardrail, build_problem  # noqa: E402
+from apportion.stats.models import fit_cohort_model  # noqa: E402
 
 GRID = "aligned:0.5,aligned:1,aligned:2,opposed:0.5,opposed:1,opposed:2,demo"
 DEFAULT_OUT = Path(__file__).resolve().parent / "decisions_runs.jsonl"

@@ -19,7 +19,7 @@ import numpy as np  # noqa: E402
 from scipy.optimize import linprog  # noqa: E402
 from scipy.stats import norm  # noqa: E402
 
-from service.demo import designs as d  # noqa: E402
+from apportion.demo import designs as d  # noqa: E402
 
 rng = np.random.default_rng(12345)
 xt = d.features(400_000, rng)

@@ -20,8 +20,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from sklearn.tree import DecisionTreeRegressor  # noqa: E402
 
-from service.stats.models import fit_cohort_model  # noqa: E402
-from service.stats.table import FeatureSpec, MetricSpec, UnitTable  # noqa: E402
+from apportion.stats.models import fit_cohort_model  # noqa: E402
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable  # noqa: E402
 
 
 def readout(n: int, seed: int = 0) -> UnitTable:

@@ -108,7 +108,7 @@ def apportion_command() -> list[str]:
     if exe.exists():
         return [str(exe)]
     # the project is not pip-installed in the venv: run the same entry point as a module
-    entry = "import sys; from service.cli import main; sys.exit(main())"
+    entry = "import sys; from apportion.cli import main; sys.exit(main())"
     return [str(ROOT / ".venv" / "bin" / "python"), "-c", entry]
 
 
@@ -236,8 +236,8 @@ def main() -> None:
     assert answer["n_rows"] == args.rows, answer["n_rows"]
 
     # the reference runs in this process, after the server has stopped (two cores only)
-    from service.ingest import parse_units
-    from service.usecases.experiments import specs_of
+    from apportion.ingest import parse_units
+    from apportion.usecases.experiments import specs_of
 
     specs = specs_of(decl)
     t0 = time.perf_counter()

@@ -24,8 +24,8 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout, not installed
 
-from service.ingest import decode_table, encode_table, parse_units
-from service.stats.table import FeatureSpec, MetricSpec
+from apportion.ingest import decode_table, encode_table, parse_units
+from apportion.stats.table import FeatureSpec, MetricSpec
 
 ARMS = ["control", "short", "long"]
 SHARES = [0.34, 0.33, 0.33]

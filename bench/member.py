@@ -21,7 +21,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from fit import readout  # noqa: E402
 
-from service.stats.models import fit_cohort_model  # noqa: E402
+from apportion.stats.models import fit_cohort_model  # noqa: E402
 
 GUARDRAILS = [
     {"metric": "abandon_rate", "threshold": 0.005},
@@ -32,7 +32,9 @@ GUARDRAILS = [
 
 def main() -> None:
     n = int(sys.argv[1]) if len(sys.argv) > 1 else 1_000_000
-    methods = sys.argv[2].split(",") if len(sys.argv) > 2 else ["two_model", "forest", "policy_tree"]
+    methods = (
+        sys.argv[2].split(",") if len(sys.argv) > 2 else ["two_model", "forest", "policy_tree"]
+    )
     table = readout(n)
     t0 = time.perf_counter()
     ref = fit_cohort_model(table, "causal_tree", {"max_depth": 8, "cv_folds": 0})

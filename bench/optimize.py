@@ -16,13 +16,13 @@ import time
 import numpy as np
 from scipy.optimize import linprog
 
-from service.optimize.linear import linearize
-from service.optimize.lp import LPModel
-from service.optimize.problem import AllocationProblem, Guardrail, control_allocation
-from service.optimize.report import impact_report
-from service.optimize.solve import solve
-from service.stats.estimates import CellMoments
-from service.stats.table import MetricSpec
+from apportion.optimize.linear import linearize
+from apportion.optimize.lp import LPModel
+from apportion.optimize.problem import AllocationProblem, Guardrail, control_allocation
+from apportion.optimize.report import impact_report
+from apportion.optimize.solve import solve
+from apportion.stats.estimates import CellMoments
+from apportion.stats.table import MetricSpec
 
 
 def synthetic(seed: int = 0, c: int = 1000, j: int = 5) -> AllocationProblem:

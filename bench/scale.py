@@ -33,7 +33,7 @@ FILE_ROWS = 10_000_000
 
 
 def specs():
-    from service.stats.table import FeatureSpec, MetricSpec
+    from apportion.stats.table import FeatureSpec, MetricSpec
 
     feats = tuple(FeatureSpec(f"x{i}", "numeric") for i in range(N_NUM)) + tuple(
         FeatureSpec(f"g{i}", "categorical") for i in range(N_CAT)
@@ -96,8 +96,8 @@ def fit_once(directory: str, engine: str, memory_limit: str) -> dict:
     """Run in a child process: open the dataset, fit, report seconds and peak memory."""
     import resource
 
-    from service.engines.dataset import ReadoutDataset
-    from service.stats.pushdown import fit_on_engine
+    from apportion.engines.dataset import ReadoutDataset
+    from apportion.stats.pushdown import fit_on_engine
 
     feats, metrics = specs()
     ds = ReadoutDataset.open(directory, arm_keys=ARMS, design_shares=SHARES, features=feats,
@@ -105,12 +105,12 @@ def fit_once(directory: str, engine: str, memory_limit: str) -> dict:
     params = {"max_depth": 8, "cv_folds": 0}
     t0 = time.perf_counter()
     if engine == "memory":
-        from service.engines.memory import read_table
-        from service.stats.models import fit_cohort_model
+        from apportion.engines.memory import read_table
+        from apportion.stats.models import fit_cohort_model
 
         fit = fit_cohort_model(read_table(ds), "causal_tree", params)
     else:
-        from service.engines import open_engine
+        from apportion.engines import open_engine
 
         with open_engine(ds, engine, memory_limit=memory_limit) as eng:
             fit = fit_on_engine(eng, "causal_tree", params)
@@ -145,7 +145,9 @@ def main() -> None:
             if r.returncode != 0:
                 out["fits"].setdefault(e, {})[str(n)] = {"error": r.stderr.strip()[-400:]}
             else:
-                out["fits"].setdefault(e, {})[str(n)] = json.loads(r.stdout.strip().splitlines()[-1])
+                out["fits"].setdefault(e, {})[str(n)] = json.loads(
+                    r.stdout.strip().splitlines()[-1]
+                )
             print(f"# {e} {n}: {out['fits'][e][str(n)]}", file=sys.stderr, flush=True)
     out["growth_exponent"] = {}
     for e, by_n in out["fits"].items():

@@ -56,8 +56,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # run as a script from anywhere
 
-from bench.serve_inprocess import measure as measure_inprocess  # noqa: E402
-from service.demo.scenario import (  # noqa: E402
+from apportion.demo.scenario import (  # noqa: E402
     FEATURES,
     GUARDRAILS,
     SUCCESS,
@@ -66,7 +65,8 @@ from service.demo.scenario import (  # noqa: E402
     simulate_features,
     to_csv_bytes,
 )
-from service.stats.partition import Partition  # noqa: E402
+from apportion.stats.partition import Partition  # noqa: E402
+from bench.serve_inprocess import measure as measure_inprocess  # noqa: E402
 
 LUA = Path(__file__).with_name("serve_assign.lua")
 PLAN = "lesson-length"

@@ -5,8 +5,8 @@ numeric, 4 categorical, some levels unseen at some nodes), compiles it with 3 ar
 holdout, then times `assign` over 100,000 calls (median and p99 of per-call times) and
 `assign_batch` on 10,000 members (median of 15 runs; also `assign_columns` on the same members
 already in columns, which skips pulling values out of 10,000 dicts).
-Also the portable document (service/serving/portable.py) of a depth-8, 200-cohort random plan: its
-size, and the dependency-free evaluator's (service/lookup.py) lookups per second on it (wall
+Also the portable document (apportion/serving/portable.py) of a depth-8, 200-cohort random plan: its
+size, and the dependency-free evaluator's (apportion/lookup.py) lookups per second on it (wall
 clock and CPU time of this thread, best of 3 rounds alternating with a reference loop that only
 strips, encodes and draws both hashes per member, the work no evaluator can skip), against the
 server's own `assign` on the same members in the same process.
@@ -33,12 +33,12 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run as a script from anywhere
 
-from service.lookup import Plan
-from service.serving.hashing import hash_state, uniform_from_state, uniforms_from_state
-from service.serving.index import CompiledPlan, compile_plan, new_salt
-from service.serving.portable import document_bytes
-from service.stats.partition import Partition
-from service.stats.table import FeatureSpec
+from apportion.lookup import Plan
+from apportion.serving.hashing import hash_state, uniform_from_state, uniforms_from_state
+from apportion.serving.index import CompiledPlan, compile_plan, new_salt
+from apportion.serving.portable import document_bytes
+from apportion.stats.partition import Partition
+from apportion.stats.table import FeatureSpec
 
 LEVELS = ("a", "b", "c", "d", "e", "f")
 

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from alembic import context
 
-from service.store.db import make_engine
-from service.store.tables import Base
+from apportion.store.db import make_engine
+from apportion.store.tables import Base
 
 config = context.config
 target_metadata = Base.metadata

@@ -24,7 +24,7 @@ def db_url(request: pytest.FixtureRequest, tmp_path) -> str:  # type: ignore[no-
 
 @pytest.fixture
 def app(db_url: str):  # type: ignore[no-untyped-def]
-    from service.app import create_app
+    from apportion.app import create_app
 
     return create_app(make_settings(db_url))
 

@@ -34,8 +34,8 @@ def fresh_database(kind: str, tmp_path: Path) -> str:
 def prepare(db_url: str) -> Keys:
     """Migrate the database to head and make one key per role (before any server starts, so that
     two servers never race to migrate and both load the keys at start)."""
-    from service.store.db import Database
-    from service.store.migrate import upgrade
+    from apportion.store.db import Database
+    from apportion.store.migrate import upgrade
 
     db = Database.connect(db_url, pool_size=2)
     try:
@@ -81,7 +81,7 @@ class Server:
         }
         log = open(self.log_path, "ab")  # noqa: SIM115 - the child writes it until it exits
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "service.cli", "serve", "--port", str(self.port)],
+            [sys.executable, "-m", "apportion.cli", "serve", "--port", str(self.port)],
             env=env,
             stdout=subprocess.DEVNULL,
             stderr=log,

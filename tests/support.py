@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.config import Settings
+from apportion.config import Settings
 
 EXPERIMENT = {
     "key": "checkout-copy",
@@ -103,7 +103,7 @@ def scenario_model(
     client, keys, *, n: int = 20000, seed: int = 1, params: dict | None = None
 ) -> int:  # type: ignore[no-untyped-def]
     """Declare the invented scenario, upload `n` learners and fit a causal tree; returns the model id."""
-    from service.demo.scenario import experiment_declaration, simulate, to_csv_bytes
+    from apportion.demo.scenario import experiment_declaration, simulate, to_csv_bytes
 
     decl = experiment_declaration()
     r = client.post("/v1/experiments", json=decl, headers=keys.h(keys.analyst))
@@ -130,7 +130,7 @@ def scenario_model(
 
 
 def draft_plan(client, keys, model_id: int, plan: str = "lesson-length", **overrides) -> dict:  # type: ignore[no-untyped-def]
-    from service.demo.scenario import GUARDRAILS, SUCCESS
+    from apportion.demo.scenario import GUARDRAILS, SUCCESS
 
     body = {
         "model_id": model_id,
@@ -163,7 +163,7 @@ class Keys:
 
 def make_keys(services, prefix: str = "t") -> Keys:  # type: ignore[no-untyped-def]
     """Keys of every role made directly in the app's database, named `{prefix}-{role}`."""
-    from service.usecases.auth import SYSTEM, create_key
+    from apportion.usecases.auth import SYSTEM, create_key
 
     made = {}
     for name in ("admin", "approver", "approver2", "analyst", "reader"):

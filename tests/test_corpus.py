@@ -24,7 +24,7 @@ from fastapi.testclient import TestClient
 from sqlalchemy import inspect, text
 from support import Keys, draft_plan, make_keys, make_settings, reset_postgres, scenario_model
 
-from service.app import create_app
+from apportion.app import create_app
 
 CORPUS = Path(__file__).resolve().parent / "corpus"
 CASES = sorted((CORPUS / "cases").glob("*.json"))

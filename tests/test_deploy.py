@@ -14,8 +14,8 @@ from typing import Any
 
 import pytest
 
-from service.cli.main import build_parser
-from service.config import Settings
+from apportion.cli.main import build_parser
+from apportion.config import Settings
 
 yaml = pytest.importorskip("yaml")
 
@@ -59,7 +59,7 @@ def _of_kind(kind: str) -> list[dict[str, Any]]:
 
 @pytest.fixture(scope="module")
 def route_paths(tmp_path_factory) -> set[str]:  # type: ignore[no-untyped-def]
-    from service.app import create_app
+    from apportion.app import create_app
 
     db = tmp_path_factory.mktemp("deploy") / "apportion.db"
     app = create_app(Settings(database_url=f"sqlite:///{db}", log_level="WARNING"))

@@ -7,16 +7,16 @@ from pathlib import Path
 
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1] / "service"
-_WEB = ("fastapi", "starlette", "service.api", "service.app")
-_PURE = (*_WEB, "pydantic", "sqlalchemy", "service.store", "service.usecases")
+ROOT = Path(__file__).resolve().parents[1] / "apportion"
+_WEB = ("fastapi", "starlette", "apportion.api", "apportion.app")
+_PURE = (*_WEB, "pydantic", "sqlalchemy", "apportion.store", "apportion.usecases")
 FORBIDDEN = {
-    "stats": (*_PURE, "service.serving", "service.engines"),
-    "optimize": (*_PURE, "service.serving", "service.engines"),
-    "engines": (*_WEB, "sqlalchemy", "service.store", "service.usecases"),
+    "stats": (*_PURE, "apportion.serving", "apportion.engines"),
+    "optimize": (*_PURE, "apportion.serving", "apportion.engines"),
+    "engines": (*_WEB, "sqlalchemy", "apportion.store", "apportion.usecases"),
     "serving": _PURE,
-    "ingest": (*_WEB, "sqlalchemy", "service.store", "service.usecases"),
-    "store": (*_WEB, "service.usecases"),
+    "ingest": (*_WEB, "sqlalchemy", "apportion.store", "apportion.usecases"),
+    "store": (*_WEB, "apportion.usecases"),
     "usecases": _WEB,
 }
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from service.openapi_export import render
+from apportion.openapi_export import render
 
 SPEC = Path(__file__).resolve().parents[1] / "openapi" / "openapi.json"
 
@@ -31,7 +31,7 @@ def test_the_document_passes_an_openapi_validator() -> None:
     outside check) accepts the document; it resolves every $ref on the way."""
     from openapi_spec_validator import validate
 
-    from service.openapi_export import openapi_document
+    from apportion.openapi_export import openapi_document
 
     doc = openapi_document()
     validate(doc)
@@ -41,7 +41,7 @@ def test_the_document_passes_an_openapi_validator() -> None:
 
 
 def test_every_key_route_declares_its_security_and_its_problems() -> None:
-    from service.openapi_export import openapi_document
+    from apportion.openapi_export import openapi_document
 
     doc = openapi_document()
     assert doc["components"]["securitySchemes"]["apiKey"] == {

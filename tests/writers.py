@@ -44,7 +44,7 @@ def small_model(client: Any, keys: Any) -> int:
 
 def approved_versions(client: Any, keys: Any, model_id: int, count: int) -> None:
     """Draft `count` versions of the plan (20 report draws, holdout 20 %) and approve each."""
-    from service.demo.scenario import GUARDRAILS, SUCCESS
+    from apportion.demo.scenario import GUARDRAILS, SUCCESS
 
     for i in range(count):
         body = {
@@ -102,9 +102,9 @@ def assert_consistent(db_url: str, *, settled: bool = True) -> dict[str, int]:
 
     from sqlalchemy import select
 
-    from service.store import audit as audit_store
-    from service.store.db import Database
-    from service.store.tables import (
+    from apportion.store import audit as audit_store
+    from apportion.store.db import Database
+    from apportion.store.tables import (
         AuditEntry,
         Blob,
         CohortModel,

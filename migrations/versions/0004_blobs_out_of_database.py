@@ -35,16 +35,16 @@ watch_uploads = sa.table("watch_uploads", sa.column("blob_sha256", sa.String))
 
 
 def _store():  # type: ignore[no-untyped-def]
-    from service.config import Settings
-    from service.store.blobstore import BlobStore
+    from apportion.config import Settings
+    from apportion.store.blobstore import BlobStore
 
     uri = context.config.attributes.get("blob_uri") or Settings().blob_uri
     return BlobStore(uri)
 
 
 def upgrade() -> None:
-    from service.ingest.codec import decode_table
-    from service.ingest.dataset import write_table
+    from apportion.ingest.codec import decode_table
+    from apportion.ingest.dataset import write_table
 
     # No table rebuild (SQLite's batch "recreate" would drop `blobs`, which readouts reference):
     # columns are added with defaults and `data` is dropped in place (SQLite >= 3.35).
@@ -103,8 +103,8 @@ def upgrade() -> None:
 
 
 def downgrade() -> None:
-    from service.ingest.codec import encode_table
-    from service.ingest.dataset import MANIFEST, Manifest, read_dataset
+    from apportion.ingest.codec import encode_table
+    from apportion.ingest.dataset import MANIFEST, Manifest, read_dataset
 
     with op.batch_alter_table("blobs", schema=None, recreate="never") as batch_op:
         batch_op.add_column(sa.Column("data", sa.LargeBinary(), nullable=True))

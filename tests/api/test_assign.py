@@ -15,9 +15,9 @@ from fastapi.testclient import TestClient
 from serving.serving_helpers import hand_partition
 from support import Keys, make_keys, make_settings
 
-from service.lookup import Plan
-from service.observability import REGISTRY
-from service.serving.index import compile_plan
+from apportion.lookup import Plan
+from apportion.observability import REGISTRY
+from apportion.serving.index import compile_plan
 
 PLAN = "lesson-length"
 ARMS = ("five", "ten", "fifteen", "adaptive")
@@ -41,7 +41,7 @@ def _compiled(version: int = 1, revision: int = 1):  # type: ignore[no-untyped-d
 
 @pytest.fixture
 def live(tmp_path) -> Iterator[tuple[TestClient, Keys]]:  # type: ignore[no-untyped-def]
-    from service.app import create_app
+    from apportion.app import create_app
 
     settings = make_settings(
         f"sqlite:///{tmp_path}/a.db",

@@ -5,13 +5,15 @@ from __future__ import annotations
 from fastapi.testclient import TestClient
 from sqlalchemy import update
 
-from service.store.tables import AuditEntry
+from apportion.store.tables import AuditEntry
 
 
 def _make_entries(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
     for i in range(4):
         client.post(
-            "/v1/keys", json={"name": f"k{i}", "owner": f"k{i}@people", "role": "reader"}, headers=keys.h(keys.admin)
+            "/v1/keys",
+            json={"name": f"k{i}", "owner": f"k{i}@people", "role": "reader"},
+            headers=keys.h(keys.admin),
         )
 
 

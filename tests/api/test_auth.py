@@ -7,7 +7,7 @@ import hashlib
 from fastapi.testclient import TestClient
 from sqlalchemy import select
 
-from service.store.tables import ApiKey
+from apportion.store.tables import ApiKey
 
 
 def test_no_key_is_401_problem(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
@@ -23,14 +23,20 @@ def test_malformed_and_unknown_keys_are_401(client: TestClient, keys) -> None:  
 
 
 def test_role_below_route_is_403(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
-    r = client.post("/v1/keys", json={"name": "x", "owner": "x@people", "role": "reader"}, headers=keys.h(keys.analyst))
+    r = client.post(
+        "/v1/keys",
+        json={"name": "x", "owner": "x@people", "role": "reader"},
+        headers=keys.h(keys.analyst),
+    )
     assert r.status_code == 403
     assert "admin" in r.json()["detail"]
 
 
 def test_admin_creates_key_shown_once_and_stored_hashed(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
     r = client.post(
-        "/v1/keys", json={"name": "svc-backend", "owner": "backend@systems", "role": "reader"}, headers=keys.h(keys.admin)
+        "/v1/keys",
+        json={"name": "svc-backend", "owner": "backend@systems", "role": "reader"},
+        headers=keys.h(keys.admin),
     )
     assert r.status_code == 201
     body = r.json()
@@ -45,7 +51,9 @@ def test_admin_creates_key_shown_once_and_stored_hashed(client: TestClient, keys
 
 def test_revoked_key_is_401(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
     made = client.post(
-        "/v1/keys", json={"name": "temp", "owner": "temp@people", "role": "analyst"}, headers=keys.h(keys.admin)
+        "/v1/keys",
+        json={"name": "temp", "owner": "temp@people", "role": "analyst"},
+        headers=keys.h(keys.admin),
     ).json()
     assert client.delete(f"/v1/keys/{made['id']}", headers=keys.h(keys.admin)).json()["revoked_at"]
     r = client.get("/v1/audit", headers=keys.h(made["secret"]))
@@ -59,7 +67,11 @@ def test_revoking_unknown_key_is_404(client: TestClient, keys) -> None:  # type:
 
 
 def test_bad_role_is_422(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
-    r = client.post("/v1/keys", json={"name": "x", "owner": "x@people", "role": "owner"}, headers=keys.h(keys.admin))
+    r = client.post(
+        "/v1/keys",
+        json={"name": "x", "owner": "x@people", "role": "owner"},
+        headers=keys.h(keys.admin),
+    )
     assert r.status_code == 422
     assert r.json()["errors"][0]["field"] == "role"
 

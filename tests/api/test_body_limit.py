@@ -10,7 +10,7 @@ import pytest
 from fastapi.testclient import TestClient
 from support import EXPERIMENT, make_keys, make_settings
 
-from service.app import create_app
+from apportion.app import create_app
 
 LIMIT = 4096
 

@@ -14,8 +14,8 @@ from typing import Any
 import pytest
 from fastapi.testclient import TestClient
 
-from service.api.fields import INT64_MAX
-from service.openapi_export import render
+from apportion.api.fields import INT64_MAX
+from apportion.openapi_export import render
 
 BIG = INT64_MAX + 1
 

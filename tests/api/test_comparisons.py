@@ -8,7 +8,7 @@ import pytest
 from fastapi.testclient import TestClient
 from support import EXPERIMENT, draft_plan, rows_csv, scenario_model, wait_job
 
-from service.demo.scenario import EXPERIMENT_KEY, GUARDRAILS, SUCCESS
+from apportion.demo.scenario import EXPERIMENT_KEY, GUARDRAILS, SUCCESS
 
 CSV = {"content-type": "text/csv"}
 URL = "/v1/experiments/checkout-copy/comparisons"
@@ -43,7 +43,9 @@ def _count(client: TestClient, keys) -> tuple[int, int]:  # type: ignore[no-unty
     return len(listed), len(trail)
 
 
-def test_a_comparison_runs_as_a_job_and_reads_back_ordered(client: TestClient, keys, readout) -> None:  # type: ignore[no-untyped-def]
+def test_a_comparison_runs_as_a_job_and_reads_back_ordered(
+    client: TestClient, keys, readout
+) -> None:  # type: ignore[no-untyped-def]
     r = client.post(URL, json=BODY, headers=keys.h(keys.analyst))
     assert r.status_code == 202, r.text
     started = r.json()
@@ -116,7 +118,9 @@ def test_bad_requests_are_422_naming_the_field_and_store_nothing(
     assert _count(client, keys) == before
 
 
-def test_too_few_rows_for_the_folds_is_422_naming_the_short_arms(client: TestClient, keys, readout) -> None:  # type: ignore[no-untyped-def]
+def test_too_few_rows_for_the_folds_is_422_naming_the_short_arms(
+    client: TestClient, keys, readout
+) -> None:  # type: ignore[no-untyped-def]
     small = client.post(
         "/v1/experiments/checkout-copy/readouts",
         content=rows_csv(150, seed=5),
@@ -133,9 +137,7 @@ def test_too_few_rows_for_the_folds_is_422_naming_the_short_arms(client: TestCli
 def test_unknown_readout_and_experiment_are_404(client: TestClient, keys, readout) -> None:  # type: ignore[no-untyped-def]
     r = client.post(URL, json={**BODY, "readout_version": 9}, headers=keys.h(keys.analyst))
     assert r.status_code == 404 and "readout version 9" in r.json()["detail"]
-    r = client.post(
-        "/v1/experiments/nope/comparisons", json=BODY, headers=keys.h(keys.analyst)
-    )
+    r = client.post("/v1/experiments/nope/comparisons", json=BODY, headers=keys.h(keys.analyst))
     assert r.status_code == 404
     assert client.get(f"{URL}/7", headers=keys.h(keys.reader)).status_code == 404
     assert _count(client, keys) == (0, 0)
@@ -150,7 +152,9 @@ def test_roles_reader_reads_analyst_starts(client: TestClient, keys, readout) ->
 
 
 def test_a_draft_links_the_comparison_it_follows(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
-    model_id = scenario_model(client, keys, n=6000, params={"max_depth": 2, "min_units_per_arm": 80})
+    model_id = scenario_model(
+        client, keys, n=6000, params={"max_depth": 2, "min_units_per_arm": 80}
+    )
     url = f"/v1/experiments/{EXPERIMENT_KEY}/comparisons"
     body = {"model_id": model_id, "success_metric": SUCCESS, "guardrails": GUARDRAILS,
             "candidates": ["causal_tree/chance", "global/chance"], "folds": 2}  # fmt: skip

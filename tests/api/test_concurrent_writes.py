@@ -11,7 +11,7 @@ from fastapi.testclient import TestClient
 from support import EXPERIMENT, rows_csv
 from writers import CSV, PLAN, activate, approved_versions, audit_entries, burst, small_model
 
-from service.demo.postlaunch import post_launch_csv
+from apportion.demo.postlaunch import post_launch_csv
 
 EXP = EXPERIMENT["key"]
 
@@ -157,7 +157,7 @@ def test_watch_uploads_racing_activations_never_fail_or_share_a_number(
 
 
 def test_two_approvals_of_one_draft_exactly_one_wins(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
-    from service.demo.scenario import GUARDRAILS, SUCCESS
+    from apportion.demo.scenario import GUARDRAILS, SUCCESS
 
     model = small_model(client, keys)
     body = {"model_id": model, "success_metric": SUCCESS, "guardrails": GUARDRAILS, "draws": 20}
@@ -185,7 +185,7 @@ def test_two_approvals_of_one_draft_exactly_one_wins(client: TestClient, keys) -
 def test_first_drafts_of_a_new_plan_at_once_get_versions_one_to_three(
     client: TestClient, keys
 ) -> None:  # type: ignore[no-untyped-def]
-    from service.demo.scenario import GUARDRAILS, SUCCESS
+    from apportion.demo.scenario import GUARDRAILS, SUCCESS
 
     model = small_model(client, keys)
     body = {"model_id": model, "success_metric": SUCCESS, "guardrails": GUARDRAILS, "draws": 20}

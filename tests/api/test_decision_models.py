@@ -8,10 +8,12 @@ from support import draft_plan, wait_job
 
 
 def test_policy_tree_model_feeds_plans_and_lookups(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
-    from service.demo.scenario import GUARDRAILS, experiment_declaration, simulate, to_csv_bytes
+    from apportion.demo.scenario import GUARDRAILS, experiment_declaration, simulate, to_csv_bytes
 
     decl = experiment_declaration()
-    assert client.post("/v1/experiments", json=decl, headers=keys.h(keys.analyst)).status_code == 201
+    assert (
+        client.post("/v1/experiments", json=decl, headers=keys.h(keys.analyst)).status_code == 201
+    )
     r = client.post(
         f"/v1/experiments/{decl['key']}/readouts",
         content=to_csv_bytes(simulate(20_000, seed=2)),
@@ -25,7 +27,9 @@ def test_policy_tree_model_feeds_plans_and_lookups(client: TestClient, keys) -> 
         "params": {"guardrails": guard, "max_depth": 2, "min_units_per_arm": 100},
         "success_metric": "active_days",
     }
-    r = client.post(f"/v1/experiments/{decl['key']}/models", json=body, headers=keys.h(keys.analyst))
+    r = client.post(
+        f"/v1/experiments/{decl['key']}/models", json=body, headers=keys.h(keys.analyst)
+    )
     assert r.status_code == 202, r.text
     assert wait_job(client, keys, r.json()["job"])["status"] == "done"
     model = client.get(r.json()["model"], headers=keys.h(keys.reader)).json()
@@ -51,7 +55,7 @@ def test_policy_tree_model_feeds_plans_and_lookups(client: TestClient, keys) -> 
 
 
 def test_bad_guardrail_parameter_is_a_422_naming_it(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
-    from service.demo.scenario import experiment_declaration, simulate, to_csv_bytes
+    from apportion.demo.scenario import experiment_declaration, simulate, to_csv_bytes
 
     decl = experiment_declaration()
     client.post("/v1/experiments", json=decl, headers=keys.h(keys.analyst))
@@ -65,7 +69,9 @@ def test_bad_guardrail_parameter_is_a_422_naming_it(client: TestClient, keys) ->
         "method": "forest",
         "params": {"guardrails": [{"metric": "cancelled", "threshold": -1}]},
     }
-    r = client.post(f"/v1/experiments/{decl['key']}/models", json=body, headers=keys.h(keys.analyst))
+    r = client.post(
+        f"/v1/experiments/{decl['key']}/models", json=body, headers=keys.h(keys.analyst)
+    )
     assert r.status_code == 422
     assert r.headers["content-type"].startswith("application/problem+json")
     assert "guardrails" in r.json()["detail"] and "allowed rise" in r.json()["detail"]

@@ -11,7 +11,7 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, make_keys, make_settings, wait_job
 
-from service.demo.scenario import experiment_declaration, simulate, to_csv_bytes
+from apportion.demo.scenario import experiment_declaration, simulate, to_csv_bytes
 
 LIMIT = 1_500  # rows the in-memory path takes in these tests (APPORTION_FIT_ENGINE_MIN_ROWS)
 N = 4_000
@@ -19,7 +19,7 @@ N = 4_000
 
 @pytest.fixture
 def big(db_url: str):  # type: ignore[no-untyped-def]
-    from service.app import create_app
+    from apportion.app import create_app
 
     app = create_app(make_settings(db_url, fit_engine_min_rows=LIMIT, held_out_folds=2))
     with TestClient(app, raise_server_exceptions=False) as c:
@@ -36,8 +36,8 @@ PARAMS = {"max_depth": 2, "min_units_per_arm": 60, "cv_folds": 0, "seed": 5}
 
 
 def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
-    from service.stats.models import fit_cohort_model
-    from service.usecases.experiments import load_readout_table
+    from apportion.stats.models import fit_cohort_model
+    from apportion.usecases.experiments import load_readout_table
 
     c, keys, key, version = big
     r = c.post(f"/v1/experiments/{key}/models", headers=keys.h(keys.analyst),
@@ -47,7 +47,7 @@ def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
     model = c.get(r.json()["model"], headers=keys.h(keys.reader)).json()
     assert model["diagnostics"]["engine"] == "duckdb"
     services = c.app.state.services  # type: ignore[attr-defined]
-    from service.store import experiments as repo
+    from apportion.store import experiments as repo
 
     with services.db.read() as s:
         exp = repo.get_experiment(session=s, key=key)
@@ -75,8 +75,8 @@ def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
                  headers=keys.h(keys.reader))  # fmt: skip
     assert page.status_code == 200
     assert f"a uniform sample of {LIMIT:,} of the readout's {N:,} rows" in page.text
-    section = page.text[page.text.index('id="held-out"'):]
-    from service.demo.scenario import SUCCESS
+    section = page.text[page.text.index('id="held-out"') :]
+    from apportion.demo.scenario import SUCCESS
 
     assert f'<th scope="row">{SUCCESS}</th>' in section[: section.index("</section>")]
 
@@ -92,7 +92,7 @@ def test_a_method_fitted_in_memory_only_is_refused_above_the_limit(big):
     assert "APPORTION_FIT_ENGINE_MIN_ROWS" in body["detail"]
     from sqlalchemy import func, select
 
-    from service.store.tables import CohortModel, Job
+    from apportion.store.tables import CohortModel, Job
 
     services = c.app.state.services  # type: ignore[attr-defined]
     with services.db.read() as s:  # nothing stored: no model row, no job

@@ -12,7 +12,7 @@ from scipy import stats
 from sqlalchemy import func, select
 from support import EXPERIMENT, rows_csv
 
-from service.store.tables import AuditEntry, Blob, Readout
+from apportion.store.tables import AuditEntry, Blob, Readout
 
 CSV = {"content-type": "text/csv"}
 

@@ -8,8 +8,8 @@ import pytest
 from fastapi.testclient import TestClient
 from support import make_keys, make_settings
 
-from service.app import create_app
-from service.observability import BUSINESS_LABELS, show_labels
+from apportion.app import create_app
+from apportion.observability import BUSINESS_LABELS, show_labels
 
 
 def test_no_benchmark_route_in_the_app(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
@@ -64,7 +64,7 @@ def test_without_a_key_the_body_is_not_examined(
 
 def test_metric_labels_can_be_redacted(tmp_path) -> None:  # type: ignore[no-untyped-def]
     """A plan name, its version and arms appear in /metrics only when configured to."""
-    from service.observability import LIVE_VERSION
+    from apportion.observability import LIVE_VERSION
 
     try:
         app = create_app(make_settings(f"sqlite:///{tmp_path}/m.db", metrics_labels=["arm"]))

@@ -28,8 +28,8 @@ from schemathesis.specs.openapi.checks import (
 )
 from support import make_keys, make_settings
 
-from service.app import create_app
-from service.errors import Unauthenticated
+from apportion.app import create_app
+from apportion.errors import Unauthenticated
 
 EXAMPLES = 12  # per operation and key: 28 operations x 2 keys x 12 = at most 672 requests
 

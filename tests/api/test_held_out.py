@@ -11,10 +11,10 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, make_keys, make_settings, scenario_model, wait_job
 
-from service.app import create_app
-from service.cli.client import render_version
-from service.demo.scenario import GUARDRAILS, SUCCESS
-from service.usecases import plans
+from apportion.app import create_app
+from apportion.cli.client import render_version
+from apportion.demo.scenario import GUARDRAILS, SUCCESS
+from apportion.usecases import plans
 
 
 @pytest.fixture
@@ -87,7 +87,7 @@ def test_approval_waits_for_the_evaluation_and_a_rejected_draft_skips_it(db_url:
     """Found by running the demo: a version approved before its evaluation finished could never
     take the figures (approved versions are immutable) and the job failed in a loop. Approval now
     waits for the evaluation (409 while it runs); a rejected draft's job ends without writing."""
-    from service.usecases import jobs
+    from apportion.usecases import jobs
 
     app = create_app(make_settings(db_url, held_out_folds=2, run_jobs_in_process=False))
     with TestClient(app, raise_server_exceptions=False) as c:
@@ -100,8 +100,9 @@ def test_approval_waits_for_the_evaluation_and_a_rejected_draft_skips_it(db_url:
             json={"reason": "looks fine"},
             headers=keys.h(keys.approver),
         )
-        assert approve.status_code == 409 and "held-out evaluation is still running" in (
-            approve.json()["detail"]
+        assert (
+            approve.status_code == 409
+            and "held-out evaluation is still running" in (approve.json()["detail"])
         )
         assert jobs.run_one(services, "test-worker")
         assert wait_job(c, keys, v1["report"]["held_out"]["job"])["status"] == "done"
@@ -127,8 +128,8 @@ def test_approval_waits_for_the_evaluation_and_a_rejected_draft_skips_it(db_url:
 
 def _fitted_without_worker(client: TestClient, keys, services) -> int:  # type: ignore[no-untyped-def]
     """The scenario's causal tree on 4,000 learners, its fit job run by hand (no worker thread)."""
-    from service.demo.scenario import experiment_declaration, simulate, to_csv_bytes
-    from service.usecases import jobs
+    from apportion.demo.scenario import experiment_declaration, simulate, to_csv_bytes
+    from apportion.usecases import jobs
 
     decl = experiment_declaration()
     assert client.post("/v1/experiments", json=decl, headers=keys.h(keys.analyst)).is_success

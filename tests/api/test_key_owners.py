@@ -57,7 +57,7 @@ class _Keys:
 
 def _active_admins(client: TestClient, keys) -> int:  # type: ignore[no-untyped-def]
     with client.app.state.services.db.read() as s:  # type: ignore[attr-defined]
-        from service.store import keys as store
+        from apportion.store import keys as store
 
         return sum(
             1 for k in store.all_keys(session=s) if k.role == "admin" and k.revoked_at is None
@@ -71,7 +71,7 @@ def test_the_last_active_admin_key_cannot_be_revoked(client: TestClient, keys) -
     assert client.delete(f"/v1/keys/{second['id']}", headers=keys.h(keys.admin)).status_code == 200
     assert _active_admins(client, keys) == 1
     with client.app.state.services.db.read() as s:  # type: ignore[attr-defined]
-        from service.store import keys as store
+        from apportion.store import keys as store
 
         (mine,) = [k.id for k in store.all_keys(session=s) if k.name == "t-admin"]
     r = client.delete(f"/v1/keys/{mine}", headers=keys.h(keys.admin))
@@ -88,7 +88,7 @@ def test_two_admins_revoking_each_other_at_once_leave_one(
 ) -> None:  # type: ignore[no-untyped-def]
     """Both requests race; the row lock taken before counting lets exactly one through."""
     with client.app.state.services.db.read() as s:  # type: ignore[attr-defined]
-        from service.store import keys as store
+        from apportion.store import keys as store
 
         (first,) = [k.id for k in store.all_keys(session=s) if k.name == "t-admin"]
     other = _issue(client, keys, f"ops-{attempt}", f"ops{attempt}@people", "admin")

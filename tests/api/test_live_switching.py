@@ -15,9 +15,9 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, scenario_model
 
-from service.errors import Conflict
-from service.store.audit import Actor
-from service.usecases import plans as uc
+from apportion.errors import Conflict
+from apportion.store.audit import Actor
+from apportion.usecases import plans as uc
 
 POLL = 0.5  # seconds: the second process's poll interval (the in-process app swaps right after its commit)
 
@@ -98,7 +98,7 @@ def second_server(client: TestClient, db_url: str):  # type: ignore[no-untyped-d
         "w+b",
     )
     proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
+        [sys.executable, "-m", "apportion.cli", "serve", "--port", str(port)],
         env=env,
         stdout=subprocess.DEVNULL,
         stderr=log,

@@ -30,11 +30,25 @@ def readout(client: TestClient, keys) -> int:  # type: ignore[no-untyped-def]
         ("segments", {"features": ["plan", "age_days"], "bins": {"age_days": 2}}),
         ("causal_tree", {"max_depth": 2, "min_units_per_arm": 30, "cv_folds": 0}),
         ("intersect", {"max_depth": 1, "min_units_per_arm": 30}),
-        ("two_model", {"max_depth": 2, "min_units_per_arm": 30, "max_iter": 20, "folds": 2,
-                       "min_samples_leaf": 50}),  # fmt: skip
+        (
+            "two_model",
+            {
+                "max_depth": 2,
+                "min_units_per_arm": 30,
+                "max_iter": 20,
+                "folds": 2,
+                "min_samples_leaf": 50,
+            },
+        ),  # fmt: skip
         ("forest", {"max_depth": 2, "min_units_per_arm": 30, "n_trees": 4}),
-        ("policy_tree", {"max_depth": 2, "min_units_per_arm": 30,
-                         "guardrails": [{"metric": "refund", "threshold": 0.01}]}),  # fmt: skip
+        (
+            "policy_tree",
+            {
+                "max_depth": 2,
+                "min_units_per_arm": 30,
+                "guardrails": [{"metric": "refund", "threshold": 0.01}],
+            },
+        ),  # fmt: skip
     ],
     ids=["global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree"],
 )
@@ -118,7 +132,7 @@ def test_failed_sample_ratio_check_needs_an_audited_override(client: TestClient,
 def test_a_failing_fit_leaves_a_readable_failed_job(
     client: TestClient, keys, readout: int, monkeypatch
 ) -> None:  # type: ignore[no-untyped-def]
-    import service.usecases.models as models_uc
+    import apportion.usecases.models as models_uc
 
     def boom(*_a, **_k):  # type: ignore[no-untyped-def]
         raise MemoryError("readout too large for this worker")

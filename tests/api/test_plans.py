@@ -6,7 +6,7 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, scenario_model
 
-from service.store.plans import ImmutableVersion
+from apportion.store.plans import ImmutableVersion
 
 
 @pytest.fixture
@@ -169,7 +169,7 @@ def test_approved_version_can_never_change(client: TestClient, keys, model_id: i
         json={"reason": "ok"},
         headers=keys.h(keys.approver),
     )
-    from service.store import plans as repo
+    from apportion.store import plans as repo
 
     db = client.app.state.services.db  # type: ignore[attr-defined]
     with pytest.raises(ImmutableVersion):

@@ -16,7 +16,7 @@ from fastapi.testclient import TestClient
 from sqlalchemy import func, select
 from support import EXPERIMENT, make_settings, rows_csv
 
-from service.store.tables import AuditEntry, Job, Readout
+from apportion.store.tables import AuditEntry, Job, Readout
 
 URL = "/v1/experiments/checkout-copy/readouts"
 
@@ -31,7 +31,7 @@ def lake(tmp_path):
 
 @pytest.fixture
 def client(db_url: str, lake):  # type: ignore[no-untyped-def]
-    from service.app import create_app
+    from apportion.app import create_app
 
     app = create_app(make_settings(db_url, readout_source_prefixes=[str(lake) + "/"]))
     with TestClient(app, raise_server_exceptions=False) as c:
@@ -79,7 +79,7 @@ def test_a_file_is_imported_in_a_job_and_snapshotted(client: TestClient, keys, l
     assert first["n_rows"] == 300
     pq.write_table(_table(50, 2), path)  # the source changes afterwards
     services = client.app.state.services  # type: ignore[attr-defined]
-    from service.usecases.experiments import load_readout_table
+    from apportion.usecases.experiments import load_readout_table
 
     with services.db.read() as s:
         rid = s.scalar(select(Readout.id).where(Readout.version == version))
@@ -159,8 +159,8 @@ def test_missing_and_bad_sources_and_bodies(client: TestClient, keys, lake) -> N
 
 
 def test_no_prefixes_configured_means_by_reference_is_off(db_url: str, keys_factory=None) -> None:  # type: ignore[no-untyped-def]
-    from service.errors import Forbidden
-    from service.usecases.sources import resolve_source
+    from apportion.errors import Forbidden
+    from apportion.usecases.sources import resolve_source
 
     with pytest.raises(Forbidden, match="no source prefixes"):
         resolve_source("/tmp/anything.parquet", [])

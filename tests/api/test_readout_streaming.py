@@ -13,9 +13,9 @@ from fastapi.testclient import TestClient
 from sqlalchemy import func, select
 from support import EXPERIMENT, rows_csv
 
-import service.ingest.stream as stream
-from service.store.tables import AuditEntry, Blob, Readout
-from service.usecases.experiments import load_readout_table, readout_data
+import apportion.ingest.stream as stream
+from apportion.store.tables import AuditEntry, Blob, Readout
+from apportion.usecases.experiments import load_readout_table, readout_data
 
 URL = "/v1/experiments/checkout-copy/readouts"
 

@@ -12,7 +12,7 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, scenario_model
 
-from service.demo.postlaunch import harm_to_beginners, post_launch_csv
+from apportion.demo.postlaunch import harm_to_beginners, post_launch_csv
 
 CSV = {"content-type": "text/csv"}
 

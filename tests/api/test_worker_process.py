@@ -10,7 +10,7 @@ import time
 from fastapi.testclient import TestClient
 from support import EXPERIMENT, make_keys, make_settings, rows_csv, wait_job
 
-from service.app import create_app
+from apportion.app import create_app
 
 
 def test_a_worker_process_runs_the_fit_the_server_queued(db_url: str, tmp_path) -> None:  # type: ignore[no-untyped-def]
@@ -38,7 +38,7 @@ def test_a_worker_process_runs_the_fit_the_server_queued(db_url: str, tmp_path) 
         }
         with open(tmp_path / "worker.log", "wb") as log:
             worker = subprocess.Popen(
-                [sys.executable, "-m", "service.cli", "worker"], env=env, stdout=log, stderr=log
+                [sys.executable, "-m", "apportion.cli", "worker"], env=env, stdout=log, stderr=log
             )
             try:
                 job = wait_job(client, keys, started["job"], timeout=60)

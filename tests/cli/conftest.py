@@ -10,7 +10,7 @@ from dataclasses import dataclass
 import pytest
 from support import make_keys, make_settings
 
-from service.cli.main import main
+from apportion.cli.main import main
 
 
 @dataclass
@@ -22,8 +22,8 @@ class Live:
 
 @pytest.fixture
 def live(db_url: str) -> Iterator[Live]:
-    from service.app import create_app
-    from service.demo.run import serve_in_thread
+    from apportion.app import create_app
+    from apportion.demo.run import serve_in_thread
 
     app = create_app(make_settings(db_url))
     running = serve_in_thread(app, port=0)

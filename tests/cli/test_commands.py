@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 from support import EXPERIMENT, rows_csv
 
-from service.cli.client import format_table, parse_pairs
-from service.cli.main import main
+from apportion.cli.client import format_table, parse_pairs
+from apportion.cli.main import main
 
 
 @pytest.fixture
@@ -139,7 +139,7 @@ def test_model_fit_no_wait_then_job_show(cli, files, live) -> None:  # type: ign
     assert r.code == 0
     started = r.json()
     assert started["model_id"] == 1 and started["job"] == f"/v1/jobs/{started['job_id']}"
-    from service.cli.client import Api, wait_for_job
+    from apportion.cli.client import Api, wait_for_job
 
     with Api(live.url, live.keys["reader"]) as api:
         assert wait_for_job(api, started["job_id"])["status"] == "done"
@@ -174,7 +174,7 @@ def test_audit_show_and_check(cli, files) -> None:  # type: ignore[no-untyped-de
 def test_audit_check_reports_a_broken_chain(cli, files, live) -> None:  # type: ignore[no-untyped-def]
     from sqlalchemy import update
 
-    from service.store.tables import AuditEntry
+    from apportion.store.tables import AuditEntry
 
     _with_readout(cli, files)
     with live.services.db.write() as s:  # type: ignore[attr-defined]
@@ -215,7 +215,7 @@ def test_environment_gives_url_and_key(live, files, monkeypatch, capsys) -> None
 
 
 def test_unreachable_server_exits_2(capsys) -> None:  # type: ignore[no-untyped-def]
-    from service.demo.run import bind_socket
+    from apportion.demo.run import bind_socket
 
     sock = bind_socket(port=0)  # a port nobody listens on once closed
     port = sock.getsockname()[1]
@@ -240,16 +240,16 @@ def test_parse_pairs_types() -> None:
 
 
 def test_cli_api_and_fitter_offer_the_same_model_methods():
-    from service.api.routes.models import FitIn
-    from service.cli.client import MODEL_METHODS
-    from service.stats.models import METHODS
+    from apportion.api.routes.models import FitIn
+    from apportion.cli.client import MODEL_METHODS
+    from apportion.stats.models import METHODS
 
     assert MODEL_METHODS == METHODS
     assert tuple(FitIn.model_fields["method"].annotation.__args__) == METHODS
 
 
 def test_plan_rendering_lists_guardrail_prices_and_the_five_thresholds():
-    from service.cli.client import render_prices
+    from apportion.cli.client import render_prices
 
     rows = [
         {

@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 from support import EXPERIMENT, rows_csv
 
-from service.cli.client import LocalError, _guardrail_arg
+from apportion.cli.client import LocalError, _guardrail_arg
 
 
 @pytest.fixture

@@ -7,8 +7,8 @@ from __future__ import annotations
 import io
 from pathlib import Path
 
-from service.demo import scenario as sc
-from service.demo.run import run_demo
+from apportion.demo import scenario as sc
+from apportion.demo.run import run_demo
 
 
 def test_demo_end_to_end(tmp_path: Path) -> None:

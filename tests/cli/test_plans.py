@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from service.demo import scenario as sc
+from apportion.demo import scenario as sc
 
 PLAN = "lesson-length"
 
@@ -205,7 +205,7 @@ def test_large_report_runs_as_a_job_and_draft_waits(cli, model, spec) -> None:  
 
 
 def test_watch_upload_show_and_auto_rollback(cli, model, spec, live, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
-    from service.demo.postlaunch import harm_to_beginners, post_launch_csv
+    from apportion.demo.postlaunch import harm_to_beginners, post_launch_csv
 
     for _ in range(2):
         _draft(cli, model, spec)

@@ -66,7 +66,7 @@ def test_kill9_during_uploads_a_fit_and_activations(backend: str, tmp_path) -> N
 
 def _start_slow_fit(c: httpx.Client, keys: Keys) -> dict[str, Any]:
     """A fit that runs for a couple of seconds: 40,000 learners, a depth-4 tree."""
-    from service.demo.scenario import EXPERIMENT_KEY, simulate, to_csv_bytes
+    from apportion.demo.scenario import EXPERIMENT_KEY, simulate, to_csv_bytes
 
     r = c.post(
         f"/v1/experiments/{EXPERIMENT_KEY}/readouts",

@@ -10,8 +10,8 @@ import pyarrow.csv as pacsv
 import pytest
 from scipy import stats
 
-from service.demo import scenario as sc
-from service.stats.estimates import cell_moments, metric_estimates
+from apportion.demo import scenario as sc
+from apportion.stats.estimates import cell_moments, metric_estimates
 
 N = 200_000  # scenario.md's default demo size
 

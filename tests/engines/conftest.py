@@ -8,10 +8,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from service.demo.scenario import simulate
-from service.engines.dataset import ReadoutDataset
-from service.ingest.parse import parse_units
-from service.stats.table import FeatureSpec, UnitTable
+from apportion.demo.scenario import simulate
+from apportion.engines.dataset import ReadoutDataset
+from apportion.ingest.parse import parse_units
+from apportion.stats.table import FeatureSpec, UnitTable
 
 
 def parquet_columns(table: UnitTable) -> pa.Table:

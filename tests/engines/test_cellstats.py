@@ -9,12 +9,12 @@ import numpy as np
 import pyarrow.fs as pafs
 import pytest
 
-from service.engines import open_engine
-from service.engines.dataset import ReadoutDataset
-from service.ingest.dataset import read_dataset, sample_dataset, write_table
-from service.stats.models import fit_cohort_model
-from service.stats.pushdown import fit_on_engine
-from service.usecases.cellstats import table_cell_statistics
+from apportion.engines import open_engine
+from apportion.engines.dataset import ReadoutDataset
+from apportion.ingest.dataset import read_dataset, sample_dataset, write_table
+from apportion.stats.models import fit_cohort_model
+from apportion.stats.pushdown import fit_on_engine
+from apportion.usecases.cellstats import table_cell_statistics
 
 from .test_engines import CASES, assert_same_fit
 
@@ -30,7 +30,9 @@ def assert_same_moments(a, b) -> None:
 def fitted(readout):
     _, table = readout
     fit = fit_cohort_model(table, "causal_tree", CASES["causal_tree"])
-    assert fit.partition.n_cohorts >= 3  # several cohorts, so the routing has something to get wrong
+    assert (
+        fit.partition.n_cohorts >= 3
+    )  # several cohorts, so the routing has something to get wrong
     return fit
 
 
@@ -40,7 +42,7 @@ def stored(readout, tmp_path_factory):
     _, table = readout
     d = tmp_path_factory.mktemp("stored")
     fs = pafs.LocalFileSystem()
-    import service.ingest.dataset as dsmod
+    import apportion.ingest.dataset as dsmod
 
     w = dsmod.DatasetWriter(fs=fs, directory=str(d), schema=dsmod.spec_of_table(table).schema(),
                             row_group_rows=1_000, file_row_groups=3)  # fmt: skip
@@ -91,7 +93,7 @@ def test_missing_and_unseen_levels_follow_the_default_way(readout, fitted, tmp_p
     odd = ReadoutDataset.open(str(tmp_path / "odd.parquet"), arm_keys=ds.arm_keys,
                               design_shares=ds.design_shares, features=ds.features,
                               metrics=ds.metrics)  # fmt: skip
-    from service.engines.memory import read_table
+    from apportion.engines.memory import read_table
 
     with open_engine(odd, "duckdb") as eng:
         got = eng.partition_moments(fitted.partition)
@@ -147,7 +149,7 @@ def test_write_table_layout_is_what_the_engines_read(readout, tmp_path):
     fs = pafs.LocalFileSystem()
     manifest = write_table(fs, str(tmp_path), table)
     ds = ReadoutDataset.stored([str(tmp_path / f["name"]) for f in manifest.files], manifest)
-    from service.stats.partition import Partition
+    from apportion.stats.partition import Partition
 
     with open_engine(ds, "duckdb") as eng:
         got = eng.partition_moments(Partition.single(table.features))

@@ -9,16 +9,22 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.engines import choose_engine, open_engine
-from service.errors import InvalidInput
-from service.stats.models import fit_cohort_model
-from service.stats.pushdown import fit_on_engine
+from apportion.engines import choose_engine, open_engine
+from apportion.errors import InvalidInput
+from apportion.stats.models import fit_cohort_model
+from apportion.stats.pushdown import fit_on_engine
 
 CASES = {
     "causal_tree": {"cv_folds": 0, "max_depth": 4, "min_units_per_arm": 40},
     "causal_tree_cv": {"cv_folds": 2, "max_depth": 3, "seed": 2, "min_units_per_arm": 100},
-    "causal_tree_success": {"cv_folds": 0, "max_depth": 3, "success_metric": "abandon_rate",
-                            "estimation_fraction": 0.4, "max_bins": 16, "seed": 9},
+    "causal_tree_success": {
+        "cv_folds": 0,
+        "max_depth": 3,
+        "success_metric": "abandon_rate",
+        "estimation_fraction": 0.4,
+        "max_bins": 16,
+        "seed": 9,
+    },
     "global": {},
 }
 
@@ -104,7 +110,7 @@ def test_non_finite_metric_values_are_refused(tmp_path, readout):
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    from service.engines.dataset import ReadoutDataset
+    from apportion.engines.dataset import ReadoutDataset
 
     ds, _ = readout
     t = pq.read_table(ds.files[0])
@@ -115,7 +121,10 @@ def test_non_finite_metric_values_are_refused(tmp_path, readout):
     bad = ReadoutDataset.open(str(tmp_path / "bad.parquet"), arm_keys=ds.arm_keys,
                               design_shares=ds.design_shares, features=ds.features,
                               metrics=ds.metrics)  # fmt: skip
-    with open_engine(bad, "duckdb") as eng, pytest.raises(InvalidInput, match="'active_days' has 2"):
+    with (
+        open_engine(bad, "duckdb") as eng,
+        pytest.raises(InvalidInput, match="'active_days' has 2"),
+    ):
         fit_on_engine(eng, "causal_tree", {})
 
 
@@ -124,7 +133,9 @@ def test_engine_choice():
     assert choose_engine(101, spark_master=None, duckdb_min_rows=100) == "duckdb"
     assert choose_engine(10, spark_master="local[2]", duckdb_min_rows=100) == "memory"
     assert choose_engine(101, spark_master="local[2]", duckdb_min_rows=100) == "spark"
-    assert choose_engine(10**9, spark_master=None, duckdb_min_rows=100, requested="memory") == "memory"
+    assert (
+        choose_engine(10**9, spark_master=None, duckdb_min_rows=100, requested="memory") == "memory"
+    )
     with pytest.raises(InvalidInput, match="APPORTION_SPARK_MASTER"):
         choose_engine(10, spark_master=None, duckdb_min_rows=100, requested="spark")
     with pytest.raises(InvalidInput, match="engine must be one of"):
@@ -135,7 +146,7 @@ def test_quantile_positions_are_numpys():
     # Reference: numpy.quantile(method="inverted_cdf") (Hyndman and Fan's definition 1) on
     # distinct values 0..n-1, where the value is the position; sizes include ones where n * p is
     # whole and ones where float64 rounding decides.
-    from service.engines.sql import inverted_cdf_positions
+    from apportion.engines.sql import inverted_cdf_positions
 
     for n in (1, 2, 3, 7, 10, 64, 100, 999, 1000, 12_345):
         for max_bins in (2, 3, 10, 16, 64, 255):
@@ -149,15 +160,15 @@ def test_engine_quantiles_equal_numpys_with_ties_and_missing(tmp_path, monkeypat
     # Reference: numpy.quantile(method="inverted_cdf") over the non-missing values. With a cap of
     # 10 distinct values the feature takes the bucketed path (equal-width buckets, then the values
     # of the buckets that hold a wanted position).
-    import service.engines.sql as sqlmod
+    import apportion.engines.sql as sqlmod
 
     monkeypatch.setattr(sqlmod, "DISTINCT_CAP", cap)
     monkeypatch.setattr(sqlmod, "BUCKETS", 64)
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    from service.engines.dataset import ReadoutDataset
-    from service.stats.table import FeatureSpec, MetricSpec
+    from apportion.engines.dataset import ReadoutDataset
+    from apportion.stats.table import FeatureSpec, MetricSpec
 
     rng = np.random.default_rng(8)
     x = np.round(rng.gamma(2.0, 3.0, 5_000), 1)  # many ties, a long right tail

@@ -6,8 +6,8 @@ from __future__ import annotations
 
 import pytest
 
-from service.stats.models import fit_cohort_model
-from service.stats.pushdown import fit_on_engine
+from apportion.stats.models import fit_cohort_model
+from apportion.stats.pushdown import fit_on_engine
 
 from .test_engines import CASES, assert_same_fit
 
@@ -21,7 +21,7 @@ SMALL = {**CASES["causal_tree_success"], "max_depth": 2, "features": ["tenure_da
 def test_spark_fit_equals_in_memory_fit(readout, tmp_path, method):
     # Small fits keep CI short (a Spark query costs seconds however small the data); the SQL
     # plan is shared with DuckDB, whose tests cover cross-validation and deeper trees.
-    from service.engines import open_engine
+    from apportion.engines import open_engine
 
     ds, table = readout
     params = SMALL if method == "causal_tree" else {}

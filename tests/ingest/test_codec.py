@@ -9,9 +9,9 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pytest
 
-from service.errors import InvalidInput
-from service.ingest import decode_table, encode_table, parse_units
-from service.stats.table import FeatureSpec, MetricSpec, UnitTable
+from apportion.errors import InvalidInput
+from apportion.ingest import decode_table, encode_table, parse_units
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
 
 
 def make_table(n: int = 1000, seed: int = 11) -> UnitTable:

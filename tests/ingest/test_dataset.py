@@ -12,8 +12,8 @@ import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 import pytest
 
-from service.errors import InvalidInput
-from service.ingest.dataset import (
+from apportion.errors import InvalidInput
+from apportion.ingest.dataset import (
     MANIFEST,
     DatasetWriter,
     Manifest,
@@ -22,8 +22,8 @@ from service.ingest.dataset import (
     table_batch,
     write_table,
 )
-from service.stats.table import FeatureSpec, MetricSpec, UnitTable
-from service.store.blobstore import BlobStore
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
+from apportion.store.blobstore import BlobStore
 
 
 def _table(n: int, seed: int = 5) -> UnitTable:

@@ -14,9 +14,9 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from service.errors import InvalidInput
-from service.ingest import CONTENT_TYPES, parse_units
-from service.stats.table import FeatureSpec, MetricSpec
+from apportion.errors import InvalidInput
+from apportion.ingest import CONTENT_TYPES, parse_units
+from apportion.stats.table import FeatureSpec, MetricSpec
 
 CSV, PARQUET, NDJSON = "text/csv", "application/vnd.apache.parquet", "application/x-ndjson"
 ARMS = ["short", "control", "long"]  # control is not declared first: it must still get code 0
@@ -473,7 +473,7 @@ def _big(n: int, seed: int = 3) -> dict:
 
 def test_fifty_thousand_rows_parse_and_late_problems_are_found(monkeypatch):
     # small blocks so the upload is read as many blocks on both cores, as a large one would be
-    monkeypatch.setattr("service.ingest.formats._CSV_BLOCK", 1 << 16)
+    monkeypatch.setattr("apportion.ingest.formats._CSV_BLOCK", 1 << 16)
     n = 50_000
     cols = _big(n)
     t = parse(csv_body(cols)).table

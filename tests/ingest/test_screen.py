@@ -15,8 +15,8 @@ import pyarrow.parquet as pq
 import pytest
 from ingest.test_parse import CSV, GOOD, NDJSON, PARQUET, csv_body, errors_of, ndjson_body
 
-from service.ingest.problems import Problems
-from service.ingest.screen import JsonShapeScreen, screen_text
+from apportion.ingest.problems import Problems
+from apportion.ingest.screen import JsonShapeScreen, screen_text
 
 
 def _depth(value: object) -> int:

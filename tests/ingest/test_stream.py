@@ -12,11 +12,11 @@ import numpy as np
 import pyarrow.fs as pafs
 import pytest
 
-import service.ingest.stream as stream
-from service.errors import InvalidInput
-from service.ingest.dataset import read_dataset
-from service.ingest.problems import Problems
-from service.stats.estimates import cell_moments
+import apportion.ingest.stream as stream
+from apportion.errors import InvalidInput
+from apportion.ingest.dataset import read_dataset
+from apportion.ingest.problems import Problems
+from apportion.stats.estimates import cell_moments
 
 _spec = importlib.util.spec_from_file_location(
     "parse_cases", Path(__file__).with_name("test_parse.py")

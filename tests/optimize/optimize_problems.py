@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from service.optimize.problem import AllocationProblem, Guardrail, control_allocation
-from service.stats.estimates import CellMoments
-from service.stats.table import MetricSpec
+from apportion.optimize.problem import AllocationProblem, Guardrail, control_allocation
+from apportion.stats.estimates import CellMoments
+from apportion.stats.table import MetricSpec
 
 
 def random_problem(
@@ -57,7 +57,7 @@ def random_problem(
     greedy = np.zeros((c, j))
     greedy[np.arange(c), mean[..., 0].argmax(axis=1)] = 1.0
     b = control_allocation(c, j)
-    from service.optimize.linear import metric_values
+    from apportion.optimize.linear import metric_values
 
     vg = metric_values(greedy, shares, mean, metrics, tuple(comps))
     vb = metric_values(b, shares, mean, metrics, tuple(comps))

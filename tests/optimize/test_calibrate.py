@@ -7,12 +7,12 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from service.errors import Infeasible
-from service.optimize.calibrate import calibrated_solve, dl_tau2, shrink_means
-from service.optimize.problem import Guardrail, build_problem
-from service.optimize.solve import solve
-from service.stats.estimates import CellMoments
-from service.stats.table import MetricSpec
+from apportion.errors import Infeasible
+from apportion.optimize.calibrate import calibrated_solve, dl_tau2, shrink_means
+from apportion.optimize.problem import Guardrail, build_problem
+from apportion.optimize.solve import solve
+from apportion.stats.estimates import CellMoments
+from apportion.stats.table import MetricSpec
 
 METRICS = (
     MetricSpec("win", "mean", "higher"),

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from optimize.optimize_problems import random_problem
 
-from service.optimize.solve import solve
+from apportion.optimize.solve import solve
 
 
 def holding_rates(problem, x, draws, seed):
@@ -65,8 +65,8 @@ def test_chance_constraint_is_exactly_met_after_the_final_scaling():
     # methods §5.3 item 3: the last cut LP point is moved toward the baseline until feasible
     problem = random_problem(3, n_cohorts=10, n_arms=4, n_guardrails=4)
     sol = solve(problem, "chance")
-    from service.optimize.chance import cone_values
-    from service.optimize.linear import linearize
+    from apportion.optimize.chance import cone_values
+    from apportion.optimize.linear import linearize
 
     lin = linearize(problem)
     f = cone_values(lin, sol.allocation, lin.z)
@@ -78,8 +78,8 @@ def test_chance_constraint_is_exactly_met_after_the_final_scaling():
 def test_pure_chance_plan_meets_cones_exactly():
     problem = random_problem(5, n_cohorts=6, n_arms=3, n_guardrails=3)
     sol = solve(problem, "chance", "pure")
-    from service.optimize.chance import cone_values
-    from service.optimize.linear import linearize
+    from apportion.optimize.chance import cone_values
+    from apportion.optimize.linear import linearize
 
     lin = linearize(problem)
     assert set(np.unique(sol.allocation)) <= {0.0, 1.0}
@@ -91,8 +91,8 @@ def test_chance_plan_holds_by_the_reports_exact_delta_method_check():
     # a ratio guardrail is linearized with its rate fixed at R(b) + t; the plan is re-solved until
     # the exact delta-method check (Deng, Knoblich and Lu 2018) that the impact report shows holds
     # too, within a ten-thousandth of each allowance
-    from service.optimize.linear import linearize
-    from service.optimize.solve import exact_excess
+    from apportion.optimize.linear import linearize
+    from apportion.optimize.solve import exact_excess
 
     problem = random_problem(3, n_cohorts=10, n_arms=4, n_guardrails=4)
     sol = solve(problem, "chance")

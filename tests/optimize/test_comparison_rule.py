@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
-from service.demo import designs as d
-from service.errors import InvalidInput
-from service.optimize.crossfit import Candidate, check_folds, evaluate_candidates, recommend
-from service.optimize.problem import Guardrail
+from apportion.demo import designs as d
+from apportion.errors import InvalidInput
+from apportion.optimize.crossfit import Candidate, check_folds, evaluate_candidates, recommend
+from apportion.optimize.problem import Guardrail
 
 G = (Guardrail("y1", 0.03, "absolute", 0.9),)
 
@@ -54,7 +54,9 @@ def test_order_is_guardrails_holding_by_lift_then_refused_and_verified_is_prefer
     assert out["recommended"] == "b/x" and out["reason"].startswith("b/x: held-out y0 lift 0.2")
     # probability the guardrail holds, normal approximation: Phi((0.03 - 0.025) / 0.01) = 0.6915
     # (standard normal table, Phi(0.5) = 0.6915)
-    assert out["candidates"][0]["metrics"]["y1"]["probability_holds"] == pytest.approx(0.6915, abs=1e-4)
+    assert out["candidates"][0]["metrics"]["y1"]["probability_holds"] == pytest.approx(
+        0.6915, abs=1e-4
+    )
 
 
 def test_a_near_tie_goes_to_the_earlier_simpler_candidate(table) -> None:  # type: ignore[no-untyped-def]

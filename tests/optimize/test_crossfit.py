@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from service.demo import designs as d
-from service.optimize.crossfit import (
+from apportion.demo import designs as d
+from apportion.optimize.crossfit import (
     Candidate,
     _scores,
     evaluate_candidates,
@@ -15,9 +15,9 @@ from service.optimize.crossfit import (
     registry,
     run_pipeline,
 )
-from service.optimize.problem import Guardrail
-from service.stats import models as cohort_models
-from service.stats.models import fit_cohort_model
+from apportion.optimize.problem import Guardrail
+from apportion.stats import models as cohort_models
+from apportion.stats.models import fit_cohort_model
 
 G = tuple(Guardrail(**g) for g in d.guardrails(0.9))
 
@@ -58,7 +58,7 @@ def test_dr_score_with_a_zero_outcome_model_is_horvitz_thompson():
 
 
 def test_held_out_lift_covers_the_truth_of_the_fold_plans():
-    # truth: the aligned design's effect functions (service.demo.designs). "aligned" with the
+    # truth: the aligned design's effect functions (apportion.demo.designs). "aligned" with the
     # global model: every fold plan is arm 1 for everyone (true success lift 0.17); the held-out
     # estimate must be within 3 of its standard errors of that (normal 99.7 % band).
     table = d.simulate(20_000, "aligned", 1.0, 4)
@@ -82,7 +82,9 @@ def test_decision_focused_candidates_price_the_plans_guardrails():
     assert [(g["metric"], g["threshold"]) for g in p["guardrails"]] == [("y1", 0.03), ("y2", 0.01)]
     assert "guardrails" not in model_params_for(Candidate("causal_tree", "chance"), G, {})
     own = [{"metric": "y1", "threshold": 0.05}]
-    assert model_params_for(Candidate("forest", "chance"), G, {"guardrails": own})["guardrails"] == own
+    assert (
+        model_params_for(Candidate("forest", "chance"), G, {"guardrails": own})["guardrails"] == own
+    )
     table = d.simulate(20_000, "opposed", 0.5, 1)
     fit, x, _ = run_pipeline(table, Candidate("policy_tree", "chance"), success="y0",
                              guardrails=G, seed=0, draws=10)  # fmt: skip

@@ -10,12 +10,12 @@ import pytest
 from optimize.optimize_problems import random_problem
 from scipy.optimize import linprog
 
-from service.optimize.problem import AllocationProblem
-from service.optimize.solve import solve
+from apportion.optimize.problem import AllocationProblem
+from apportion.optimize.solve import solve
 
 
 def independent_lp(problem: AllocationProblem):
-    """The LP of design §7 written out directly from the moments (no service.optimize code):
+    """The LP of design §7 written out directly from the moments (no apportion.optimize code):
     rows for mean metrics sum_c p_c sum_j x_cj m_cj; a ratio guardrail as
     N(x) - (R(b) + t) D(x) <= 0; higher-is-better rows flipped; relative
     thresholds t/100 * M(b)."""

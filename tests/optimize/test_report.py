@@ -10,13 +10,13 @@ import pytest
 from optimize.optimize_problems import random_problem
 from scipy.stats import norm
 
-from service.optimize.linear import linearize
-from service.optimize.lp import LPModel
-from service.optimize.problem import AllocationProblem, control_allocation
-from service.optimize.report import impact_report
-from service.optimize.solve import solve
-from service.stats.estimates import CellMoments
-from service.stats.table import MetricSpec
+from apportion.optimize.linear import linearize
+from apportion.optimize.lp import LPModel
+from apportion.optimize.problem import AllocationProblem, control_allocation
+from apportion.optimize.report import impact_report
+from apportion.optimize.solve import solve
+from apportion.stats.estimates import CellMoments
+from apportion.stats.table import MetricSpec
 
 
 def test_optimism_equals_expected_maximum_of_three_normals():

@@ -5,10 +5,10 @@ from __future__ import annotations
 
 import pytest
 
-from service.demo import scenario as sc
-from service.optimize.problem import Guardrail, build_problem
-from service.optimize.solve import solve
-from service.stats.models import fit_cohort_model
+from apportion.demo import scenario as sc
+from apportion.optimize.problem import Guardrail, build_problem
+from apportion.optimize.solve import solve
+from apportion.stats.models import fit_cohort_model
 
 SEEDS = range(10)
 GUARDRAILS = tuple(
@@ -47,7 +47,7 @@ def _safe(lifts, limits):
 
 @pytest.mark.slow
 def test_chance_plan_breaks_no_true_guardrail_and_beats_the_best_safe_single_arm(outcomes):
-    # truth: the scenario's effect functions (service.demo.scenario.true_lifts, oracle_plan)
+    # truth: the scenario's effect functions (apportion.demo.scenario.true_lifts, oracle_plan)
     good = 0
     for row in outcomes:
         o, lifts = row["oracle"], row["chance"]

@@ -1,4 +1,4 @@
-"""Guardrail prices and the lift at five thresholds (service/optimize/sensitivity.py)."""
+"""Guardrail prices and the lift at five thresholds (apportion/optimize/sensitivity.py)."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ import pytest
 from optimize.optimize_problems import random_problem
 from optimize.test_lp import independent_lp
 
-from service.optimize.sensitivity import guardrail_sensitivity
-from service.optimize.solve import solve
+from apportion.optimize.sensitivity import guardrail_sensitivity
+from apportion.optimize.solve import solve
 
 
 @pytest.mark.parametrize("seed", range(4))

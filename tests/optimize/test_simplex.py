@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.optimize import LinearConstraint, minimize
 
-from service.optimize.simplex import project_rows
+from apportion.optimize.simplex import project_rows
 
 
 def qp_projection(v: np.ndarray, mask: np.ndarray) -> np.ndarray:

@@ -7,10 +7,10 @@ import pytest
 from optimize.optimize_problems import random_problem
 from optimize.test_chance import holding_rates
 
-from service.optimize.chance import cone_values, solve_cone
-from service.optimize.linear import cvar_multiplier, linearize
-from service.optimize.lp import LPModel
-from service.optimize.solve import solve
+from apportion.optimize.chance import cone_values, solve_cone
+from apportion.optimize.linear import cvar_multiplier, linearize
+from apportion.optimize.lp import LPModel
+from apportion.optimize.solve import solve
 
 
 @pytest.mark.parametrize(("seed", "sampler"), [(2, "cells"), (5, "marginal")])

@@ -16,9 +16,9 @@ from servers import NO_POSTGRES, PG_URL, Server, fresh_database, prepare
 from support import EXPERIMENT, Keys, rows_csv
 from writers import CSV, PLAN, activate, approved_versions, audit_entries, burst, small_model
 
-from service.demo.postlaunch import post_launch_csv
-from service.store.db import Database
-from service.usecases import live
+from apportion.demo.postlaunch import post_launch_csv
+from apportion.store.db import Database
+from apportion.usecases import live
 
 pytestmark = pytest.mark.skipif(not PG_URL, reason=NO_POSTGRES)
 

@@ -1,4 +1,4 @@
-"""Golden vectors for the portable evaluators (service/lookup.py, js/apportion-lookup.mjs).
+"""Golden vectors for the portable evaluators (apportion/lookup.py, js/apportion-lookup.mjs).
 
 Each file tests/golden/<name>.json holds a compiled plan document made by the server
 (`compile_plan` + `portable.compiled_document`, what `GET /v1/plans/{plan}/compiled` returns),
@@ -108,9 +108,9 @@ def _plans() -> list[tuple[str, Any, str]]:
     """(name, CompiledPlan, what it covers)."""
     from serving.serving_helpers import FEATURES, hand_partition
 
+    from apportion.serving.index import compile_plan
+    from apportion.stats.partition import Partition
     from bench.serve_inprocess import random_partition
-    from service.serving.index import compile_plan
-    from service.stats.partition import Partition
 
     rng = np.random.default_rng(20261203)
     out = []
@@ -179,7 +179,7 @@ _ERRORS = [
 
 
 def write() -> None:
-    from service.serving.portable import compiled_document
+    from apportion.serving.portable import compiled_document
 
     GOLDEN.mkdir(parents=True, exist_ok=True)
     for k, (name, cp, about) in enumerate(_plans()):

@@ -6,8 +6,8 @@ from typing import Any
 
 import numpy as np
 
-from service.stats.partition import Partition
-from service.stats.table import FeatureSpec
+from apportion.stats.partition import Partition
+from apportion.stats.table import FeatureSpec
 
 LEVELS = ("north", "south", "east", "west", "centre")
 FEATURES = (

@@ -18,9 +18,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from service.errors import InvalidInput
-from service.serving.hashing import hash_state, uniforms_from_state
-from service.serving.index import new_salt, unit_uniform
+from apportion.errors import InvalidInput
+from apportion.serving.hashing import hash_state, uniforms_from_state
+from apportion.serving.index import new_salt, unit_uniform
 
 N = 200_000
 ROOT = Path(__file__).resolve().parents[2]
@@ -94,7 +94,7 @@ def test_dependence_would_be_detected():
 _CHILD = """
 import sys, json
 sys.path.insert(0, {root!r})
-from service.serving.index import unit_uniform
+from apportion.serving.index import unit_uniform
 print(json.dumps([unit_uniform("cross-proc", f"m{{i}}", p) for i in range(50) for p in ("arm", "holdout")]))
 """
 

@@ -21,10 +21,10 @@ from serving.serving_helpers import (
     route_features,
 )
 
-from service.errors import InvalidInput
-from service.serving.index import Assignment, compile_plan
-from service.stats.partition import Partition
-from service.stats.table import FeatureSpec
+from apportion.errors import InvalidInput
+from apportion.serving.index import Assignment, compile_plan
+from apportion.stats.partition import Partition
+from apportion.stats.table import FeatureSpec
 
 ROOT = Path(__file__).resolve().parents[2]
 ARMS = ("control", "short", "long")
@@ -83,7 +83,9 @@ def test_compiled_walk_equals_partition_route(seed):
     p = random_partition(rng, depth=6 + seed % 3, n_cohorts=7)
     cp = _plan(p, rng.dirichlet(np.ones(3), size=7))
     ids, rows = _members(rng, 3000)
-    ref, _ = p.route(coded(rows), route_features())  # the reference walk (service.stats.partition)
+    ref, _ = p.route(
+        coded(rows), route_features()
+    )  # the reference walk (apportion.stats.partition)
     single = [cp.assign(i, r) for i, r in zip(ids, rows, strict=True)]
     batch = cp.assign_batch(ids, rows)
     np.testing.assert_array_equal([a.cohort for a in single], ref)
@@ -248,7 +250,7 @@ import sys, json
 sys.path.insert(0, {root!r}); sys.path.insert(0, {here!r})
 import numpy as np
 from serving.serving_helpers import hand_partition
-from service.serving.index import compile_plan
+from apportion.serving.index import compile_plan
 cp = compile_plan(plan="lesson-length", version=1, partition=hand_partition(),
                   allocation=np.array({alloc}), arm_keys={arms!r}, holdout_share=0.1,
                   holdout_arm="control", salt="test-salt")
@@ -429,7 +431,7 @@ def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path(
     at a threshold, one double below it, at the infinities, NaN and an int beyond 2**53 it must
     send members where the single path (x < threshold goes left) sends them, with the (node,
     code) table and with the comparison walk that large trees use instead."""
-    from service.serving import index
+    from apportion.serving import index
 
     if not table:
         monkeypatch.setattr(index, "TABLE_CELLS", 0)

@@ -1,4 +1,4 @@
-"""The portable compiled plan and the dependency-free Python evaluator (service/lookup.py).
+"""The portable compiled plan and the dependency-free Python evaluator (apportion/lookup.py).
 
 Golden files (tests/golden/*.json, made by tests/serving/golden.py from the server's compiler)
 hold a document, explicit vectors and the SHA-256 of the server's answers to 100,000 generated
@@ -17,9 +17,9 @@ from pathlib import Path
 import pytest
 from serving import golden
 
-from service.lookup import LookupError as PortableError
-from service.lookup import Plan
-from service.serving.portable import compiled_document
+from apportion.lookup import LookupError as PortableError
+from apportion.lookup import Plan
+from apportion.serving.portable import compiled_document
 
 FILES = sorted(golden.GOLDEN.glob("*.json"))
 
@@ -91,14 +91,14 @@ def test_a_changed_document_is_caught() -> None:
 
 def test_lookup_module_needs_only_the_standard_library() -> None:
     """Loaded from its file alone in an isolated interpreter: no numpy, no service package."""
-    src = Path(__file__).resolve().parents[2] / "service" / "lookup.py"
+    src = Path(__file__).resolve().parents[2] / "apportion" / "lookup.py"
     code = (
         "import importlib.util, sys\n"
         f"spec = importlib.util.spec_from_file_location('lookup', {str(src)!r})\n"
         "m = importlib.util.module_from_spec(spec); sys.modules['lookup'] = m\n"
         "spec.loader.exec_module(m)\n"
         "bad = sorted(k for k in sys.modules if k.split('.')[0] in "
-        "('numpy', 'service', 'pydantic', 'fastapi', 'scipy'))\n"
+        "('numpy', 'apportion', 'pydantic', 'fastapi', 'scipy'))\n"
         "print(bad)\n"
     )
     out = subprocess.run(
@@ -123,7 +123,7 @@ def test_digest_bounds_decide_exactly_as_the_float_draw() -> None:
     import math
     import random
 
-    from service.lookup import digest_bound
+    from apportion.lookup import digest_bound
 
     rng = random.Random(11)
     digests = [rng.getrandbits(64).to_bytes(8, "big") for _ in range(2000)]

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from serving.serving_helpers import hand_partition
 
-from service.serving.index import CompiledPlan, compile_plan
-from service.serving.registry import PlanRegistry, RevisionPoller
+from apportion.serving.index import CompiledPlan, compile_plan
+from apportion.serving.registry import PlanRegistry, RevisionPoller
 
 ALLOC = np.array([[0.2, 0.5, 0.3], [0.5, 0.25, 0.25], [0.6, 0.4, 0.0]])
 

@@ -13,8 +13,8 @@ import pytest
 from sklearn.model_selection import GridSearchCV
 from sklearn.tree import DecisionTreeRegressor
 
-from service.stats.models import fit_cohort_model
-from service.stats.table import FeatureSpec, MetricSpec, UnitTable
+from apportion.stats.models import fit_cohort_model
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
 
 MIN_PER_ARM = 25
 N_TRAIN = 4000  # halves of 2000; AI 2016 used 500-1000 per half [M]: at that size the variance

@@ -1,4 +1,4 @@
-"""Decision-focused partitions (service/stats/decision.py): the price LP against re-solves,
+"""Decision-focused partitions (apportion/stats/decision.py): the price LP against re-solves,
 the ratio linearization against the exact ratio, and a design where the decision changes along
 one feature while the effects also vary along another."""
 
@@ -7,9 +7,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.stats.decision import cell_means, lagrange_lp, targets
-from service.stats.models import fit_cohort_model
-from service.stats.table import FeatureSpec, MetricSpec, UnitTable
+from apportion.stats.decision import cell_means, lagrange_lp, targets
+from apportion.stats.models import fit_cohort_model
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
 
 
 def test_prices_are_the_slope_of_the_optimum():
@@ -100,7 +100,9 @@ def test_price_z_prices_the_guardrail_at_the_threshold_the_optimizer_will_hold()
     guard = [{"metric": "harm", "threshold": 0.01}]
     r = {}
     for z in (0.0, 2.0):
-        fit = fit_cohort_model(table, "policy_tree", {"guardrails": guard, "max_depth": 1, "price_z": z})
+        fit = fit_cohort_model(
+            table, "policy_tree", {"guardrails": guard, "max_depth": 1, "price_z": z}
+        )
         r[z] = fit.diagnostics["rounds"][0]
     assert r[0.0]["thresholds_priced"]["harm"] == pytest.approx(0.01)
     # harm noise sd 0.3 on ~6,700 estimation rows per arm: the plan's sd is a few thousandths
@@ -119,7 +121,9 @@ def test_member_models_distil_into_the_decision_partition(method):
     fit = fit_cohort_model(table, method, params)
     assert fit.partition.used_features() == ["x1"]
     assert fit.partition.threshold[0] == pytest.approx(0.5, abs=0.05)
-    assert fit.diagnostics["outcome_model"]["kind"] == ("boosted" if method == "two_model" else "forest")
+    assert fit.diagnostics["outcome_model"]["kind"] == (
+        "boosted" if method == "two_model" else "forest"
+    )
 
 
 def test_cell_means_are_plain_means():

@@ -1,4 +1,4 @@
-"""Doubly robust scores (service/stats/dr.py) against statsmodels, a hand-checked worked example and
+"""Doubly robust scores (apportion/stats/dr.py) against statsmodels, a hand-checked worked example and
 the Horvitz-Thompson estimator."""
 
 from __future__ import annotations
@@ -6,8 +6,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.errors import InvalidInput
-from service.stats.dr import dr_scores, folds_by_arm, policy_value
+from apportion.errors import InvalidInput
+from apportion.stats.dr import dr_scores, folds_by_arm, policy_value
 
 
 def test_matches_statsmodels_aipw_with_regression_outcome_models():

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from service.stats.estimates import cell_moments, metric_estimates, pool_cohorts
-from service.stats.table import MetricSpec
+from apportion.stats.estimates import cell_moments, metric_estimates, pool_cohorts
+from apportion.stats.table import MetricSpec
 
 METRICS = (
     MetricSpec("spend", "mean"),

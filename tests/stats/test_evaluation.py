@@ -13,9 +13,9 @@ import json
 import numpy as np
 import pytest
 
-from service.errors import InvalidInput
-from service.stats.evaluation import evaluate_policy
-from service.stats.table import MetricSpec
+from apportion.errors import InvalidInput
+from apportion.stats.evaluation import evaluate_policy
+from apportion.stats.table import MetricSpec
 
 P = np.array([0.5, 0.3, 0.2])  # cohort shares in the population
 E = np.array([0.5, 0.25, 0.25])  # design shares

@@ -1,4 +1,4 @@
-"""Member-level outcome models (service/stats/member.py): the two-model fits against
+"""Member-level outcome models (apportion/stats/member.py): the two-model fits against
 scikit-learn itself, and the forest and the two-model effects on the simulation design of Wager
 and Athey (2018) against a single honest tree and a scikit-learn random-forest T-learner."""
 
@@ -7,10 +7,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.stats.binning import bin_features
-from service.stats.dr import folds_by_arm
-from service.stats.honest import criterion_outcomes
-from service.stats.member import (
+from apportion.stats.binning import bin_features
+from apportion.stats.dr import folds_by_arm
+from apportion.stats.honest import criterion_outcomes
+from apportion.stats.member import (
     BoostSettings,
     ForestSettings,
     arm_mean_outcomes,
@@ -18,8 +18,8 @@ from service.stats.member import (
     feature_matrix,
     fit_forest,
 )
-from service.stats.models import fit_cohort_model
-from service.stats.table import FeatureSpec, MetricSpec, UnitTable
+from apportion.stats.models import fit_cohort_model
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
 
 
 def _wager_athey(n: int, d: int, seed: int) -> tuple[UnitTable, np.ndarray]:

@@ -6,9 +6,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.demo.scenario import simulate
-from service.errors import InvalidInput
-from service.stats.models import METHODS, fit_cohort_model, honest_split, validate_params
+from apportion.demo.scenario import simulate
+from apportion.errors import InvalidInput
+from apportion.stats.models import METHODS, fit_cohort_model, honest_split, validate_params
 
 FAST = {
     "global": {},
@@ -169,10 +169,16 @@ def test_params_are_resolved_and_a_refit_repeats(table, fits):
         ("policy_tree", {"guardrails": [{"metric": "nope", "threshold": 0}]}, "guardrails"),
         ("policy_tree", {"guardrails": [{"metric": "cancelled", "threshold": -0.1}]}, "guardrails"),
         ("policy_tree", {"guardrails": [{"metric": "active_days", "threshold": 0}]}, "guardrails"),
-        ("policy_tree", {"guardrails": [{"metric": "cancelled", "threshold": 0, "confidence": 0.9}]},
-         "guardrails"),  # fmt: skip
-        ("policy_tree", {"guardrails": [{"metric": "cancelled", "threshold": 0, "unit": "pct"}]},
-         "guardrails"),  # fmt: skip
+        (
+            "policy_tree",
+            {"guardrails": [{"metric": "cancelled", "threshold": 0, "confidence": 0.9}]},
+            "guardrails",
+        ),  # fmt: skip
+        (
+            "policy_tree",
+            {"guardrails": [{"metric": "cancelled", "threshold": 0, "unit": "pct"}]},
+            "guardrails",
+        ),  # fmt: skip
         ("policy_tree", {"outcome_model": "oracle"}, "outcome_model"),
         ("two_model", {"learning_rate": 0}, "learning_rate"),
         ("forest", {"n_trees": 0}, "n_trees"),
@@ -187,7 +193,7 @@ def test_bad_parameters_name_the_parameter(table, method, params, name):
 
 
 def test_validate_params_accepts_specs():
-    from service.demo.scenario import FEATURES, METRICS
+    from apportion.demo.scenario import FEATURES, METRICS
 
     p = validate_params("segments", {"features": ["tenure_days", "level"]}, (FEATURES, METRICS))
     assert p["bins"] == {"tenure_days": 4} and p["min_units_per_arm"] == 50

@@ -1,4 +1,4 @@
-"""The policy tree grower (service/stats/policytree.py) against exhaustive search on small cases."""
+"""The policy tree grower (apportion/stats/policytree.py) against exhaustive search on small cases."""
 
 from __future__ import annotations
 
@@ -7,9 +7,9 @@ import itertools
 import numpy as np
 import pytest
 
-from service.stats.binning import FeatureBins
-from service.stats.policytree import grow_policy_tree, leaf_values
-from service.stats.table import FeatureSpec
+from apportion.stats.binning import FeatureBins
+from apportion.stats.policytree import grow_policy_tree, leaf_values
+from apportion.stats.table import FeatureSpec
 
 
 def _numeric_bins(codes: np.ndarray) -> FeatureBins:
@@ -36,7 +36,9 @@ def _case(seed: int, n: int = 300, n_feat: int = 3, levels: int = 6, J: int = 3)
 
 
 def _admissible(mask_s, mask_e, arm_s, arm_e, J, m):
-    return all((arm_s[mask_s] == j).sum() >= m and (arm_e[mask_e] == j).sum() >= m for j in range(J))
+    return all(
+        (arm_s[mask_s] == j).sum() >= m and (arm_e[mask_e] == j).sum() >= m for j in range(J)
+    )
 
 
 def _best_split(codes_s, codes_e, r, arm_s, arm_e, J, m):

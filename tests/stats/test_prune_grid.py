@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import math
 
-from service.stats.prune import penalty_grid
+from apportion.stats.prune import penalty_grid
 
 
 def test_a_tree_without_splits_has_only_the_zero_penalty() -> None:

@@ -13,10 +13,10 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from service.errors import InvalidInput
-from service.stats import sequential as sq
-from service.stats.estimates import cell_moments
-from service.stats.table import MetricSpec
+from apportion.errors import InvalidInput
+from apportion.stats import sequential as sq
+from apportion.stats.estimates import cell_moments
+from apportion.stats.table import MetricSpec
 
 ALPHA = 0.05
 

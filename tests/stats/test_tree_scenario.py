@@ -36,8 +36,8 @@ from __future__ import annotations
 
 import pytest
 
-from service.demo.scenario import simulate
-from service.stats.models import fit_cohort_model
+from apportion.demo.scenario import simulate
+from apportion.stats.models import fit_cohort_model
 
 DECOYS = {"region", "noise_1", "noise_2", "noise_3"}
 

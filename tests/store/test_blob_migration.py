@@ -6,11 +6,11 @@ from __future__ import annotations
 import numpy as np
 import sqlalchemy as sa
 
-from service.ingest.codec import encode_table
-from service.stats.table import FeatureSpec, MetricSpec, UnitTable
-from service.store.db import Database, make_engine
-from service.store.migrate import current_revision, head_revision, upgrade
-from service.usecases.experiments import load_readout_table, readout_data
+from apportion.ingest.codec import encode_table
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
+from apportion.store.db import Database, make_engine
+from apportion.store.migrate import current_revision, head_revision, upgrade
+from apportion.usecases.experiments import load_readout_table, readout_data
 
 
 def _table(n: int = 300, seed: int = 3) -> UnitTable:
@@ -95,7 +95,7 @@ def test_readout_and_blob_survive_the_move_out_of_the_database(db_url: str, tmp_
             )
         assert kinds["b" * 64] == "object" and "a" * 64 not in kinds  # readout bytes replaced
         assert kinds[located.sha256] == "dataset"
-        from service.store import blobs as blob_repo
+        from apportion.store import blobs as blob_repo
 
         with db.read() as s:
             assert blob_repo.get_blob(session=s, sha256="b" * 64) == other

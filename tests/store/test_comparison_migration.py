@@ -6,8 +6,8 @@ from __future__ import annotations
 from alembic import command
 from sqlalchemy import inspect
 
-from service.store.db import make_engine
-from service.store.migrate import alembic_config, current_revision, upgrade
+from apportion.store.db import make_engine
+from apportion.store.migrate import alembic_config, current_revision, upgrade
 
 
 def _downgrade(engine, revision: str) -> None:  # type: ignore[no-untyped-def]

@@ -9,11 +9,11 @@ import time
 import pytest
 from support import make_settings
 
-from service.app import build_services
-from service.errors import JobLost
-from service.store import jobs as repo
-from service.store.migrate import upgrade
-from service.usecases import jobs as uc
+from apportion.app import build_services
+from apportion.errors import JobLost
+from apportion.store import jobs as repo
+from apportion.store.migrate import upgrade
+from apportion.usecases import jobs as uc
 
 
 def _services(db_url: str):  # type: ignore[no-untyped-def]
@@ -86,8 +86,8 @@ def test_an_interrupted_fit_that_runs_out_of_attempts_leaves_its_model_failed(db
     (before, the model stayed `running` forever)."""
     from support import EXPERIMENT, rows_csv
 
-    from service.store.audit import Actor
-    from service.usecases import experiments, models
+    from apportion.store.audit import Actor
+    from apportion.usecases import experiments, models
 
     services = _services(db_url)
     analyst = Actor("t-analyst", "analyst")

@@ -6,9 +6,9 @@ from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
 from fastapi.testclient import TestClient
 
-from service.store.db import make_engine
-from service.store.migrate import current_revision, head_revision, upgrade
-from service.store.tables import Base
+from apportion.store.db import make_engine
+from apportion.store.migrate import current_revision, head_revision, upgrade
+from apportion.store.tables import Base
 
 
 def test_upgrade_head_then_autogenerate_finds_no_difference(db_url: str) -> None:
@@ -25,7 +25,7 @@ def test_upgrade_head_then_autogenerate_finds_no_difference(db_url: str) -> None
 def test_readyz_is_503_while_schema_is_behind(db_url: str) -> None:
     from support import make_settings
 
-    from service.app import create_app
+    from apportion.app import create_app
 
     app = create_app(make_settings(db_url, migrate_on_start=False))
     with TestClient(app) as c:

@@ -48,7 +48,7 @@ def live_server(db_url: str) -> Iterator[Live]:
     import uvicorn
     from support import make_keys, make_settings
 
-    from service.app import create_app
+    from apportion.app import create_app
 
     app = create_app(make_settings(db_url))
     sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)

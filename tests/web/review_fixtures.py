@@ -1,4 +1,4 @@
-"""A hand-written review-page payload (the shape of service.usecases.review.review_page) for
+"""A hand-written review-page payload (the shape of apportion.usecases.review.review_page) for
 rendering tests that need no database. Numbers are invented for the page, not computed."""
 
 from __future__ import annotations
@@ -55,7 +55,7 @@ METRICS = {
 }
 
 REPORT: dict[str, Any] = {
-    # the layout of service/optimize/report.py; every number in the guardrail's threshold unit
+    # the layout of apportion/optimize/report.py; every number in the guardrail's threshold unit
     "status": "complete",
     "metrics": [
         {

@@ -12,7 +12,7 @@ import pytest
 from support import draft_plan
 from web.live import CHROMIUM, SKIP_REASON, Live, build_plan, launch_chromium, live_server
 
-from service.demo.scenario import GUARDRAILS
+from apportion.demo.scenario import GUARDRAILS
 
 pytestmark = [pytest.mark.browser, pytest.mark.skipif(not CHROMIUM.exists(), reason=SKIP_REASON)]
 
@@ -135,7 +135,7 @@ def test_approving_then_activating_through_the_page_changes_the_versions_state(
 
 
 def test_a_refused_action_shows_the_services_reason(page: Any, live: Live) -> None:
-    from service.demo.scenario import SUCCESS
+    from apportion.demo.scenario import SUCCESS
 
     body = {
         "model_id": live.model_id,

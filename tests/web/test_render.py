@@ -10,7 +10,7 @@ import xml.etree.ElementTree as ET
 import pytest
 from web.review_fixtures import ARMS, COHORTS, GUARDRAILS, page
 
-from service.web import charts, pages
+from apportion.web import charts, pages
 
 SVG = "{http://www.w3.org/2000/svg}"
 APPROVER = {"name": "t-approver", "role": "approver"}

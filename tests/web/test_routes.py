@@ -129,7 +129,7 @@ def test_only_known_static_files_are_served(client: TestClient) -> None:
 def test_live_version_page_draws_the_guardrail_watch(
     client: TestClient, keys, drafted: dict
 ) -> None:  # type: ignore[no-untyped-def]
-    from service.demo.postlaunch import post_launch_csv
+    from apportion.demo.postlaunch import post_launch_csv
 
     h = keys.h(keys.approver)
     assert (

@@ -1,0 +1,5 @@
+import sys
+
+from apportion.cli.main import main
+
+sys.exit(main())

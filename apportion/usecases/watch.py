@@ -1,0 +1,430 @@
+"""The guardrail watch: post-launch rows of a live plan version, plan-exposed members against the
+holdout, with always-valid confidence sequences (apportion/stats/sequential.py), and automatic
+rollback on a confirmed breach, committed with its audit entry (actor: the watch itself).
+
+Each upload is validated whole; rows accumulate per plan version across uploads, and a member seen
+twice counts once (the later row wins). Every guardrail's interval uses alpha = (1 - confidence) / K
+over the K guardrails (Bonferroni), so the statuses hold jointly under continuous monitoring."""
+
+from __future__ import annotations
+
+import hashlib
+from typing import Any
+
+import numpy as np
+
+from apportion.errors import ApportionError, InvalidInput, NotFound
+from apportion.ingest.codec import decode_table, encode_table
+from apportion.ingest.parse import parse_units
+from apportion.observability import WATCH_STATUS
+from apportion.stats.estimates import cell_moments, metric_estimates
+from apportion.stats.sequential import absolute_threshold, difference_interval, guardrail_status
+from apportion.stats.table import UnitTable
+from apportion.store import audit, blobs
+from apportion.store import experiments as exp_repo
+from apportion.store import plans as plan_repo
+from apportion.store import watch as repo
+from apportion.store.audit import Actor
+from apportion.usecases import live
+from apportion.usecases.context import Services
+from apportion.usecases.experiments import specs_of
+from apportion.usecases.plans import rollback_in, table_columns
+
+WATCH_ACTOR = Actor("guardrail-watch", "watch")
+DEFAULT_HORIZON = (
+    100_000  # expected units per group over the watch; tunes where the boundary is tightest
+)
+
+
+def _context(services: Services, plan: str, version: int | None) -> dict[str, Any]:
+    with services.db.read() as s:
+        ptr = plan_repo.pointer(session=s, plan=plan)
+        if ptr is None:
+            raise NotFound(f"no plan '{plan}'")
+        v = version if version is not None else ptr.active_version
+        if v is None:
+            raise NotFound(f"plan '{plan}' has no live version to watch")
+        row = plan_repo.get_version(session=s, plan=plan, version=v)
+        exp = exp_repo.get_experiment(session=s, key=row.spec["experiment"])
+        return {
+            "version": row,
+            "specs": specs_of(exp.declaration),
+            "pointer_version": ptr.active_version,
+            "auto_rollback": dict(ptr.auto_rollback or {}),
+        }
+
+
+def _merge(tables: list[tuple[UnitTable, np.ndarray]]) -> tuple[UnitTable, np.ndarray, int]:
+    """Concatenate uploads; keep the last row of each member. Returns (table, holdout, replaced)."""
+    first = tables[0][0]
+    ids = np.concatenate([t.unit_ids for t, _ in tables])
+    order = np.arange(ids.shape[0])
+    # the last occurrence of each id wins: unique on the reversed ids gives last positions
+    _, last_rev = np.unique(ids[::-1], return_index=True)
+    keep = np.sort(order.shape[0] - 1 - last_rev)
+    replaced = int(ids.shape[0] - keep.shape[0])
+    feature_values = {
+        k: np.concatenate([t.feature_values[k] for t, _ in tables])[keep]
+        for k in first.feature_values
+    }
+    columns = {k: np.concatenate([t.columns[k] for t, _ in tables])[keep] for k in first.columns}
+    holdout = np.concatenate([h for _, h in tables])[keep]
+    merged = UnitTable(
+        unit_ids=ids[keep],
+        arm=np.zeros(keep.shape[0], dtype=np.int64),
+        arm_keys=first.arm_keys,
+        design_shares=first.design_shares,
+        features=first.features,
+        feature_values=feature_values,
+        metrics=first.metrics,
+        columns=columns,
+    )
+    return merged, holdout, replaced
+
+
+def _harmonize_levels(tables: list[UnitTable]) -> list[UnitTable]:
+    """Uploads discover categorical levels separately; re-code every upload to one level list."""
+    if len(tables) == 1:
+        return tables
+    out = []
+    union = {
+        f.key: sorted({lv for t in tables for lv in t.feature(f.key).levels})
+        for f in tables[0].features
+        if f.kind == "categorical"
+    }
+    for t in tables:
+        fv = dict(t.feature_values)
+        feats = []
+        for f in t.features:
+            if f.kind == "categorical":
+                levels = union[f.key]
+                remap = np.array([levels.index(lv) for lv in f.levels] + [-1], dtype=np.int32)
+                codes = fv[f.key]
+                fv[f.key] = remap[np.where(codes < 0, len(f.levels), codes)]
+                feats.append(type(f)(f.key, f.kind, tuple(levels)))
+            else:
+                feats.append(f)
+        out.append(
+            UnitTable(
+                t.unit_ids,
+                t.arm,
+                t.arm_keys,
+                t.design_shares,
+                tuple(feats),
+                fv,
+                t.metrics,
+                t.columns,
+            )
+        )
+    return out
+
+
+def evaluate(
+    table: UnitTable, holdout: np.ndarray, spec: dict[str, Any], *, horizon: int
+) -> list[dict[str, Any]]:
+    """Per metric (success first, then guardrails): interval of plan - holdout, threshold and status."""
+    group = np.where(holdout, 0, 1)
+    moments = cell_moments(
+        np.zeros(table.n, dtype=np.int64),
+        1,
+        group,
+        2,
+        table.component_matrix(),
+        table.component_names(),
+    )
+    base = metric_estimates(moments, table.metrics)
+    guardrails = spec["guardrails"]
+    k = max(1, len(guardrails))
+    out: list[dict[str, Any]] = []
+    rows = [(spec["success_metric"], None)] + [(g["metric"], g) for g in guardrails]
+    for key, g in rows:
+        metric = table.metric(key)
+        conf = float(g["confidence"]) if g else 0.95
+        alpha = (1 - conf) / k if g else 1 - conf
+        iv = difference_interval(moments, metric, alpha=alpha, horizon=horizon)
+        m_index = [m.key for m in table.metrics].index(key)
+        holdout_value = float(base.mean[0, 0, m_index])
+        item: dict[str, Any] = {
+            "metric": key,
+            "role": "guardrail" if g else "success",
+            "estimate": _f(iv.estimate),
+            "lower": _f(iv.lower),
+            "upper": _f(iv.upper),
+            "n_plan": iv.n_plan,
+            "n_holdout": iv.n_holdout,
+            "alpha": alpha,
+            "holdout_value": _f(holdout_value),
+            "status": None,
+            "threshold": None,
+        }
+        if g:
+            t_abs = absolute_threshold(
+                float(g["threshold"]), g.get("unit", "absolute"), holdout_value
+            )
+            item["threshold"] = t_abs
+            item["status"] = (
+                guardrail_status(iv, t_abs, metric.direction)
+                if np.isfinite(iv.lower)
+                else "inconclusive"
+            )
+        out.append(item)
+    return out
+
+
+def _f(x: float) -> float | None:
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+def upload(
+    services: Services,
+    *,
+    plan: str,
+    body: bytes,
+    content_type: str,
+    actor: Actor,
+    version: int | None = None,
+) -> dict[str, Any]:
+    ctx = _context(services, plan, version)
+    row, specs = ctx["version"], ctx["specs"]
+    parsed = parse_units(
+        body,
+        content_type,
+        arms=specs.arm_keys,
+        control=specs.arm_keys[0],
+        design_shares=list(specs.design_shares),
+        metrics=specs.metrics,
+        features=specs.features,
+        unit_column="member_id",
+        arm_column=None,
+        flag_columns=["holdout"],
+    )
+    new_table, new_holdout, excluded, disagree = _evidence_rows(
+        services, row, parsed.table, parsed.flags["holdout"]
+    )
+
+    encoded = encode_table(new_table, {"holdout": new_holdout})
+    with services.db.write() as s:
+        # The plan's lock (level 2 of the lock order in store/db.py) comes first: under it the
+        # earlier uploads are read, the upload number is taken and the live pointer is checked, so
+        # concurrent uploads each see all the earlier ones and an activation waits, never deadlocks.
+        ptr = plan_repo.pointer(session=s, plan=plan, lock=True)
+        if ptr is None:
+            raise NotFound(f"no plan '{plan}'")
+        ar = dict(ptr.auto_rollback or {})
+        previous = [
+            decode_table(blobs.get_blob(session=s, sha256=u.blob_sha256))
+            for u in repo.uploads(session=s, plan=plan, version=row.version)
+        ]
+        tables = _harmonize_levels([t for t, _ in previous] + [new_table])
+        holdouts = [f["holdout"] for _, f in previous] + [new_holdout]
+        merged, holdout, replaced = _merge(list(zip(tables, holdouts, strict=True)))
+        horizon = int(ar.get("horizon") or DEFAULT_HORIZON)
+        metrics = evaluate(merged, holdout, row.spec, horizon=horizon)
+        breached = [m for m in metrics if m["status"] == "breached"]
+        result: dict[str, Any] = {
+            "rows": int(parsed.n_rows),
+            "rows_excluded": excluded,
+            "members": int(merged.n),
+            "replaced": replaced,
+            "holdout_flag_disagreement": disagree,
+            "metrics": metrics,
+            "rolled_back": None,
+        }
+        sha = blobs.put_blob(session=s, data=encoded)
+        up = repo.add_upload(
+            session=s,
+            plan=plan,
+            version=row.version,
+            blob_sha256=sha,
+            n_rows=int(new_table.n),
+            result=result,
+            created_by=actor.name,
+        )
+        audit.append(
+            s,
+            actor=actor,
+            action="watch.upload",
+            entity="plan_version",
+            entity_id=f"{plan}/{row.version}",
+            payload={
+                "upload": up.seq,
+                "rows": int(new_table.n),
+                "replaced": replaced,
+                "blob": sha,
+                "content_hash": hashlib.sha256(body).hexdigest(),
+                "statuses": {m["metric"]: m["status"] for m in metrics if m["role"] == "guardrail"},
+            },
+        )
+        min_units = int(ar.get("min_units_per_group", 1000))
+        enough = [m for m in breached if min(m["n_plan"], m["n_holdout"]) >= min_units]
+        if ar.get("enabled") and enough and ptr.active_version == row.version:
+            worst = enough[0]
+            evidence = {
+                "guardrail": worst["metric"],
+                "interval": [worst["lower"], worst["upper"]],
+                "estimate": worst["estimate"],
+                "threshold": worst["threshold"],
+                "units": {"plan": worst["n_plan"], "holdout": worst["n_holdout"]},
+                "alpha": worst["alpha"],
+                "upload": up.seq,
+                "uploaded_by": actor.identity,  # the owner: one person may hold several keys
+                "uploaded_with_key": actor.name,
+                "breached": [m["metric"] for m in enough],
+            }
+            try:
+                switched = rollback_in(
+                    s,
+                    plan=plan,
+                    reason=f"guardrail '{worst['metric']}' breached: the whole interval "
+                    f"[{worst['lower']:.4g}, {worst['upper']:.4g}] is past the threshold {worst['threshold']:.4g}",
+                    to_version=None,
+                    actor=WATCH_ACTOR,
+                    evidence=evidence,
+                )
+                result["rolled_back"] = {"to_version": switched["to_version"], "evidence": evidence}
+            except ApportionError as exc:  # no earlier version: report it, keep the upload
+                result["rolled_back"] = {"error": exc.detail, "evidence": evidence}
+            up.result = dict(result)
+    if result["rolled_back"] and "to_version" in result["rolled_back"]:
+        live.refresh_plan(services, plan)
+    for m in metrics:
+        if m["role"] == "guardrail":
+            WATCH_STATUS.labels(plan, m["metric"]).set(1 if m["status"] == "breached" else 0)
+    return {"plan": plan, "version": row.version, "upload": up.seq, **result}
+
+
+def _evidence_rows(
+    services: Services, row: Any, table: UnitTable, stated: np.ndarray
+) -> tuple[UnitTable, np.ndarray, int, float]:
+    """(rows that count as evidence, their holdout flag, rows left out, disagreement share).
+
+    Each member's group is recomputed by the plan's own lookup. A stated holdout flag that
+    disagrees means the caller is not using the lookup (or the rows are invented): such a row
+    says nothing about either group, so it is left out, and an upload where more than
+    APPORTION_WATCH_MAX_FLAG_DISAGREEMENT of the rows disagree is refused whole."""
+    compiled = live.compile_version(row, _partition(services, row.model_id), revision=0)
+    assigned = compiled.assign_columns(list(table.unit_ids), table_columns(table))
+    recomputed = np.fromiter((a.holdout for a in assigned), dtype=bool, count=table.n)
+    off = recomputed != np.asarray(stated, dtype=bool)
+    share = float(off.mean()) if table.n else 0.0
+    limit = services.settings.watch_max_flag_disagreement
+    if share > limit:
+        rows = (np.flatnonzero(off)[:10] + 1).tolist()
+        raise InvalidInput(
+            f"column 'holdout' disagrees with the plan's lookup in {int(off.sum())} of {table.n} "
+            f"rows ({share:.2%}; at most {limit:.2%} may, APPORTION_WATCH_MAX_FLAG_DISAGREEMENT): "
+            f"send the flag the lookup returned; first rows {rows}",
+            errors=[
+                {
+                    "column": "holdout",
+                    "problem": "holdout flag disagrees with the plan's lookup",
+                    "rows": rows,
+                    "count": int(off.sum()),
+                    "share": share,
+                    "allowed_share": limit,
+                }
+            ],
+        )
+    if not off.any():
+        return table, recomputed, 0, share
+    keep = np.flatnonzero(~off)
+    if keep.size == 0:
+        raise InvalidInput("no row's holdout flag agrees with the plan's lookup", errors=[
+            {"column": "holdout", "problem": "no row agrees with the plan's lookup"}
+        ])  # fmt: skip
+    return table.take(keep), recomputed[keep], int(off.sum()), share
+
+
+def _partition(services: Services, model_id: int) -> Any:
+    from apportion.stats.partition import Partition
+    from apportion.store import models as model_repo
+
+    with services.db.read() as s:
+        return Partition.from_dict(
+            model_repo.get_model(session=s, model_id=model_id).result["partition"]
+        )
+
+
+def get_watch(services: Services, *, plan: str, version: int | None = None) -> dict[str, Any]:
+    with services.db.read() as s:
+        ptr = plan_repo.pointer(session=s, plan=plan)
+        if ptr is None:
+            raise NotFound(f"no plan '{plan}'")
+        v = (
+            version
+            if version is not None
+            else (repo.latest_version_watched(session=s, plan=plan) or ptr.active_version)
+        )
+        ups = repo.uploads(session=s, plan=plan, version=v) if v is not None else []
+        history = [(u.seq, u.created_at, u.result) for u in ups]
+        auto = dict(ptr.auto_rollback or {})
+        live_version = ptr.active_version
+    metrics: dict[str, dict[str, Any]] = {}
+    for seq, at, res in history:
+        for m in res["metrics"]:
+            entry = metrics.setdefault(
+                m["metric"], {"metric": m["metric"], "role": m["role"], "history": []}
+            )
+            entry.update(status=m["status"], threshold=m["threshold"])
+            entry["history"].append(
+                {
+                    "upload": seq,
+                    "at": at,
+                    "n_plan": m["n_plan"],
+                    "n_holdout": m["n_holdout"],
+                    "estimate": m["estimate"],
+                    "lower": m["lower"],
+                    "upper": m["upper"],
+                }
+            )
+    last = history[-1][2] if history else None
+    return {
+        "plan": plan,
+        "version": v,
+        "live_version": live_version,
+        "auto_rollback": auto,
+        "uploads": len(history),
+        "members": last["members"] if last else 0,
+        "holdout_flag_disagreement": last["holdout_flag_disagreement"] if last else None,
+        "rolled_back": next(
+            (r["rolled_back"] for _, _, r in reversed(history) if r.get("rolled_back")), None
+        ),
+        "metrics": list(metrics.values()),
+    }
+
+
+def set_auto_rollback(
+    services: Services,
+    *,
+    plan: str,
+    enabled: bool,
+    min_units_per_group: int,
+    horizon: int | None,
+    actor: Actor,
+    reason: str,
+) -> dict[str, Any]:
+    if min_units_per_group < 1:
+        raise InvalidInput(
+            "min_units_per_group must be at least 1", errors=[{"field": "min_units_per_group"}]
+        )
+    with services.db.write() as s:
+        ptr = plan_repo.pointer(session=s, plan=plan, lock=True)
+        if ptr is None:
+            raise NotFound(f"no plan '{plan}'")
+        setting = {
+            "enabled": enabled,
+            "min_units_per_group": min_units_per_group,
+            "horizon": horizon or DEFAULT_HORIZON,
+        }
+        ptr.auto_rollback = setting
+        audit.append(
+            s,
+            actor=actor,
+            action="plan.auto_rollback",
+            entity="plan",
+            entity_id=plan,
+            payload=setting,
+            reason=reason,
+        )
+    return {"plan": plan, "auto_rollback": setting}

@@ -1,5 +1,0 @@
-"""The `apportion` command: server-side commands here, HTTP client commands in `client.py`."""
-
-from service.cli.main import main
-
-__all__ = ["main"]

@@ -1,5 +1,0 @@
-import sys
-
-from service.cli.main import main
-
-sys.exit(main())
