@@ -856,8 +856,14 @@ def render_comparison(c: dict[str, Any]) -> str:
     success = spec.get("success_metric")
     guards = [g["metric"] for g in spec.get("guardrails") or []]
     rows = []
+    failed = [r for r in c.get("table") or [] if r["status"] == "failed"]
     for r in c.get("table") or []:
         m = r["metrics"]
+        if r["status"] == "failed":  # left the comparison; its reason is printed below
+            rows.append(
+                ["-", r["candidate"], "failed", *["-"] * (len(guards) + 1), "-", r["seconds"]]
+            )
+            continue
         cells = [r["rank"], r["candidate"], r["status"],
                  f"{fmt_num(m[success]['lift'])} ± {m[success]['se']:.4f}"]  # fmt: skip
         cells += [f"{fmt_num(m[g]['lift'])} ± {m[g]['se']:.4f}" for g in guards]
@@ -868,7 +874,8 @@ def render_comparison(c: dict[str, Any]) -> str:
     rec = c.get("recommended")
     allowed = []
     for g in guards:  # the same allowance for every candidate (relative ones in metric units)
-        t = next((r["metrics"][g].get("threshold_absolute") for r in c.get("table") or []), None)
+        t = next((r["metrics"][g].get("threshold_absolute") for r in c.get("table") or []
+                  if r["metrics"]), None)  # fmt: skip
         if t is not None:
             allowed.append(f"{g} {'>=' if t < 0 else '<='} {fmt_num(t)}")
     tail = [
@@ -878,6 +885,7 @@ def render_comparison(c: dict[str, Any]) -> str:
         "confidence), unverified (estimate within the threshold, not yet with that confidence),",
         "refused (estimate beyond the threshold).",
         *([f"allowed lifts: {', '.join(allowed)}"] if allowed else []),
+        *[f"{r['candidate']} failed: {r['error']}" for r in failed],
         "",
         f"recommended: {rec or 'none'}",
         f"why: {c.get('reason')}",

@@ -253,37 +253,74 @@ def evaluate_candidates(
     steps, done = folds * (len(by_model) + len(candidates)), 0
     fit_seconds = dict.fromkeys(by_model, 0.0)
 
-    def tick() -> None:
+    def tick(steps_done: int = 1) -> None:
         nonlocal done
-        done += 1
+        done += steps_done
         if progress is not None:
             progress(done / steps)
 
+    failed: dict[str, str] = {}  # candidate -> why it left the comparison (a domain error)
     for f in range(folds):
         train, test = np.flatnonzero(fold != f), np.flatnonzero(fold == f)
         tr = table.take(train)
+        have_base = False
         for model, group in by_model.items():
+            live = [c for c in group if c.name not in failed]
+            if not live:  # the model failed in an earlier fold: its steps are skipped
+                tick(1 + len(group))
+                continue
             t0 = time.perf_counter()
-            fit = fit_model(tr, model, success=success, guardrails=guardrails, seed=seed + f,
-                            model_params=(model_params or {}).get(model))  # fmt: skip
+            try:
+                fit = fit_model(tr, model, success=success, guardrails=guardrails, seed=seed + f,
+                                model_params=(model_params or {}).get(model))  # fmt: skip
+            except InvalidInput as exc:  # a domain refusal; a defect still fails the job
+                for cand in live:
+                    failed[cand.name] = f"fold {f + 1}: the {model} fit failed: {exc.detail}"
+                tick(1 + len(group))
+                continue
             fit_seconds[model] += time.perf_counter() - t0
-            fit_share = (time.perf_counter() - t0) / len(group)
+            fit_share = (time.perf_counter() - t0) / len(live)
             tick()
-            if model == candidates[0].model:
+            if not have_base:  # control scores from the first model that fitted in this fold
                 base[test] = _control_scores(table, fit, test)
+                have_base = True
             for cand in group:
+                if cand.name in failed:
+                    tick()
+                    continue
                 t0 = time.perf_counter()
-                x, prob = solve_on_fit(tr, fit, cand, success=success, guardrails=guardrails,
-                                       seed=seed + f, draws=draws)  # fmt: skip
+                try:
+                    x, prob = solve_on_fit(tr, fit, cand, success=success,
+                                           guardrails=guardrails, seed=seed + f,
+                                           draws=draws)  # fmt: skip
+                except InvalidInput as exc:  # a domain refusal; a defect still fails the job
+                    failed[cand.name] = (
+                        f"fold {f + 1}: the {cand.optimizer} plan failed: {exc.detail}"
+                    )
+                    tick()
+                    continue
                 psi[cand.name][test] = _scores(table, fit, x, test)
                 infeasible[cand.name] += prob is None
                 seconds[cand.name] += fit_share + time.perf_counter() - t0
                 tick()
+        if not have_base:
+            break  # every model failed in this fold: nothing is left to compare
         for cand in candidates:
+            if cand.name in failed:
+                continue
             fv = {k: _metric_influence(table, k, psi[cand.name][test], base[test])[0] for k in keys}
             fold_vals[cand.name].append(fv)
+    if len(failed) == len(candidates):
+        raise InvalidInput(
+            "no candidate could be evaluated: "
+            + "; ".join(f"{name}: {why}" for name, why in failed.items()),
+            errors=[{"field": "candidates", "problem": why, "value": name}
+                    for name, why in failed.items()],
+        )  # fmt: skip
     rows = []
     for cand in candidates:
+        if cand.name in failed:
+            continue
         p = psi[cand.name]
         metrics = {}
         for k in keys:
@@ -297,6 +334,12 @@ def evaluate_candidates(
                      "metrics": metrics, "folds_without_plan": infeasible[cand.name],
                      "seconds": round(seconds[cand.name], 3)})  # fmt: skip
     out = recommend(table, rows, psi, base, success=success, guardrails=guardrails)
+    for cand in candidates:  # failed candidates last, unranked, with the reason they left
+        if cand.name in failed:
+            out["candidates"].append({
+                "candidate": cand.name, "model": cand.model, "optimizer": cand.optimizer,
+                "metrics": {}, "folds_without_plan": 0, "seconds": round(seconds[cand.name], 3),
+                "status": "failed", "failing": [], "rank": None, "error": failed[cand.name]})  # fmt: skip
     out.update(folds=folds, seed=seed, units=n, draws=draws,
                seconds=round(time.perf_counter() - t_all, 3),
                fit_seconds={m: round(v, 3) for m, v in fit_seconds.items()})  # fmt: skip

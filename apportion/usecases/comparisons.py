@@ -294,6 +294,12 @@ def followed(services: Services, *, model_id: int, number: int, candidate: str) 
             )
         res = row.result or {}
         mine = next((r for r in res.get("candidates", []) if r["candidate"] == candidate), None)
+        if mine is not None and mine["status"] == "failed":
+            raise InvalidInput(
+                f"{candidate!r} failed in comparison {number} ({mine['error']}); a draft can "
+                "follow a candidate the comparison evaluated",
+                errors=[{"field": "comparison", "problem": "the draft's method failed there"}],
+            )
         return {
             "number": number,
             "href": f"/v1/experiments/{exp.key}/comparisons/{number}",

@@ -9,6 +9,8 @@ from fastapi.testclient import TestClient
 from support import EXPERIMENT, draft_plan, rows_csv, scenario_model, wait_job
 
 from apportion.demo.scenario import EXPERIMENT_KEY, GUARDRAILS, SUCCESS
+from apportion.errors import InvalidInput
+from apportion.optimize import crossfit
 
 CSV = {"content-type": "text/csv"}
 URL = "/v1/experiments/checkout-copy/comparisons"
@@ -187,3 +189,44 @@ def test_a_draft_links_the_comparison_it_follows(client: TestClient, keys) -> No
     assert r.status_code == 422 and "no comparison 99" in r.json()["detail"]
     plan = client.get("/v1/plans/lesson-length", headers=keys.h(keys.reader)).json()
     assert len(plan["versions"]) == 1
+
+
+def test_a_candidate_that_fails_is_listed_with_its_reason_and_cannot_be_followed(
+    client: TestClient, keys, monkeypatch
+) -> None:  # type: ignore[no-untyped-def]
+    # A domain refusal inside one candidate's fold fit used to fail the whole comparison job.
+    model_id = scenario_model(
+        client, keys, n=6000, params={"max_depth": 2, "min_units_per_arm": 80}
+    )
+    real = crossfit.fit_model
+
+    def refuse_causal_tree(table, model, **kw):  # type: ignore[no-untyped-def]
+        if model == "causal_tree":
+            raise InvalidInput("a cell is too small in this fold")
+        return real(table, model, **kw)
+
+    monkeypatch.setattr(crossfit, "fit_model", refuse_causal_tree)
+    url = f"/v1/experiments/{EXPERIMENT_KEY}/comparisons"
+    body = {"model_id": model_id, "success_metric": SUCCESS, "guardrails": GUARDRAILS,
+            "candidates": ["causal_tree/chance", "global/chance"], "folds": 2}  # fmt: skip
+    r = client.post(url, json=body, headers=keys.h(keys.analyst))
+    assert r.status_code == 202, r.text
+    number = r.json()["number"]
+    assert wait_job(client, keys, r.json()["job"])["status"] == "done"
+    got = client.get(f"{url}/{number}", headers=keys.h(keys.reader)).json()
+    assert got["status"] == "done" and got["recommended"] == "global/chance"
+    failed = got["table"][-1]
+    assert failed["candidate"] == "causal_tree/chance" and failed["status"] == "failed"
+    assert failed["rank"] is None and "a cell is too small in this fold" in failed["error"]
+    r = client.post(
+        "/v1/plans/lesson-length/versions",
+        json={
+            "model_id": model_id,
+            "success_metric": SUCCESS,
+            "guardrails": GUARDRAILS,
+            "method": "chance",
+            "comparison": number,
+        },  # fmt: skip
+        headers=keys.h(keys.analyst),
+    )
+    assert r.status_code == 422 and "failed in comparison" in r.json()["detail"], r.text

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from apportion.demo import designs as d
+from apportion.errors import InvalidInput
 from apportion.optimize.crossfit import (
     Candidate,
     _scores,
@@ -90,3 +92,36 @@ def test_decision_focused_candidates_price_the_plans_guardrails():
                              guardrails=G, seed=0, draws=10)  # fmt: skip
     assert [g["metric"] for g in fit.params["guardrails"]] == ["y1", "y2"]
     assert x.shape == (fit.partition.n_cohorts, 4)
+
+
+def test_a_candidate_whose_fit_fails_leaves_the_comparison_and_the_rest_are_ranked(monkeypatch):
+    # One model refusing a fold (a domain error, e.g. too few units for its learners) used to fail
+    # the whole comparison job; it now leaves with its reason and the others are still compared.
+    real = cohort_models.fit_cohort_model
+
+    def refuse_intersect(table, method, params, **kw):
+        if method == "intersect":
+            raise InvalidInput("too few units in a cell for this test")
+        return real(table, method, params, **kw)
+
+    monkeypatch.setattr(cohort_models, "fit_cohort_model", refuse_intersect)
+    table = d.simulate(8_000, "aligned", 1.0, 4)
+    cands = parse_candidates(
+        ["global/deterministic", "intersect/deterministic", "intersect/chance"]
+    )
+    seen: list[float] = []
+    out = evaluate_candidates(table, cands, success="y0", guardrails=G, folds=3, seed=0,
+                              progress=seen.append)  # fmt: skip
+    rows = {r["candidate"]: r for r in out["candidates"]}
+    assert out["recommended"] == "global/deterministic"
+    assert rows["global/deterministic"]["rank"] == 1 and rows["global/deterministic"]["metrics"]
+    for name in ("intersect/deterministic", "intersect/chance"):
+        assert rows[name]["status"] == "failed" and rows[name]["rank"] is None
+        assert rows[name]["error"].startswith("fold 1: the intersect fit failed: too few units")
+    assert [r["candidate"] for r in out["candidates"]][-2:] == [
+        "intersect/deterministic", "intersect/chance"]  # fmt: skip
+    assert seen == sorted(seen) and seen[-1] == 1.0  # progress still runs to the end
+
+    with pytest.raises(InvalidInput, match="no candidate could be evaluated: intersect/chance"):
+        evaluate_candidates(table, [Candidate("intersect", "chance")], success="y0",
+                            guardrails=G, folds=3, seed=0)  # fmt: skip
