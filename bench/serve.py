@@ -4,7 +4,9 @@ Starts `apportion serve --workers N` (uvicorn with httptools and uvloop, the pro
 and backlog) on a fresh SQLite store, makes keys with `apportion keys create`, and brings a plan
 live through the API the way an analyst would: declare the invented scenario, upload a readout of
 `--units` learners, fit a causal tree with `max_depth=8` (cv off, small `min_units_per_arm`, so
-the tree reaches depth 8), draft, approve with an approver who is not the author, activate. Beside
+the tree reaches depth 8), draft, approve with an approver who is not the author, activate (this setup goes through the
+client library, `apportion.client`, and its job waiter; the measured calls below are plain httpx
+or wrk, so the figures are the server's, not the client's). Beside
 it runs bench/serve_reference.py: a pure ASGI callable that reads the same body, parses it as JSON
 and answers a constant object, served by the same uvicorn with the same settings and worker count.
 
@@ -56,6 +58,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # run as a script from anywhere
 
+from apportion.client import ApportionClient  # noqa: E402
 from apportion.demo.scenario import (  # noqa: E402
     FEATURES,
     GUARDRAILS,
@@ -141,49 +144,34 @@ def _ok(r: httpx.Response, *codes: int) -> dict[str, Any]:
     return r.json()
 
 
-def _wait_job(c: httpx.Client, h: dict[str, str], url: str, timeout: float = 600) -> dict:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        job = _ok(c.get(url, headers=h), 200)
-        if job["status"] in ("done", "failed"):
-            return job
-        time.sleep(0.2)
-    raise RuntimeError(f"job {url} did not finish in {timeout} s")
-
-
-def live_plan(c: httpx.Client, keys: dict[str, dict[str, str]], units: int, seed: int) -> dict:
-    """Declare, upload, fit a depth-8 causal tree, draft, approve, activate; returns facts."""
+def live_plan(url: str, secrets: dict[str, str], units: int, seed: int) -> dict:
+    """Declare, upload, fit a depth-8 causal tree, draft, approve, activate (through the client
+    library, its waiter for the fit); returns facts."""
     decl = experiment_declaration()
     t0 = time.perf_counter()
-    _ok(c.post("/v1/experiments", json=decl, headers=keys["analyst"]), 201)
-    r = c.post(
-        f"/v1/experiments/{decl['key']}/readouts",
-        content=to_csv_bytes(simulate(units, seed=seed)),
-        headers={**keys["analyst"], "content-type": "text/csv"},
-    )
-    version = _ok(r, 200, 201)["version"]
-    params = {"max_depth": 8, "min_units_per_arm": 20, "cv_folds": 0, "seed": seed}
-    body = {"readout_version": version, "method": "causal_tree", "params": params}
-    fit = _ok(
-        c.post(f"/v1/experiments/{decl['key']}/models", json=body, headers=keys["analyst"]), 202
-    )
-    job = _wait_job(c, keys["reader"], fit["job"])
-    if job["status"] != "done":
-        raise RuntimeError(f"fit failed: {job}")
-    model = _ok(c.get(f"/v1/models/{fit['model_id']}", headers=keys["reader"]), 200)
-    partition = Partition.from_dict(model["partition"])
-    draft = {
-        "model_id": fit["model_id"],
-        "success_metric": SUCCESS,
-        "guardrails": GUARDRAILS,
-        "method": "deterministic",
-        "holdout": {"share": 0.1},
-    }
-    v = _ok(c.post(f"/v1/plans/{PLAN}/versions", json=draft, headers=keys["analyst"]), 201)
-    path = f"/v1/plans/{PLAN}/versions/{v['version']}/approve"
-    _ok(c.post(path, json={"reason": "bench"}, headers=keys["approver"]), 200)
-    act = {"version": v["version"], "reason": "bench", "expected_revision": 0}
-    _ok(c.post(f"/v1/plans/{PLAN}/activate", json=act, headers=keys["approver"]), 200)
+    with ApportionClient(url, secrets["analyst"], timeout=600) as analyst:
+        approver = analyst.with_key(secrets["approver"])
+        analyst.create_experiment(decl)
+        data = to_csv_bytes(simulate(units, seed=seed))
+        readout, _ = analyst.upload_readout(decl["key"], data, "text/csv")
+        params = {"max_depth": 8, "min_units_per_arm": 20, "cv_folds": 0, "seed": seed}
+        fit = analyst.fit_model(decl["key"], readout_version=readout["version"],
+                                method="causal_tree", params=params)  # fmt: skip
+        job = analyst.wait(fit["job_id"], timeout=600)
+        if job["status"] != "done":
+            raise RuntimeError(f"fit failed: {job}")
+        model = analyst.model(fit["model_id"])
+        partition = Partition.from_dict(model["partition"])
+        draft = {
+            "model_id": fit["model_id"],
+            "success_metric": SUCCESS,
+            "guardrails": GUARDRAILS,
+            "method": "deterministic",
+            "holdout": {"share": 0.1},
+        }
+        v = analyst.draft_plan(PLAN, draft)
+        approver.approve(PLAN, v["version"], "bench")
+        approver.activate(PLAN, v["version"], "bench", expected_revision=0)
     return {
         "depth": partition.depth(),
         "leaves": len(partition.leaves()),
@@ -419,18 +407,17 @@ def main() -> None:
         "APPORTION_DATABASE_URL": f"sqlite:///{tmp}/apportion.db",
         "APPORTION_LOG_LEVEL": "WARNING",
     }
-    keys = {
-        role: {
-            "Authorization": f"Bearer {_cli(env, 'keys', 'create', '--name', f'b-{role}', '--role', r)}"
-        }
-        for role, r in (("analyst", "analyst"), ("approver", "approver"), ("reader", "reader"))
+    secrets = {
+        role: _cli(env, "keys", "create", "--name", f"b-{role}", "--role", role)
+        for role in ("analyst", "approver", "reader")
     }
+    keys = {role: {"Authorization": f"Bearer {secret}"} for role, secret in secrets.items()}
     lookup, ref, port, _ = _start_servers(env, 1, tmp)
     _stop(ref)
     result: dict[str, Any] = {"bench": "serve"}
     try:
         with httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=600) as c:
-            facts = live_plan(c, keys, a.units, a.seed)
+            facts = live_plan(f"http://127.0.0.1:{port}", secrets, a.units, a.seed)
             members = member_bodies(max(a.members, a.batch), a.seed + 1)
             probe = _ok(
                 c.post(f"/v1/plans/{PLAN}/assign", json=members[0], headers=keys["reader"]), 200

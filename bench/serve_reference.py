@@ -43,7 +43,7 @@ def main() -> None:
     import uvicorn
 
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-    from apportion.cli.main import BACKLOG, KEEP_ALIVE_SECONDS
+    from apportion.cli.server import BACKLOG, KEEP_ALIVE_SECONDS
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--host", default="127.0.0.1")

@@ -88,15 +88,15 @@ def make_settings(db_url: str, **overrides: object) -> Settings:
 
 
 def wait_job(client, keys, job_url: str, timeout: float = 60.0) -> dict:  # type: ignore[no-untyped-def]
-    import time
+    """The client library's job waiter over `client` (a TestClient or an httpx.Client), reading
+    as the reader key; polls every 0.05 s at first, at most every 0.2 s."""
+    from apportion.client import ApportionClient, Backoff, JobTimeout
 
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        job = client.get(job_url, headers=keys.h(keys.reader)).json()
-        if job["status"] in ("done", "failed"):
-            return job
-        time.sleep(0.05)
-    raise AssertionError(f"job {job_url} did not finish in {timeout} s")
+    api = ApportionClient(key=keys.reader, http=client)
+    try:
+        return api.wait(job_url, timeout=timeout, backoff=Backoff(first=0.05, maximum=0.2))
+    except JobTimeout as exc:
+        raise AssertionError(f"job {job_url} did not finish in {timeout} s") from exc
 
 
 def scenario_model(

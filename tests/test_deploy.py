@@ -13,8 +13,9 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+import typer
 
-from apportion.cli.main import build_parser
+from apportion.cli.app import app
 from apportion.config import Settings
 
 yaml = pytest.importorskip("yaml")
@@ -75,9 +76,23 @@ def route_paths(tmp_path_factory) -> set[str]:  # type: ignore[no-untyped-def]
 
 
 def _subcommands() -> set[str]:
-    parser = build_parser()
-    sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")
-    return set(sub.choices)
+    return set(typer.main.get_command(app).commands)  # type: ignore[attr-defined]
+
+
+def _parse(args: list[str]) -> None:
+    """Parse a command line with the real command tree (typer's commands) without running it:
+    walk the groups by name, then let the command parse its arguments and options (it raises
+    typer's usage error when they do not parse)."""
+    command: Any = typer.main.get_command(app)
+    ctx: typer.Context | None = None
+    name = "apportion"
+    while hasattr(command, "get_command"):  # a group of commands
+        ctx = typer.Context(command, info_name=name, parent=ctx)
+        assert args, f"`{name}` needs a subcommand"
+        name, args = args[0], args[1:]
+        command = command.get_command(ctx, name)
+        assert command is not None, f"no command `{name}`"
+    command.make_context(name, list(args), parent=ctx)
 
 
 def _check_command(argv: list[str], where: str) -> None:
@@ -86,9 +101,9 @@ def _check_command(argv: list[str], where: str) -> None:
         f"{where}: '{argv[1:2]}' is not an apportion subcommand {sorted(_subcommands())}"
     )
     try:  # the whole command line, options included, must parse with the real parser
-        build_parser().parse_args(argv[1:])
-    except SystemExit as exc:
-        raise AssertionError(f"{where}: `{shlex.join(argv)}` does not parse") from exc
+        _parse(argv[1:])
+    except Exception as exc:  # typer's usage errors, or the walk's assertions
+        raise AssertionError(f"{where}: `{shlex.join(argv)}` does not parse: {exc}") from exc
 
 
 def _check_settings(values: dict[str, str], where: str, monkeypatch) -> None:  # type: ignore[no-untyped-def]

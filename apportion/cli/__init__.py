@@ -1,5 +1,7 @@
-"""The `apportion` command: server-side commands here, HTTP client commands in `client.py`."""
+"""The `apportion` command: typer commands per resource on the HTTP client
+(`apportion.client`), and the server-side commands (serve, worker, db, openapi, keys create,
+audit verify)."""
 
-from apportion.cli.main import main
+from apportion.cli.app import main
 
 __all__ = ["main"]

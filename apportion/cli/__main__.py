@@ -1,5 +1,5 @@
 import sys
 
-from apportion.cli.main import main
+from apportion.cli.app import main
 
 sys.exit(main())

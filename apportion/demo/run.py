@@ -2,8 +2,8 @@
 
 It starts the app with uvicorn in a background thread on 127.0.0.1 (port 8000 when free, else a
 free one) over a fresh SQLite file under ./var/ (a new file each run, so reruns are clean), then
-drives every step with the same `Api` methods the `apportion` command line uses
-(`apportion/cli/client.py`): declare the experiment, upload a simulated readout, fit a `causal_tree`
+drives every step with the HTTP client the `apportion` command line is built on
+(`apportion.client.ApportionClient`): declare the experiment, upload a simulated readout, fit a `causal_tree`
 model, compare a short list of decision methods on held-out folds of the readout, draft a plan with
 the recommended one (and the scenario's three guardrails), approve it with a second key,
 activate it, answer sample assignments, draft, approve and activate a second version and roll it
@@ -31,19 +31,10 @@ from pathlib import Path
 from typing import Any, TextIO
 
 import numpy as np
+from rich.console import Console, RenderableType
 
-from apportion.cli.client import (
-    Api,
-    ApiError,
-    ProgressBar,
-    finish_report,
-    fmt_arms,
-    fmt_num,
-    format_table,
-    render_comparison,
-    report_metric_rows,
-    wait_for_job,
-)
+from apportion.client import ApportionClient, ProblemError, render
+from apportion.client.render import fmt_num, report_metric_rows
 from apportion.demo import scenario as sc
 
 PLAN = sc.EXPERIMENT_KEY  # the plan is named like the experiment: lesson-length
@@ -133,7 +124,7 @@ def member_features(fv: dict[str, np.ndarray], i: int) -> dict[str, Any]:
 
 
 def watch_with_harm(
-    api: Api, *, learners: int, seed: int, out: TextIO, batches: int = 4
+    api: ApportionClient, *, learners: int, seed: int, out: TextIO, batches: int = 4
 ) -> dict[str, Any]:
     """Post-launch batches of learners, assigned through the HTTP lookup and simulated with an
     invented harm (+5 points of abandonment for beginners on every non-control arm), uploaded to
@@ -242,8 +233,16 @@ def truth_table(
 COMPARED = ("global/chance", "causal_tree/chance", "causal_tree/stochastic", "policy_tree/chance")
 
 
-def _indent(text: str) -> str:
-    return "\n".join(f"        {line}" if line else "" for line in text.splitlines())
+def _show(out: TextIO, renderable: RenderableType, spaces: int = 0) -> None:
+    """A rendered answer into the report (plain text, indented like the step lines)."""
+    text = render.to_text(render.indent(renderable, spaces) if spaces else renderable)
+    out.write(text + "\n")
+
+
+def _wait(api: ApportionClient, job_id: str, label: str) -> dict[str, Any]:
+    """Wait for a job with a progress bar on stderr."""
+    with render.job_progress(f"        {label}", Console(stderr=True)) as bar:
+        return api.wait(job_id, on_progress=bar)
 
 
 def run_demo(
@@ -292,7 +291,7 @@ def run_demo(
                 services.db, name="demo-admin", owner="ops@demo", role="admin", actor=SYSTEM
             )
             services.keys.refresh()
-            admin = Api(url, admin_secret)
+            admin = ApportionClient(url, admin_secret)
             made = {"demo-admin": {"role": "admin", "secret": admin_secret}}
             people = [
                 ("demo-analyst", "analyst", "analyst@demo"),
@@ -303,8 +302,8 @@ def run_demo(
                     "role": role,
                     "secret": admin.create_key(name, role, owner=owner)["secret"],
                 }
-            analyst = Api(url, made["demo-analyst"]["secret"])
-            approver = Api(url, made["demo-approver"]["secret"])
+            analyst = admin.with_key(made["demo-analyst"]["secret"])
+            approver = admin.with_key(made["demo-approver"]["secret"])
             report["keys"] = made
 
         with steps.step("declare the experiment (POST /v1/experiments)"):
@@ -329,10 +328,10 @@ def run_demo(
                 params={"seed": seed},
                 success_metric=sc.SUCCESS,
             )
-            job = wait_for_job(analyst, started["job_id"], bar=ProgressBar("        fit"))
+            job = _wait(analyst, started["job_id"], "fit")
             if job["status"] != "done":
                 raise RuntimeError(f"the fit failed: {job['error']}")
-            model = analyst.get_model(started["model_id"])
+            model = analyst.model(started["model_id"])
             out.write(f"        model {model['id']}: {len(model['cohorts'])} cohorts\n")
 
         with steps.step("compare decision methods on held-out folds (POST .../comparisons, a job)"):
@@ -341,11 +340,11 @@ def run_demo(
                 "guardrails": sc.GUARDRAILS, "candidates": list(COMPARED), "folds": 3,
                 "seed": seed,
                 "notes": "demo: which method to draft the plan with"})  # fmt: skip
-            wait_for_job(analyst, compared["job_id"], bar=ProgressBar("        comparison"))
-            comparison = analyst.get_comparison(sc.EXPERIMENT_KEY, compared["number"])
+            _wait(analyst, compared["job_id"], "comparison")
+            comparison = analyst.comparison(sc.EXPERIMENT_KEY, compared["number"])
             if comparison["status"] != "done":
                 raise RuntimeError(f"the comparison failed: {comparison.get('error')}")
-            out.write(_indent(render_comparison(comparison)) + "\n")
+            _show(out, render.comparison_view(comparison), 8)
             report["comparison"] = {
                 k: comparison.get(k) for k in ("number", "recommended", "reason")
             }
@@ -355,10 +354,10 @@ def run_demo(
                 again = analyst.fit_model(sc.EXPERIMENT_KEY, readout_version=readout["version"],
                                           method=chosen_model, params={"seed": seed},
                                           success_metric=sc.SUCCESS)  # fmt: skip
-                job = wait_for_job(analyst, again["job_id"], bar=ProgressBar("        fit"))
+                job = _wait(analyst, again["job_id"], "fit")
                 if job["status"] != "done":
                     raise RuntimeError(f"the fit failed: {job['error']}")
-                model = analyst.get_model(again["model_id"])
+                model = analyst.model(again["model_id"])
                 out.write(f"        model {model['id']} ({chosen_model}): "
                           f"{len(model['cohorts'])} cohorts\n")  # fmt: skip
 
@@ -380,7 +379,7 @@ def run_demo(
         with steps.step(
             "draft version 1 with the recommended method (POST /v1/plans/.../versions)"
         ):
-            v1 = finish_report(analyst, analyst.draft_plan(PLAN, spec), bar=None)
+            v1 = analyst.settle_draft(analyst.draft_plan(PLAN, spec))
             out.write(_held_out_line(v1["report"].get("held_out") or {}))
 
         with steps.step("approve version 1 with the approver's key"):
@@ -395,25 +394,11 @@ def run_demo(
             for i, m in enumerate(ids):
                 a = analyst.assign(PLAN, str(m), member_features(fv, i))
                 answers.append({"member_id": str(m), **member_features(fv, i), **a})
-            out.write(
-                format_table(
-                    [
-                        [
-                            a["member_id"],
-                            a["level"],
-                            a["device"],
-                            a["streak_days"],
-                            a["tenure_days"],
-                            a["arm"],
-                            a["cohort"],
-                            a["holdout"],
-                        ]
-                        for a in answers
-                    ],
-                    ["member", "level", "device", "streak", "tenure", "arm", "cohort", "holdout"],
-                )
-                + "\n"
-            )
+            _show(out, render.table(
+                [[a["member_id"], a["level"], a["device"], a["streak_days"], a["tenure_days"],
+                  a["arm"], a["cohort"], a["holdout"]] for a in answers],
+                ["member", "level", "device", "streak", "tenure", "arm", "cohort", "holdout"],
+            ))  # fmt: skip
             report["assignments"] = answers
 
         spec2 = {  # a point-estimate plan the comparison did not rank: it names no comparison
@@ -423,13 +408,13 @@ def run_demo(
             "notes": "demo: the point-estimate plan with a 10 % holdout",
         }
         with steps.step("draft, approve and activate version 2 (deterministic, 10 % holdout)"):
-            v2 = finish_report(analyst, analyst.draft_plan(PLAN, spec2), bar=None)
+            v2 = analyst.settle_draft(analyst.draft_plan(PLAN, spec2))
             approver.approve(PLAN, v2["version"], "demo: a second version to roll back")
             act2 = approver.activate(PLAN, v2["version"], "demo: try the point-estimate plan")
 
         with steps.step("roll back to version 1 (POST /v1/plans/.../rollback)"):
             back = approver.rollback(PLAN, "demo: back to the recommended plan")
-            plan_state = analyst.get_plan(PLAN)
+            plan_state = analyst.plan(PLAN)
             report["activations"] = [act1, act2, back]
             report["live_version"] = plan_state["live_version"]
 
@@ -439,7 +424,7 @@ def run_demo(
             )
             watch = watch_with_harm(analyst, learners=post_launch, seed=seed + 5, out=out)
             report["watch"] = watch
-            report["live_version"] = analyst.get_plan(PLAN)["live_version"]
+            report["live_version"] = analyst.plan(PLAN)["live_version"]
 
         with steps.step("verify the audit chain (GET /v1/audit/verify, admin key)"):
             chain = admin.audit_verify()
@@ -483,13 +468,8 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
     w = out.write
     w(f"\n=== Report: plan lesson-length, version 1 ({r.get('method_v1')}, mixed) ===\n\n")
     w("Cohorts and their arms:\n")
-    w(
-        format_table(
-            [[c["id"], f"{c['share']:.1%}", fmt_arms(c["arms"]), c["rule"]] for c in r["cohorts"]],
-            ["cohort", "share", "arms", "rule"],
-        )
-        + "\n\n"
-    )
+    _show(out, render.cohorts_table(r["cohorts"]))
+    w("\n")
     w(
         "Lifts against everyone on five_min, in each guardrail's unit (abs, or rel% = per cent of"
         " the baseline's value; 'allowed' is its limit;"
@@ -497,8 +477,9 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
         " interval; true = the scenario's effect functions on a fresh population):\n"
     )
     best = r["best_single_arm"]
-    w(
-        format_table(
+    _show(
+        out,
+        render.table(
             [
                 [
                     x["metric"],
@@ -526,9 +507,9 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
                 "oracle true",
                 f"{best} (best safe arm) true",
             ],
-        )
-        + "\n\n"
+        ),
     )
+    w("\n")
     plan, single, oracle = (
         r["plan_success_true"],
         r["best_single_success_true"],
@@ -573,12 +554,11 @@ def _print_report(r: dict[str, Any], out: TextIO) -> None:
     a = r["audit"]
     w(f"Audit chain: {'intact' if a['intact'] else 'BROKEN'}, {a['entries']} entries.\n")
     w(f"Finished in {r['seconds']} s.\n\nKeys made (secrets are shown once):\n")
-    w(
-        format_table(
-            [[n, k["role"], k["secret"]] for n, k in r["keys"].items()], ["name", "role", "secret"]
-        )
-        + "\n"
-    )
+    _show(
+        out,
+        render.table([[n, k["role"], k["secret"]] for n, k in r["keys"].items()],
+                     ["name", "role", "secret"]),
+    )  # fmt: skip
     w(
         f"\nReview page: {r['review_page']}\n"
         f"Try the command line: APPORTION_URL={r['url']} APPORTION_KEY=<a secret above> "
@@ -622,8 +602,8 @@ def main(argv: list[str] | None = None) -> int:
             held_out_folds=args.held_out_folds,
             serve=args.serve,
         )
-    except ApiError as exc:  # the server refused a step: say which and why, like the CLI does
-        print(f"demo failed: {exc.title} (HTTP {exc.status}): {exc.detail}", file=sys.stderr)
+    except ProblemError as exc:  # the server refused a step: say which and why, like the CLI
+        print(f"demo failed: {exc.one_line()}", file=sys.stderr)
         return 1
     if args.json_out:
         Path(args.json_out).write_text(json.dumps(report, indent=2, default=str))

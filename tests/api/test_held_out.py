@@ -12,7 +12,7 @@ from fastapi.testclient import TestClient
 from support import draft_plan, make_keys, make_settings, scenario_model, wait_job
 
 from apportion.app import create_app
-from apportion.cli.client import render_version
+from apportion.client.render import to_text, version_view
 from apportion.demo.scenario import GUARDRAILS, SUCCESS
 from apportion.usecases import plans
 
@@ -51,7 +51,7 @@ def test_draft_queues_the_evaluation_and_the_job_attaches_it(ho_client: TestClie
         "/ui/fragments/plans/lesson-length/versions/1", headers=keys.h(keys.reader)
     ).text
     assert 'id="held-out"' in page and "2 folds" in page and "Verdict:" in page
-    text = render_version(got)
+    text = to_text(version_view(got))
     assert "held-out evaluation (2 folds" in text and SUCCESS in text
 
 
@@ -80,7 +80,7 @@ def test_off_by_setting_says_so(client: TestClient, keys) -> None:  # type: igno
     model_id = scenario_model(client, keys, n=3000)
     v = draft_plan(client, keys, model_id)
     assert v["report"]["held_out"]["status"] == "off"
-    assert "held-out evaluation: off" in render_version(v)
+    assert "held-out evaluation: off" in to_text(version_view(v))
 
 
 def test_approval_waits_for_the_evaluation_and_a_rejected_draft_skips_it(db_url: str) -> None:

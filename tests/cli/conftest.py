@@ -1,16 +1,24 @@
 """A live server for the command-line tests: the real app under uvicorn in a thread on a free port
-(the same helper the demo uses), and keys of every role made directly in its database."""
+(the same helper the demo uses), and keys of every role made directly in its database.
+
+`live` is a fresh server per test (tests that count what the server holds); `shared_live` is one
+server per module, for tests that only add their own named things to it (a plan of their own)
+and read a model fitted once per module."""
 
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import pytest
-from support import make_keys, make_settings
+from support import make_keys, make_settings, reset_postgres
 
-from apportion.cli.main import main
+from apportion.cli import main
+
+PG_URL = os.environ.get("APPORTION_TEST_DATABASE_URL")
+BACKENDS = ["sqlite"] + (["postgresql"] if PG_URL else [])
 
 
 @dataclass
@@ -20,8 +28,7 @@ class Live:
     services: object
 
 
-@pytest.fixture
-def live(db_url: str) -> Iterator[Live]:
+def _serve(db_url: str) -> Iterator[Live]:
     from apportion.app import create_app
     from apportion.demo.run import serve_in_thread
 
@@ -35,6 +42,23 @@ def live(db_url: str) -> Iterator[Live]:
         running.stop()
 
 
+@pytest.fixture
+def live(db_url: str) -> Iterator[Live]:
+    yield from _serve(db_url)
+
+
+@pytest.fixture(scope="module", params=BACKENDS)
+def shared_live(
+    request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory
+) -> Iterator[Live]:
+    if request.param == "sqlite":
+        url = f"sqlite:///{tmp_path_factory.mktemp('cli')}/apportion.db"
+    else:
+        assert PG_URL
+        url = reset_postgres(PG_URL)
+    yield from _serve(url)
+
+
 @dataclass
 class Result:
     code: int
@@ -45,9 +69,11 @@ class Result:
         return json.loads(self.out)
 
 
-@pytest.fixture
-def cli(live: Live, capsys: pytest.CaptureFixture[str]) -> Callable[..., Result]:
-    """cli('analyst', 'experiment', 'show', 'x', '--json') runs `apportion` as that key."""
+Runner = Callable[..., Result]
+
+
+def runner(live: Live, capsys: pytest.CaptureFixture[str]) -> Runner:
+    """run('analyst', 'experiment', 'show', 'x', '--json') runs `apportion` as that key."""
 
     def run(role: str | None, *argv: str) -> Result:
         capsys.readouterr()
@@ -57,3 +83,13 @@ def cli(live: Live, capsys: pytest.CaptureFixture[str]) -> Callable[..., Result]
         return Result(code, cap.out, cap.err)
 
     return run
+
+
+@pytest.fixture
+def cli(live: Live, capsys: pytest.CaptureFixture[str]) -> Runner:
+    return runner(live, capsys)
+
+
+@pytest.fixture
+def shared_cli(shared_live: Live, capsys: pytest.CaptureFixture[str]) -> Runner:
+    return runner(shared_live, capsys)

@@ -9,8 +9,9 @@ from pathlib import Path
 import pytest
 from support import EXPERIMENT, rows_csv
 
-from apportion.cli.client import format_table, parse_pairs
-from apportion.cli.main import main
+from apportion.cli import main
+from apportion.cli.common import parse_pairs
+from apportion.client import render
 
 
 @pytest.fixture
@@ -139,10 +140,10 @@ def test_model_fit_no_wait_then_job_show(cli, files, live) -> None:  # type: ign
     assert r.code == 0
     started = r.json()
     assert started["model_id"] == 1 and started["job"] == f"/v1/jobs/{started['job_id']}"
-    from apportion.cli.client import Api, wait_for_job
+    from apportion.client import ApportionClient
 
-    with Api(live.url, live.keys["reader"]) as api:
-        assert wait_for_job(api, started["job_id"])["status"] == "done"
+    with ApportionClient(live.url, live.keys["reader"]) as api:
+        assert api.wait(started["job_id"])["status"] == "done"
     job = cli("reader", "job", "show", started["job_id"], "--json").json()
     assert job["status"] == "done" and job["progress"] == 1.0
 
@@ -226,12 +227,17 @@ def test_unreachable_server_exits_2(capsys) -> None:  # type: ignore[no-untyped-
     assert code == 2 and "cannot reach" in capsys.readouterr().err
 
 
-def test_format_table_aligns_columns() -> None:
-    out = format_table([["a", 1.5, None], ["longer", 12, "x"]], ["name", "n", "note"]).splitlines()
-    assert out[0] == "name      n  note"  # numbers right-aligned under a right-aligned header
-    assert out[1] == "------  ---  ----"
-    assert out[2] == "a       1.5"
-    assert out[3] == "longer   12  x"
+def test_tables_right_align_number_columns_and_left_align_text() -> None:
+    rows = [["a", 1.5, None], ["longer", 12, "x"]]
+    header, rule, first, second = render.to_text(render.table(rows, ["name", "n", "note"])).split(
+        "\n"
+    )
+    assert set(rule) == {"─"}  # a rule under the headers
+    right = header.index(" n ") + 2  # the right edge of the number column
+    assert first.index("1.5") + 3 == right and second.index("12") + 2 == right
+    assert first.startswith("a ") and second.startswith("longer ")
+    assert second.index("x") == header.index("note")  # text columns start with their header
+    assert first.rstrip().endswith("1.5")  # None is an empty cell
 
 
 def test_parse_pairs_types() -> None:
@@ -241,7 +247,7 @@ def test_parse_pairs_types() -> None:
 
 def test_cli_api_and_fitter_offer_the_same_model_methods():
     from apportion.api.routes.models import FitIn
-    from apportion.cli.client import MODEL_METHODS
+    from apportion.cli.models import MODEL_METHODS
     from apportion.stats.models import METHODS
 
     assert MODEL_METHODS == METHODS
@@ -249,8 +255,6 @@ def test_cli_api_and_fitter_offer_the_same_model_methods():
 
 
 def test_plan_rendering_lists_guardrail_prices_and_the_five_thresholds():
-    from apportion.cli.client import render_prices
-
     rows = [
         {
             "metric": "cancelled", "unit": "absolute", "threshold": 0.003, "step": 0.00075,
@@ -264,7 +268,7 @@ def test_plan_rendering_lists_guardrail_prices_and_the_five_thresholds():
             ],
         }
     ]  # fmt: skip
-    text = "\n".join(render_prices(rows))
+    text = render.to_text(render.lines(*render.prices_view(rows)))
     assert "cancelled" in text and "+12.5000" in text
     assert "infeasible +0.1000 +0.1100 +0.1200 +0.1250" in text
-    assert render_prices([]) == []
+    assert render.prices_view([]) == []

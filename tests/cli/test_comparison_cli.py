@@ -10,7 +10,8 @@ from pathlib import Path
 import pytest
 from support import EXPERIMENT, rows_csv
 
-from apportion.cli.client import LocalError, _guardrail_arg
+from apportion.cli.common import LocalError
+from apportion.cli.comparisons import guardrail_arg
 
 
 @pytest.fixture
@@ -51,11 +52,11 @@ def test_comparison_start_prints_the_ordered_table(cli, files) -> None:  # type:
 
 
 def test_guardrail_argument_parses_unit_and_confidence() -> None:
-    assert _guardrail_arg("refund=0.01") == {"metric": "refund", "threshold": 0.01}
-    assert _guardrail_arg("churn=2:relative@0.9") == {
+    assert guardrail_arg("refund=0.01") == {"metric": "refund", "threshold": 0.01}
+    assert guardrail_arg("churn=2:relative@0.9") == {
         "metric": "churn", "threshold": 2.0, "unit": "relative", "confidence": 0.9,
     }  # fmt: skip
     with pytest.raises(LocalError, match="metric=threshold"):
-        _guardrail_arg("refund")
+        guardrail_arg("refund")
     with pytest.raises(LocalError, match="must be numbers"):
-        _guardrail_arg("refund=lots")
+        guardrail_arg("refund=lots")
