@@ -95,6 +95,18 @@ def test_draft_and_show(cli, plan, model, spec) -> None:  # type: ignore[no-unty
     assert [x["version"] for x in overview["versions"]] == [1]
 
 
+def test_draft_options_override_the_spec_file() -> None:
+    from apportion.cli.plans import Allocation, DecisionMethod, draft_spec
+
+    base = {"model_id": 1, "method": "deterministic", "holdout": {"share": 0.05, "arm": "a"}}
+    got = draft_spec(base, model_id=None, success_metric=None, method=DecisionMethod.chance,
+                     allocation=Allocation.pure, baseline=None, draws=None, seed=None, notes="n",
+                     comparison=None, holdout_share=0.2, holdout_arm=None)  # fmt: skip
+    assert got == {"model_id": 1, "method": "chance", "allocation": "pure", "notes": "n",
+                   "holdout": {"share": 0.2, "arm": "a"}}  # fmt: skip
+    assert base["method"] == "deterministic" and base["holdout"]["share"] == 0.05  # not edited
+
+
 def test_draft_needs_a_model(cli, plan, spec) -> None:  # type: ignore[no-untyped-def]
     r = cli("analyst", "plan", "draft", plan, "--spec", str(spec))
     assert r.code == 2 and "--model" in r.err
@@ -123,7 +135,9 @@ def test_reject_then_approve_is_refused(cli, plan, model, spec) -> None:  # type
 
 def test_activate_reads_revision_and_stale_revision_is_409(cli, plan, model, spec) -> None:  # type: ignore[no-untyped-def]
     _draft(cli, plan, model, spec)
-    _draft(cli, plan, model, spec, "--method", "chance")
+    # a second version with another holdout (a chance-constrained draft costs ten times as much
+    # and adds nothing here; test_draft_options_override_the_spec_file covers --method)
+    _draft(cli, plan, model, spec, "--holdout-share", "0.1")
     for v in ("1", "2"):
         assert cli("approver", "plan", "approve", plan, v, "--reason", "reviewed").code == 0
     r = cli("approver", "plan", "activate", plan, "1", "--reason", "launch")
@@ -143,8 +157,8 @@ def test_activate_reads_revision_and_stale_revision_is_409(cli, plan, model, spe
 
 
 def test_rollback_to_previous_and_named(cli, plan, model, spec) -> None:  # type: ignore[no-untyped-def]
-    for method in ("deterministic", "chance", "deterministic"):
-        _draft(cli, plan, model, spec, "--method", method)
+    for share in ("0.05", "0.1", "0.15"):  # three versions (deterministic: cheap to solve)
+        _draft(cli, plan, model, spec, "--holdout-share", share)
     for v in ("1", "2", "3"):
         assert cli("approver", "plan", "approve", plan, v, "--reason", "reviewed").code == 0
         assert cli("approver", "plan", "activate", plan, v, "--reason", "go").code == 0
