@@ -6,7 +6,6 @@ from __future__ import annotations
 
 import io
 import os
-import time
 
 import pyarrow as pa
 import pyarrow.csv as pacsv
@@ -14,7 +13,7 @@ import pyarrow.parquet as pq
 import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import func, select
-from support import EXPERIMENT, make_settings, rows_csv
+from support import EXPERIMENT, make_settings, rows_csv, wait_job
 
 from apportion.store.tables import AuditEntry, Job, Readout
 
@@ -51,16 +50,6 @@ def _post(client, keys, source: str, **extra):  # type: ignore[no-untyped-def]
     return client.post(URL, json={"source": source, **extra}, headers=keys.h(keys.analyst))
 
 
-def _wait(client, keys, job_url: str) -> dict:  # type: ignore[no-untyped-def]
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:
-        job = client.get(job_url, headers=keys.h(keys.reader)).json()
-        if job["status"] in ("done", "failed"):
-            return job
-        time.sleep(0.1)
-    raise AssertionError("the import job did not finish")
-
-
 def _readouts(client: TestClient) -> int:
     with client.app.state.services.db.read() as s:  # type: ignore[attr-defined]
         return s.scalar(select(func.count()).select_from(Readout))
@@ -72,7 +61,7 @@ def test_a_file_is_imported_in_a_job_and_snapshotted(client: TestClient, keys, l
     pq.write_table(_table(300, 1), path)
     r = _post(client, keys, str(path))
     assert r.status_code == 202, r.text
-    job = _wait(client, keys, r.json()["job"])
+    job = wait_job(client, keys, r.json()["job"])
     assert job["status"] == "done" and job["progress"] == 1.0, job
     version = job["result"]["readout_version"]
     first = client.get(f"{URL}/{version}", headers=keys.h(keys.reader)).json()
@@ -100,12 +89,12 @@ def test_a_hive_partitioned_directory_and_a_glob(client: TestClient, keys, lake)
         (hive / f"plan={plan}").mkdir(parents=True)
         pq.write_table(part, hive / f"plan={plan}" / "data.parquet")
     r = _post(client, keys, str(hive), partitioning="hive")
-    job = _wait(client, keys, r.json()["job"])
+    job = wait_job(client, keys, r.json()["job"])
     assert job["status"] == "done", job["error"]
     view = client.get(f"{URL}/{job['result']['readout_version']}", headers=keys.h(keys.reader))
     assert view.json()["n_rows"] == 200
     r2 = _post(client, keys, str(hive) + "/plan=free/*.parquet", partitioning="hive")
-    job2 = _wait(client, keys, r2.json()["job"])
+    job2 = wait_job(client, keys, r2.json()["job"])
     assert job2["status"] == "done", job2["error"]
     got = client.get(f"{URL}/{job2['result']['readout_version']}", headers=keys.h(keys.reader))
     assert got.json()["n_rows"] == int(pa.compute.sum(pa.compute.equal(t["plan"], "free")).as_py())
@@ -151,7 +140,7 @@ def test_missing_and_bad_sources_and_bodies(client: TestClient, keys, lake) -> N
     assert r.status_code == 422
     bad = lake / "exp" / "bad.parquet"
     pq.write_table(_table(30, 5).drop_columns(["spend"]), bad)
-    job = _wait(client, keys, _post(client, keys, str(bad)).json()["job"])
+    job = wait_job(client, keys, _post(client, keys, str(bad)).json()["job"])
     assert (
         job["status"] == "failed" and "spend" in job["error"] and "missing column" in job["error"]
     )
