@@ -6,14 +6,21 @@ shapes differ too (filled dot = projected lift, hollow diamond = corrected lift,
 guardrail's limit, hatching = the harmful side of the limit). Only SVG presentation attributes are
 used (no `style` attributes), so the page's Content-Security-Policy can forbid inline styles.
 
-All functions return an SVG string; the numbers they draw are passed in already in display units.
+All functions return the SVG as `markupsafe.Markup` (the templates insert it as it is); every
+value is put into the markup by `_m`, which escapes it, so nothing here escapes by hand. The numbers
+they draw are passed in already in display units.
+
+The module is longer than most (about 500 lines) because every mark is written out with its
+attributes, one value per line; the four charts share its scale, text, line and pattern helpers,
+so they stay together.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Callable, Sequence
-from html import escape
+
+from markupsafe import Markup
 
 ACCENT = "#005f73"  # the one accent colour: intervals and the plan's own marks
 INK = "#111111"
@@ -28,8 +35,10 @@ ARM_PATTERN = (None, None, None, "hatch-arm", None, "dots-arm")
 Fmt = Callable[[float], str]
 
 
-def _e(s: object) -> str:
-    return escape(str(s), quote=True)
+def _m(template: str, /, **values: object) -> Markup:
+    """`template` (trusted markup written here) with `values` filled in, each escaped by markupsafe
+    (a plain string is escaped, a Markup value is kept): the charts' one way to put text in SVG."""
+    return Markup(template).format(**values)
 
 
 def _n(x: float) -> str:
@@ -64,17 +73,18 @@ def signed(x: float, digits: int = 3) -> str:
     return ("+" if x > 0 else "\u2212") + mag
 
 
-def _defs(uid: str) -> str:
-    return (
-        f'<defs><pattern id="harm-{uid}" width="6" height="6" patternUnits="userSpaceOnUse" '
-        f'patternTransform="rotate(45)"><rect width="6" height="6" fill="#ffffff"/>'
-        f'<line x1="0" y1="0" x2="0" y2="6" stroke="#9a9a9a" stroke-width="2"/></pattern>'
-        f'<pattern id="hatch-arm-{uid}" width="5" height="5" patternUnits="userSpaceOnUse" '
-        f'patternTransform="rotate(-45)"><rect width="5" height="5" fill="#f2f2f2"/>'
-        f'<line x1="0" y1="0" x2="0" y2="5" stroke="#6b6b6b" stroke-width="1.5"/></pattern>'
-        f'<pattern id="dots-arm-{uid}" width="5" height="5" patternUnits="userSpaceOnUse">'
-        f'<rect width="5" height="5" fill="#a6c8cf"/><circle cx="2.5" cy="2.5" r="1" fill="#111111"/>'
-        f"</pattern></defs>"
+def _defs(uid: str) -> Markup:
+    return _m(
+        '<defs><pattern id="harm-{uid}" width="6" height="6" patternUnits="userSpaceOnUse" '
+        'patternTransform="rotate(45)"><rect width="6" height="6" fill="#ffffff"/>'
+        '<line x1="0" y1="0" x2="0" y2="6" stroke="#9a9a9a" stroke-width="2"/></pattern>'
+        '<pattern id="hatch-arm-{uid}" width="5" height="5" patternUnits="userSpaceOnUse" '
+        'patternTransform="rotate(-45)"><rect width="5" height="5" fill="#f2f2f2"/>'
+        '<line x1="0" y1="0" x2="0" y2="5" stroke="#6b6b6b" stroke-width="1.5"/></pattern>'
+        '<pattern id="dots-arm-{uid}" width="5" height="5" patternUnits="userSpaceOnUse">'
+        '<rect width="5" height="5" fill="#a6c8cf"/><circle cx="2.5" cy="2.5" r="1" fill="#111111"/>'
+        "</pattern></defs>",
+        uid=uid,
     )
 
 
@@ -88,11 +98,31 @@ def _text(
     weight: str = "normal",
     fill: str = INK,
     cls: str | None = None,
-) -> str:
-    c = f' class="{cls}"' if cls else ""
-    return (
-        f'<text x="{_n(x)}" y="{_n(y)}" text-anchor="{anchor}" font-size="{size}" '
-        f'font-weight="{weight}" fill="{fill}"{c}>{_e(s)}</text>'
+) -> Markup:
+    return _m(
+        '<text x="{x}" y="{y}" text-anchor="{anchor}" font-size="{size}" '
+        'font-weight="{weight}" fill="{fill}"{c}>{s}</text>',
+        x=_n(x),
+        y=_n(y),
+        anchor=anchor,
+        size=size,
+        weight=weight,
+        fill=fill,
+        c=_m(' class="{cls}"', cls=cls) if cls else "",
+        s=s,
+    )
+
+
+def _line(x1: float, y1: float, x2: float, y2: float, stroke: str, rest: str = "") -> Markup:
+    """A straight SVG line; `rest` is further attributes, trusted markup written in this module."""
+    return _m(
+        '<line x1="{x1}" y1="{y1}" x2="{x2}" y2="{y2}" stroke="{stroke}"{rest}/>',
+        x1=_n(x1),
+        y1=_n(y1),
+        x2=_n(x2),
+        y2=_n(y2),
+        stroke=stroke,
+        rest=Markup(rest),
     )
 
 
@@ -115,7 +145,7 @@ def interval_chart(
     threshold: float | None = None,
     harmful: str | None = None,
     width: int = 640,
-) -> str:
+) -> Markup:
     """One metric's projected lift (dot), its interval (bar), the optimizer's-curse corrected lift
     (hollow diamond), zero (the baseline) and, for a guardrail, its limit as a dashed line with the
     harmful side hatched. `harmful` is 'above' (a lower-is-better metric must not rise past the
@@ -126,12 +156,14 @@ def interval_chart(
     sx = Scale(min(values), max(values), left, right)
     y_bar, top, bottom = 52.0, 26.0, 78.0
     parts = [
-        f'<svg xmlns="http://www.w3.org/2000/svg" class="chart interval" role="img" '
-        f'viewBox="0 0 {width} 112" width="100%" preserveAspectRatio="xMinYMin meet" '
-        f'aria-labelledby="t-{uid}">',
-        f'<title id="t-{uid}">',
-        _e(_interval_title(estimate, lower, upper, corrected, threshold, fmt)),
-        "</title>",
+        _m(
+            '<svg xmlns="http://www.w3.org/2000/svg" class="chart interval" role="img" '
+            'viewBox="0 0 {width} 112" width="100%" preserveAspectRatio="xMinYMin meet" '
+            'aria-labelledby="t-{uid}"><title id="t-{uid}">{title}</title>',
+            width=width,
+            uid=uid,
+            title=_interval_title(estimate, lower, upper, corrected, threshold, fmt),
+        ),
         _defs(uid),
     ]
     if threshold is not None and harmful in ("above", "below"):
@@ -139,18 +171,20 @@ def interval_chart(
         x0, x1 = (xt, right) if harmful == "above" else (left, xt)
         if x1 > x0:
             parts.append(
-                f'<rect x="{_n(x0)}" y="{_n(top)}" width="{_n(x1 - x0)}" height="{_n(bottom - top)}" '
-                f'fill="url(#harm-{uid})" opacity="0.55"/>'
+                _m(
+                    '<rect x="{x}" y="{y}" width="{w}" height="{h}" fill="url(#harm-{uid})" '
+                    'opacity="0.55"/>',
+                    x=_n(x0),
+                    y=_n(top),
+                    w=_n(x1 - x0),
+                    h=_n(bottom - top),
+                    uid=uid,
+                )
             )
     # axis with ticks at zero and the interval's ends
-    parts.append(
-        f'<line x1="{_n(left)}" y1="{_n(bottom)}" x2="{_n(right)}" y2="{_n(bottom)}" stroke="{RULE}"/>'
-    )
+    parts.append(_line(left, bottom, right, bottom, RULE))
     x_zero = sx(0.0)
-    parts.append(
-        f'<line x1="{_n(x_zero)}" y1="{_n(top)}" x2="{_n(x_zero)}" y2="{_n(bottom + 4)}" '
-        f'stroke="{MUTED}" stroke-width="1"/>'
-    )
+    parts.append(_line(x_zero, top, x_zero, bottom + 4, MUTED, ' stroke-width="1"'))
     parts.append(
         _text(
             x_zero,
@@ -164,9 +198,17 @@ def interval_chart(
     if threshold is not None:
         xt = sx(threshold)
         parts.append(
-            f'<line x1="{_n(xt)}" y1="{_n(top - 8)}" x2="{_n(xt)}" y2="{_n(bottom + 4)}" '
-            f'stroke="{INK}" stroke-width="2" stroke-dasharray="5 3" class="limit" '
-            f'data-value="{threshold!r}"/>'
+            _line(
+                xt,
+                top - 8,
+                xt,
+                bottom + 4,
+                INK,
+                _m(
+                    ' stroke-width="2" stroke-dasharray="5 3" class="limit" data-value="{v}"',
+                    v=repr(threshold),
+                ),
+            )
         )
         parts.append(
             _text(
@@ -180,14 +222,21 @@ def interval_chart(
         )
     xl, xu = sx(lower), sx(upper)
     parts.append(
-        f'<line x1="{_n(xl)}" y1="{_n(y_bar)}" x2="{_n(xu)}" y2="{_n(y_bar)}" stroke="{ACCENT}" '
-        f'stroke-width="6" class="interval-bar" data-lower="{lower!r}" data-upper="{upper!r}"/>'
+        _line(
+            xl,
+            y_bar,
+            xu,
+            y_bar,
+            ACCENT,
+            _m(
+                ' stroke-width="6" class="interval-bar" data-lower="{lo}" data-upper="{hi}"',
+                lo=repr(lower),
+                hi=repr(upper),
+            ),
+        )
     )
     for x in (xl, xu):
-        parts.append(
-            f'<line x1="{_n(x)}" y1="{_n(y_bar - 9)}" x2="{_n(x)}" y2="{_n(y_bar + 9)}" '
-            f'stroke="{ACCENT}" stroke-width="2"/>'
-        )
+        parts.append(_line(x, y_bar - 9, x, y_bar + 9, ACCENT, ' stroke-width="2"'))
     # interval ends written outside the bar, unless that would leave the chart
     parts.append(
         _text(xl, y_bar + 22, fmt(lower), anchor="start" if xl - left < 64 else "end", size=11)
@@ -197,8 +246,14 @@ def interval_chart(
     )
     xe = sx(estimate)
     parts.append(
-        f'<circle cx="{_n(xe)}" cy="{_n(y_bar)}" r="6" fill="{INK}" stroke="#ffffff" '
-        f'stroke-width="1.5" class="estimate" data-value="{estimate!r}"/>'
+        _m(
+            '<circle cx="{cx}" cy="{cy}" r="6" fill="{fill}" stroke="#ffffff" '
+            'stroke-width="1.5" class="estimate" data-value="{v}"/>',
+            cx=_n(xe),
+            cy=_n(y_bar),
+            fill=INK,
+            v=repr(estimate),
+        )
     )
     label_y = y_bar - 13
     parts.append(
@@ -213,10 +268,16 @@ def interval_chart(
     if corrected is not None and math.isfinite(corrected):
         xc = sx(corrected)
         d = 6.0
+        path = f"M{_n(xc)} {_n(y_bar - d)} L{_n(xc + d)} {_n(y_bar)} L{_n(xc)} {_n(y_bar + d)} "
+        path += f"L{_n(xc - d)} {_n(y_bar)} Z"
         parts.append(
-            f'<path d="M{_n(xc)} {_n(y_bar - d)} L{_n(xc + d)} {_n(y_bar)} L{_n(xc)} {_n(y_bar + d)} '
-            f'L{_n(xc - d)} {_n(y_bar)} Z" fill="#ffffff" stroke="{INK}" stroke-width="2" '
-            f'class="corrected" data-value="{corrected!r}"/>'
+            _m(
+                '<path d="{path}" fill="#ffffff" stroke="{ink}" stroke-width="2" '
+                'class="corrected" data-value="{v}"/>',
+                path=path,
+                ink=INK,
+                v=repr(corrected),
+            )
         )
         parts.append(
             _text(
@@ -227,8 +288,8 @@ def interval_chart(
                 size=11,
             )
         )
-    parts.append("</svg>")
-    return "".join(parts)
+    parts.append(Markup("</svg>"))
+    return Markup("").join(parts)
 
 
 def _interval_title(
@@ -254,15 +315,19 @@ def share_bar(
     width: int = 420,
     height: int = 26,
     min_label_px: float = 34,
-) -> str:
+) -> Markup:
     """A stacked bar of arm shares (each in [0, 1], summing to 1). A segment wide enough carries
     'arm 62%'; every segment is also listed in the SVG title and in the page's text beside it."""
     parts = [
-        f'<svg xmlns="http://www.w3.org/2000/svg" class="chart shares" role="img" '
-        f'viewBox="0 0 {width} {height}" width="{width}" height="{height}" aria-labelledby="t-{uid}">',
-        f'<title id="t-{uid}">',
-        _e(", ".join(f"{a} {pct(s)}" for a, s in segments if s > 0)),
-        "</title>",
+        _m(
+            '<svg xmlns="http://www.w3.org/2000/svg" class="chart shares" role="img" '
+            'viewBox="0 0 {width} {height}" width="{width}" height="{height}" '
+            'aria-labelledby="t-{uid}"><title id="t-{uid}">{title}</title>',
+            width=width,
+            height=height,
+            uid=uid,
+            title=", ".join(f"{a} {pct(s)}" for a, s in segments if s > 0),
+        ),
         _defs(uid),
     ]
     x = 0.0
@@ -273,9 +338,17 @@ def share_bar(
         k = j % len(ARM_FILLS)
         fill = f"url(#{ARM_PATTERN[k]}-{uid})" if ARM_PATTERN[k] else ARM_FILLS[k]
         parts.append(
-            f'<rect x="{_n(x)}" y="0" width="{_n(w)}" height="{height}" fill="{fill}" '
-            f'stroke="#ffffff" stroke-width="1" class="segment" data-arm="{_e(arm)}" '
-            f'data-share="{share!r}"/>'
+            _m(
+                '<rect x="{x}" y="0" width="{w}" height="{height}" fill="{fill}" '
+                'stroke="#ffffff" stroke-width="1" class="segment" data-arm="{arm}" '
+                'data-share="{share}"/>',
+                x=_n(x),
+                w=_n(w),
+                height=height,
+                fill=fill,
+                arm=arm,
+                share=repr(share),
+            )
         )
         if w >= min_label_px:
             label = f"{arm} {pct(share)}"
@@ -286,28 +359,43 @@ def share_bar(
                 if ARM_PATTERN[k]:  # a white plate keeps text readable over hatching
                     tw = len(label) * 6.6 + 6
                     parts.append(
-                        f'<rect x="{_n(x + w / 2 - tw / 2)}" y="{_n(height / 2 - 8)}" width="{_n(tw)}" '
-                        f'height="16" fill="#ffffff"/>'
+                        _m(
+                            '<rect x="{x}" y="{y}" width="{w}" height="16" fill="#ffffff"/>',
+                            x=_n(x + w / 2 - tw / 2),
+                            y=_n(height / 2 - 8),
+                            w=_n(tw),
+                        )
                     )
                 parts.append(
                     _text(x + w / 2, height / 2 + 4, label, size=11, fill=bg, weight="bold")
                 )
         x += w
     parts.append(
-        f'<rect x="0.5" y="0.5" width="{width - 1}" height="{height - 1}" fill="none" stroke="{INK}"/>'
+        _m(
+            '<rect x="0.5" y="0.5" width="{w}" height="{h}" fill="none" stroke="{ink}"/></svg>',
+            w=width - 1,
+            h=height - 1,
+            ink=INK,
+        )
     )
-    parts.append("</svg>")
-    return "".join(parts)
+    return Markup("").join(parts)
 
 
-def size_bar(*, share: float, width: int = 90, height: int = 10) -> str:
+def size_bar(*, share: float, width: int = 90, height: int = 10) -> Markup:
     """A small horizontal bar for one share in [0, 1] (cohort size, share of members moved)."""
     w = max(0.0, min(1.0, share)) * width
-    return (
-        f'<svg xmlns="http://www.w3.org/2000/svg" class="chart size" aria-hidden="true" '
-        f'viewBox="0 0 {width} {height}" width="{width}" height="{height}">'
-        f'<rect x="0.5" y="0.5" width="{width - 1}" height="{height - 1}" fill="#ffffff" stroke="{MUTED}"/>'
-        f'<rect x="0" y="0" width="{_n(w)}" height="{height}" fill="{ACCENT}"/></svg>'
+    return _m(
+        '<svg xmlns="http://www.w3.org/2000/svg" class="chart size" aria-hidden="true" '
+        'viewBox="0 0 {width} {height}" width="{width}" height="{height}">'
+        '<rect x="0.5" y="0.5" width="{w1}" height="{h1}" fill="#ffffff" stroke="{muted}"/>'
+        '<rect x="0" y="0" width="{w}" height="{height}" fill="{accent}"/></svg>',
+        width=width,
+        height=height,
+        w1=width - 1,
+        h1=height - 1,
+        muted=MUTED,
+        w=_n(w),
+        accent=ACCENT,
     )
 
 
@@ -320,7 +408,7 @@ def watch_chart(
     harmful: str | None = None,
     width: int = 640,
     height: int = 190,
-) -> str:
+) -> Markup:
     """A guardrail's always-valid interval after each monitoring upload: one vertical bar per upload
     (lower..upper) with its estimate as a dot, the limit as a dashed horizontal line, upload numbers
     on the x axis and the last estimate written beside its dot."""
@@ -330,7 +418,7 @@ def watch_chart(
         if all(math.isfinite(float(h.get(k, math.nan))) for k in ("estimate", "lower", "upper"))
     ]
     if not pts:
-        return '<p class="muted">No monitoring uploads with an estimate yet.</p>'
+        return Markup('<p class="muted">No monitoring uploads with an estimate yet.</p>')
     left, right, top, bottom = 64.0, float(width - 90), 24.0, float(height - 34)
     ys = [0.0] + [float(p["lower"]) for p in pts] + [float(p["upper"]) for p in pts]
     if threshold is not None:
@@ -339,15 +427,16 @@ def watch_chart(
     n = len(pts)
     step = (right - left) / max(n, 1)
     parts = [
-        f'<svg xmlns="http://www.w3.org/2000/svg" class="chart watch" role="img" '
-        f'viewBox="0 0 {width} {height}" width="100%" preserveAspectRatio="xMinYMin meet" '
-        f'aria-labelledby="t-{uid}">',
-        f'<title id="t-{uid}">',
-        _e(
-            f"interval after each of {n} uploads; last {fmt(float(pts[-1]['lower']))} to "
-            f"{fmt(float(pts[-1]['upper']))}"
+        _m(
+            '<svg xmlns="http://www.w3.org/2000/svg" class="chart watch" role="img" '
+            'viewBox="0 0 {width} {height}" width="100%" preserveAspectRatio="xMinYMin meet" '
+            'aria-labelledby="t-{uid}"><title id="t-{uid}">{title}</title>',
+            width=width,
+            height=height,
+            uid=uid,
+            title=f"interval after each of {n} uploads; last {fmt(float(pts[-1]['lower']))} to "
+            f"{fmt(float(pts[-1]['upper']))}",
         ),
-        "</title>",
         _defs(uid),
     ]
     if threshold is not None and harmful in ("above", "below"):
@@ -355,22 +444,34 @@ def watch_chart(
         y0, y1 = (top, yt) if harmful == "above" else (yt, bottom)
         if y1 > y0:
             parts.append(
-                f'<rect x="{_n(left)}" y="{_n(y0)}" width="{_n(right - left)}" height="{_n(y1 - y0)}" '
-                f'fill="url(#harm-{uid})" opacity="0.45"/>'
+                _m(
+                    '<rect x="{x}" y="{y}" width="{w}" height="{h}" fill="url(#harm-{uid})" '
+                    'opacity="0.45"/>',
+                    x=_n(left),
+                    y=_n(y0),
+                    w=_n(right - left),
+                    h=_n(y1 - y0),
+                    uid=uid,
+                )
             )
     y0 = sy(0.0)
-    parts.append(
-        f'<line x1="{_n(left)}" y1="{_n(y0)}" x2="{_n(right)}" y2="{_n(y0)}" stroke="{MUTED}"/>'
-    )
+    parts.append(_line(left, y0, right, y0, MUTED))
     parts.append(_text(left - 6, y0 + 4, "0", anchor="end", size=11, fill=MUTED))
-    parts.append(
-        f'<line x1="{_n(left)}" y1="{_n(bottom)}" x2="{_n(right)}" y2="{_n(bottom)}" stroke="{RULE}"/>'
-    )
+    parts.append(_line(left, bottom, right, bottom, RULE))
     if threshold is not None:
         yt = sy(threshold)
         parts.append(
-            f'<line x1="{_n(left)}" y1="{_n(yt)}" x2="{_n(right)}" y2="{_n(yt)}" stroke="{INK}" '
-            f'stroke-width="2" stroke-dasharray="5 3" class="limit" data-value="{threshold!r}"/>'
+            _line(
+                left,
+                yt,
+                right,
+                yt,
+                INK,
+                _m(
+                    ' stroke-width="2" stroke-dasharray="5 3" class="limit" data-value="{v}"',
+                    v=repr(threshold),
+                ),
+            )
         )
         parts.append(
             _text(
@@ -381,11 +482,10 @@ def watch_chart(
     for i, p in enumerate(pts):
         x = left + step * (i + 0.5)
         lo, hi, est = sy(float(p["lower"])), sy(float(p["upper"])), sy(float(p["estimate"]))
+        parts.append(_line(x, lo, x, hi, ACCENT, ' stroke-width="4" class="watch-interval"'))
         parts.append(
-            f'<line x1="{_n(x)}" y1="{_n(lo)}" x2="{_n(x)}" y2="{_n(hi)}" stroke="{ACCENT}" '
-            f'stroke-width="4" class="watch-interval"/>'
+            _m('<circle cx="{cx}" cy="{cy}" r="3.5" fill="{ink}"/>', cx=_n(x), cy=_n(est), ink=INK)
         )
-        parts.append(f'<circle cx="{_n(x)}" cy="{_n(est)}" r="3.5" fill="{INK}"/>')
         if i % every == 0 or i == n - 1:
             parts.append(_text(x, bottom + 15, f"#{p.get('upload', i + 1)}", size=11, fill=MUTED))
     last = pts[-1]
@@ -400,8 +500,8 @@ def watch_chart(
         )
     )
     parts.append(_text((left + right) / 2, height - 4, "monitoring upload", size=11, fill=MUTED))
-    parts.append("</svg>")
-    return "".join(parts)
+    parts.append(Markup("</svg>"))
+    return Markup("").join(parts)
 
 
 def pct(share: float, digits: int = 0) -> str:

@@ -217,7 +217,7 @@ def version(
         "spec": {
             "experiment": "lesson-length",
             "success_metric": "active_days",
-            "guardrails": GUARDRAILS,
+            "guardrails": copy.deepcopy(GUARDRAILS),
             "method": "chance",
             "allocation": "mixed",
             "baseline": "control",
@@ -225,9 +225,9 @@ def version(
             "notes": "Second try with the ratio guardrail",
         },
         "allocation": {
-            "arms": ARMS,
+            "arms": list(ARMS),
             "matrix": [[c["arms"][a] for a in ARMS] for c in COHORTS],
-            "cohorts": COHORTS,
+            "cohorts": copy.deepcopy(COHORTS),  # a test may change them
         },
         "report": copy.deepcopy(REPORT),
         "diff": None

@@ -6,6 +6,8 @@ from __future__ import annotations
 
 import re
 import xml.etree.ElementTree as ET
+from collections.abc import Callable
+from typing import Any
 
 import pytest
 from web.review_fixtures import ARMS, COHORTS, GUARDRAILS, page
@@ -182,6 +184,88 @@ def test_values_from_the_database_are_escaped() -> None:
     assert "<script>" not in html and "<img" not in html
     root = _tree(html)  # still well-formed
     assert 'level = "<script>alert(1)</script>"' in _text(root)
+
+
+HOSTILE = "<script>alert('x')</script> & <img src=x onerror=\"alert(1)\">"
+
+
+def _plan_name(d: dict[str, Any], _viewer: dict[str, str]) -> None:
+    d["version"]["plan"] = HOSTILE
+
+
+def _cohort_rule(d: dict[str, Any], _viewer: dict[str, str]) -> None:
+    d["version"]["allocation"]["cohorts"][1]["rule"] = HOSTILE
+    d["version"]["diff"]["cohorts"][1]["rule"] = HOSTILE
+
+
+def _arm_name(d: dict[str, Any], _viewer: dict[str, str]) -> None:
+    alloc = d["version"]["allocation"]
+    alloc["arms"][1] = HOSTILE  # written in the stacked bars (SVG), their titles and the table
+    for c in alloc["cohorts"]:
+        c["arms"][HOSTILE] = c["arms"].pop("ten_min")
+
+
+def _notes_and_reason(d: dict[str, Any], _viewer: dict[str, str]) -> None:
+    d["version"]["spec"]["notes"] = HOSTILE
+    d["history"][0]["reason"] = HOSTILE
+
+
+def _author_and_viewer(d: dict[str, Any], viewer: dict[str, str]) -> None:
+    d["version"]["author"] = HOSTILE
+    viewer["name"] = HOSTILE
+
+
+def _comparison_link(d: dict[str, Any], _viewer: dict[str, str]) -> None:
+    d["version"]["spec"]["comparison"] = {"number": 1, "candidate": HOSTILE, "href": HOSTILE}
+
+
+@pytest.mark.parametrize(
+    "plant",
+    [_plan_name, _cohort_rule, _arm_name, _notes_and_reason, _author_and_viewer, _comparison_link],
+    ids=["plan-name", "cohort-rule", "arm-name", "notes-and-reason", "author-and-viewer", "link"],
+)
+def test_a_hostile_string_anywhere_in_the_data_renders_as_text(
+    plant: Callable[[dict[str, Any], dict[str, str]], None],
+) -> None:
+    """The templates' autoescaping, checked from outside: the standard library's XML parser reads
+    the planted string back as text or as an attribute value, never as markup."""
+    data, viewer = page(), {**APPROVER, "owner": "t-approver"}
+    plant(data, viewer)
+    html = pages.version_fragment(data, viewer)
+    assert "<script" not in html and "<img" not in html
+    root = _tree(html)
+    assert not [el.tag for el in root.iter() if el.tag in ("script", "img")]
+    as_text = [el for el in root.iter() if HOSTILE in "".join(el.itertext())]
+    as_value = [el for el in root.iter() if HOSTILE in el.attrib.values()]
+    assert as_text or as_value
+
+
+def test_a_hostile_plan_name_or_author_in_the_index_and_shell_renders_as_text() -> None:
+    plans = [
+        {
+            "plan": HOSTILE,
+            "live_version": None,
+            "revision": 1,
+            "versions": [
+                {
+                    "version": 1,
+                    "status": "draft",
+                    "author": HOSTILE,
+                    "created_at": "2026-03-02T09:14:05+00:00",
+                    "method": "chance",
+                }
+            ],
+        }
+    ]
+    root = _tree(pages.index_fragment(plans, APPROVER))
+    (section,) = _by_attr(root, "class", "plan")
+    assert section.get("data-plan") == HOSTILE
+    assert _text(section).count(HOSTILE) == 2  # the heading and the author
+    shell = pages.shell(
+        title=HOSTILE, fragment="/ui/fragments/plans", crumbs=[("Plans", "/ui/"), (HOSTILE, None)]
+    )
+    assert shell.count("<script") == 1 and "<img" not in shell  # only the page's own script
+    assert shell.count("&lt;script&gt;") == 2  # the title and the crumb
 
 
 def test_watch_chart_draws_one_interval_per_upload_against_the_limit() -> None:

@@ -16,8 +16,9 @@ from __future__ import annotations
 from functools import cache
 from pathlib import Path
 
-from fastapi import APIRouter
+from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from fastapi.templating import Jinja2Templates
 
 from apportion.api.body import LimitedRoute
 from apportion.api.deps import ReaderDep, ServicesDep
@@ -28,6 +29,8 @@ from apportion.usecases import review
 from apportion.web import pages
 
 router = APIRouter(prefix="/ui", include_in_schema=False, route_class=LimitedRoute)
+# Starlette's Jinja2 integration over the pages' own environment (autoescaping on)
+templates = Jinja2Templates(env=pages.environment())
 
 STATIC = Path(__file__).resolve().parents[2] / "web" / "static"
 STATIC_TYPES = {
@@ -46,14 +49,16 @@ HEADERS = {
 }
 
 
-def _html(body: str) -> HTMLResponse:
-    return HTMLResponse(body, headers=HEADERS)
+def _html(request: Request, context: pages.Context) -> HTMLResponse:
+    return templates.TemplateResponse(request, pages.SHELL, context, headers=HEADERS)
 
 
-def _fragment(body: str) -> HTMLResponse:
+def _fragment(request: Request, name: str, context: pages.Context) -> HTMLResponse:
     """A fragment for review.js, which inserts a 200 answer only when it carries this marker and
     the text/html type: no other route (the JSON API, an error) can be rendered into the page."""
-    return HTMLResponse(body, headers={**HEADERS, "X-Apportion-Fragment": "1"})
+    return templates.TemplateResponse(
+        request, name, context, headers={**HEADERS, "X-Apportion-Fragment": "1"}
+    )
 
 
 @cache
@@ -67,42 +72,50 @@ def index_redirect() -> RedirectResponse:
 
 
 @router.get("/", response_class=HTMLResponse)
-def index_page() -> HTMLResponse:
+def index_page(request: Request) -> HTMLResponse:
     return _html(
-        pages.shell(title="Plans", fragment="/ui/fragments/plans", crumbs=[("Plans", None)])
+        request,
+        pages.shell_context(
+            title="Plans", fragment="/ui/fragments/plans", crumbs=[("Plans", None)]
+        ),
     )
 
 
 @router.get("/plans/{plan}/versions/{version}", response_class=HTMLResponse)
-def version_page(plan: PlanKey, version: VersionPath) -> HTMLResponse:
+def version_page(request: Request, plan: PlanKey, version: VersionPath) -> HTMLResponse:
     return _html(
-        pages.shell(
+        request,
+        pages.shell_context(
             title=f"{plan} version {version}",
             fragment=f"/ui/fragments/plans/{plan}/versions/{version}",
             crumbs=[("Plans", "/ui/"), (plan, None), (f"version {version}", None)],
-        )
+        ),
     )
 
 
 @router.get("/fragments/plans", response_class=HTMLResponse)
-def index_fragment(actor: ReaderDep, services: ServicesDep) -> HTMLResponse:
+def index_fragment(request: Request, actor: ReaderDep, services: ServicesDep) -> HTMLResponse:
     return _fragment(
-        pages.index_fragment(
+        request,
+        pages.INDEX,
+        pages.index_context(
             review.plans_index(services),
             {"name": actor.name, "role": actor.role, "owner": actor.identity},
-        )
+        ),
     )
 
 
 @router.get("/fragments/plans/{plan}/versions/{version}", response_class=HTMLResponse)
 def version_fragment(
-    plan: PlanKey, version: VersionPath, actor: ReaderDep, services: ServicesDep
+    request: Request, plan: PlanKey, version: VersionPath, actor: ReaderDep, services: ServicesDep
 ) -> HTMLResponse:
     data = review.review_page(services, plan=plan, version=version)
     return _fragment(
-        pages.version_fragment(
+        request,
+        pages.VERSION,
+        pages.version_context(
             data, {"name": actor.name, "role": actor.role, "owner": actor.identity}
-        )
+        ),
     )
 
 
