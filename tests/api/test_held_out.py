@@ -14,7 +14,7 @@ from support import draft_plan, make_keys, make_settings, scenario_model, wait_j
 from apportion.app import create_app
 from apportion.client.render import to_text, version_view
 from apportion.demo.scenario import GUARDRAILS, SUCCESS
-from apportion.usecases import plans
+from apportion.usecases.plans import report_jobs
 
 
 @pytest.fixture
@@ -61,7 +61,7 @@ def test_a_failed_evaluation_ends_failed_with_its_error(
     def broken(*args: object, **kwargs: object) -> dict:
         raise RuntimeError("fold solver exploded")
 
-    monkeypatch.setattr(plans, "_evaluate", broken)
+    monkeypatch.setattr(report_jobs, "_evaluate", broken)
     keys = make_keys(ho_client.app.state.services)  # type: ignore[attr-defined]
     model_id = scenario_model(ho_client, keys, n=3000)
     v = draft_plan(ho_client, keys, model_id)

@@ -1,0 +1,186 @@
+"""Drafting a plan version: validate the request, build and solve its problem (`solve.py`), compute
+the impact report inline or queue it as a job, and store the version with its audit entry."""
+
+from __future__ import annotations
+
+import hashlib
+from typing import Any
+
+import numpy as np
+
+from apportion.domain import Actor
+from apportion.errors import InvalidInput
+from apportion.optimize.solve import Solution
+from apportion.serving.index import new_salt
+from apportion.store import audit
+from apportion.store import jobs as job_repo
+from apportion.store import plans as repo
+from apportion.store.audit import canonical_json
+from apportion.usecases import comparisons, jobs
+from apportion.usecases.context import Services
+from apportion.usecases.plans.solve import build, full_report, guardrails_of, solve
+from apportion.usecases.plans.source import model_context
+from apportion.usecases.plans.views import get_version
+
+INLINE_MAX_DRAWS = 1000  # larger impact reports run as a job
+
+
+def _holdout(body: dict[str, Any], arm_keys: tuple[str, ...]) -> dict[str, Any]:
+    h = {"share": 0.05, "arm": arm_keys[0], **(body.get("holdout") or {})}
+    if h["arm"] not in arm_keys:
+        raise InvalidInput(
+            f"holdout arm '{h['arm']}' is not an arm of the experiment {list(arm_keys)}",
+            errors=[{"field": "holdout.arm", "problem": "unknown arm"}],
+        )
+    return {"share": float(h["share"]), "arm": h["arm"]}
+
+
+def _allocation_view(x: np.ndarray, ctx: dict[str, Any], shares: np.ndarray) -> dict[str, Any]:
+    rules = ctx["partition"].cohort_rules()
+    arms = list(ctx["specs"].arm_keys)
+    return {
+        "arms": arms,
+        "matrix": np.round(x, 12).tolist(),
+        "cohorts": [
+            {
+                "id": c,
+                "rule": rules[c],
+                "share": float(shares[c]),
+                "arms": {a: float(round(x[c, j], 12)) for j, a in enumerate(arms)},
+            }
+            for c in range(x.shape[0])
+        ],
+    }
+
+
+def _solution_view(sol: Solution) -> dict[str, Any]:
+    return {
+        "objective": sol.objective,
+        "guardrails": sol.guardrail_values,
+        "fractional_cohorts": sol.fractional_cohorts,
+        "binding": sol.binding,
+        "iterations": sol.iterations,
+        "seconds": round(sol.seconds, 4),
+        "diagnostics": sol.diagnostics,
+    }
+
+
+def draft_version(
+    services: Services, *, plan: str, body: dict[str, Any], actor: Actor
+) -> dict[str, Any]:
+    ctx = model_context(services, int(body["model_id"]))
+    specs = ctx["specs"]
+    result = ctx["result"]
+    c = ctx["partition"].n_cohorts
+    shares = np.array([co["share"] for co in result["cohorts"]], dtype=np.float64)
+    if body.get("traffic_mix") is not None:
+        mix = np.asarray(body["traffic_mix"], dtype=np.float64)
+        if mix.shape != (c,) or (mix < 0).any() or abs(mix.sum() - 1) > 1e-6:
+            raise InvalidInput(
+                f"traffic_mix must list {c} non-negative cohort shares summing to 1",
+                errors=[{"field": "traffic_mix", "problem": f"expected {c} shares summing to 1"}],
+            )
+        shares = mix
+    guardrails = guardrails_of(body)
+    method = body.get("method", "chance")
+    spec = {
+        k: body.get(k)
+        for k in (
+            "model_id",
+            "success_metric",
+            "method",
+            "allocation",
+            "baseline",
+            "traffic_mix",
+            "draws",
+            "seed",
+            "notes",
+            "options",
+        )
+    }
+    spec.update(
+        {
+            "guardrails": [g.__dict__ for g in guardrails],
+            "holdout": None,  # checked after the problem, below
+            "method": method,
+            "allocation": body.get("allocation", "mixed"),
+            "baseline": body.get("baseline", "control"),
+            "draws": int(body.get("draws", 200)),
+            "seed": int(body.get("seed", 0)),
+            "experiment": ctx["experiment"],
+        }
+    )
+    problem = build(services, plan=plan, ctx=ctx, spec=spec, shares=shares)
+    spec["holdout"] = _holdout(body, specs.arm_keys)
+    if body.get("comparison") is not None:  # checked before the solve: a bad link stores nothing
+        spec["comparison"] = comparisons.followed(
+            services, model_id=ctx["model_id"], number=int(body["comparison"]),
+            candidate=f"{ctx['model_method']}/{method}",
+        )  # fmt: skip
+    solved = solve(problem, spec)
+    sol = solved.solution
+    job_id = None
+    if spec["draws"] <= INLINE_MAX_DRAWS:
+        report = full_report(ctx, solved, spec)
+    else:
+        report = {"status": "pending", "calibration": solved.calibration_view}
+    folds = services.settings.held_out_folds
+    report["held_out"] = (
+        {"status": "pending", "folds": folds}
+        if folds
+        else {"status": "off", "reason": "APPORTION_HELD_OUT_FOLDS is 0 on this server"}
+    )
+    alloc_view = _allocation_view(sol.allocation, ctx, shares)
+    with services.db.write() as s:
+        repo.ensure_pointer(session=s, plan=plan)  # level 2 (store/db.py): version numbers
+        prev = repo.latest_version(session=s, plan=plan)
+        salt = prev.salt if (prev is not None and not body.get("new_salt")) else new_salt()
+        version = repo.next_version(session=s, plan=plan)
+        content = {"spec": spec, "allocation": alloc_view, "salt": salt}
+        row = repo.add_version(
+            session=s,
+            plan=plan,
+            version=version,
+            model_id=ctx["model_id"],
+            spec=spec,
+            allocation=alloc_view,
+            report={**report, "solution": _solution_view(sol)},
+            salt=salt,
+            content_hash=hashlib.sha256(canonical_json(content).encode()).hexdigest(),
+            author=actor.name,
+            author_owner=actor.identity,
+        )
+        if report.get("status") == "pending":
+            job = job_repo.create_job(
+                session=s, kind="report", payload={"plan": plan, "version": version}
+            )
+            job_id = job.id
+            row.report = {**row.report, "job": f"/v1/jobs/{job.id}"}
+        if folds:
+            ho_job = job_repo.create_job(
+                session=s, kind="held_out", payload={"plan": plan, "version": version}
+            )
+            job_id = job_id or ho_job.id
+            row.report = {
+                **row.report,
+                "held_out": {**report["held_out"], "job": f"/v1/jobs/{ho_job.id}"},
+            }
+        audit.append(
+            s,
+            actor=actor,
+            action="plan.draft",
+            entity="plan_version",
+            entity_id=f"{plan}/{version}",
+            payload={
+                "model_id": ctx["model_id"],
+                "method": method,
+                "allocation": spec["allocation"],
+                "content_hash": row.content_hash,
+                "objective": sol.objective,
+                "binding": sol.binding,
+            },
+            reason=body.get("notes"),
+        )
+    if job_id is not None:
+        jobs.notify(services)
+    return get_version(services, plan=plan, version=version)

@@ -1,0 +1,165 @@
+"""Reading plans: one version (with the share of members whose arm would change against the live
+version), one plan's history, the list of plans."""
+
+from __future__ import annotations
+
+import hashlib
+from typing import Any
+
+import numpy as np
+
+from apportion.errors import NotFound
+from apportion.stats.table import UnitTable
+from apportion.store import plans as repo
+from apportion.usecases import live
+from apportion.usecases.context import Services
+from apportion.usecases.plans.source import model_context, rows_of, table_columns
+
+
+def _diff_against_live(services: Services, row: Any, ptr: Any) -> dict[str, Any] | None:
+    """Share of the readout's members whose arm would change, per cohort of this version."""
+    if ptr is None or ptr.active_version is None:
+        return None
+    key = (row.plan, row.version, ptr.active_version)
+    cached = services.plan_diffs.get(key)
+    if cached is not None:
+        return cached
+    ctx = model_context(services, row.model_id)
+    table: UnitTable = rows_of(ctx).table
+    members, cols = list(table.unit_ids), table_columns(table)
+    mine = live.compile_version(row, ctx["partition"], revision=0).assign_columns(members, cols)
+    current = live.load_compiled(services.db, row.plan)
+    if current is None:
+        return None
+    theirs = current.assign_columns(members, cols)
+    changed = np.array([a.arm != b.arm for a, b in zip(mine, theirs, strict=True)])
+    cohort = np.array([a.cohort for a in mine])
+    c = ctx["partition"].n_cohorts
+    n_c = np.bincount(cohort, minlength=c)
+    ch_c = np.bincount(cohort, weights=changed, minlength=c)
+    rules = ctx["partition"].cohort_rules()
+    out = {
+        "live_version": ptr.active_version,
+        "members": int(table.n),
+        "share_changed": float(changed.mean()) if table.n else 0.0,
+        **{k: v for k, v in rows_of(ctx).describe().items() if k != "rows_used"},
+        "weighted_by": "the readout's members (their features and ids)",
+        "cohorts": [
+            {
+                "id": i,
+                "rule": rules[i],
+                "members": int(n_c[i]),
+                "share_changed": float(ch_c[i] / n_c[i]) if n_c[i] else 0.0,
+            }
+            for i in range(c)
+        ],
+    }
+    services.plan_diffs.put(key, out)
+    return out
+
+
+def version_view(row: Any, *, live_version: int | None) -> dict[str, Any]:
+    return {
+        "plan": row.plan,
+        "version": row.version,
+        "status": row.status,
+        "live": live_version == row.version,
+        "model_id": row.model_id,
+        "author": row.author,
+        "author_owner": row.author_owner,
+        "created_at": row.created_at,
+        "decided_by": row.decided_by,
+        "decided_at": row.decided_at,
+        "decision_reason": row.decision_reason,
+        "content_hash": row.content_hash,
+        "salt_fingerprint": hashlib.sha256(row.salt.encode()).hexdigest()[:12],
+        "spec": row.spec,
+        "allocation": row.allocation,
+        "report": _report_view(row),
+    }
+
+
+def _report_view(row: Any) -> dict[str, Any]:
+    """The stored report; a version rejected while its jobs were pending keeps them pending in
+    storage (it is immutable), so say here that they will not run."""
+    report = row.report or {}
+    if row.status == "rejected":
+        for key in ("held_out",):
+            part = report.get(key)
+            if isinstance(part, dict) and part.get("status") == "pending":
+                report = {**report, key: {**part, "status": "not run",
+                                          "error": "the version was rejected first"}}  # fmt: skip
+    return report
+
+
+def get_version(
+    services: Services, *, plan: str, version: int, with_diff: bool = True
+) -> dict[str, Any]:
+    with services.db.read() as s:
+        row = repo.get_version(session=s, plan=plan, version=version)
+        ptr = repo.pointer(session=s, plan=plan)
+        s.expunge_all()
+    view = version_view(row, live_version=ptr.active_version if ptr else None)
+    if with_diff:
+        view["diff"] = (
+            None
+            if (ptr is None or ptr.active_version in (None, version))
+            else _diff_against_live(services, row, ptr)
+        )
+    return view
+
+
+def get_plan(services: Services, *, plan: str) -> dict[str, Any]:
+    with services.db.read() as s:
+        ptr = repo.pointer(session=s, plan=plan)
+        if ptr is None:
+            raise NotFound(f"no plan '{plan}'")
+        versions = repo.list_versions(session=s, plan=plan)
+        acts = repo.activations(session=s, plan=plan)
+        return {
+            "plan": plan,
+            "live_version": ptr.active_version,
+            "revision": ptr.revision,
+            "auto_rollback": ptr.auto_rollback,
+            "versions": [
+                {
+                    "version": v.version,
+                    "status": v.status,
+                    "model_id": v.model_id,
+                    "author": v.author,
+                    "created_at": v.created_at,
+                    "method": v.spec.get("method"),
+                    "objective": (v.report.get("solution") or {}).get("objective"),
+                }
+                for v in versions
+            ],
+            "activations": [
+                {
+                    "version": a.version,
+                    "revision": a.revision,
+                    "kind": a.kind,
+                    "actor": a.actor,
+                    "reason": a.reason,
+                    "at": a.at,
+                }
+                for a in acts
+            ],
+        }
+
+
+def list_plans(services: Services) -> list[dict[str, Any]]:
+    with services.db.read() as s:
+        out = []
+        for p in repo.list_plans(session=s):
+            versions = repo.list_versions(session=s, plan=p.plan)
+            out.append(
+                {
+                    "plan": p.plan,
+                    "live_version": p.active_version,
+                    "revision": p.revision,
+                    "versions": len(versions),
+                    "latest": versions[-1].version if versions else None,
+                    "latest_status": versions[-1].status if versions else None,
+                }
+            )
+        return out
