@@ -3,7 +3,7 @@ Python standard library (hashlib, json).
 
 The document comes from `GET /v1/plans/{plan}/compiled`; its format is specified in
 docs/compiled-plan.md. This module imports nothing from the rest of the service, so a calling
-system can copy this one file (it lives at `apportion/lookup.py` until the package is renamed).
+system can copy this one file (`apportion/lookup.py`).
 
     plan = Plan.from_json(document_bytes)
     answer = plan.assign("member-17", {"tenure_days": 12, "level": "beginner"})
@@ -38,6 +38,7 @@ __all__ = [
     "FORMAT_VERSION",
     "Answer",
     "LookupError",
+    "Node",
     "Plan",
     "digest_bound",
     "draw",
@@ -104,17 +105,34 @@ def digest_bound(t: float) -> bytes:
 
 
 # ---- the tree ----------------------------------------------------------------------------------
-def _leaf(cohort: int) -> tuple[Any, ...]:
-    return (None, False, 0.0, None, None, None, True, -1, cohort)
+@dataclass(frozen=True, slots=True)
+class Node:
+    """One node of the compiled tree. The walk follows `left` / `right` references, not indices;
+    a leaf has `key` None and its `cohort`; `levels` maps each level a categorical node saw to
+    whether it goes left; `feature` is the index of `key` in the plan's features (for
+    `defaults_used`)."""
+
+    key: str | None
+    numeric: bool
+    threshold: float
+    levels: dict[str, bool] | None
+    left: Node | None
+    right: Node | None
+    default_left: bool
+    feature: int
+    cohort: int
+
+
+def _leaf(cohort: int) -> Node:
+    return Node(None, False, 0.0, None, None, None, True, -1, cohort)
 
 
 def compile_tree(
     nodes: list[Mapping[str, Any]], features: tuple[tuple[str, bool], ...], n_cohorts: int
-) -> tuple[Any, ...]:
-    """The pre-order node list of a document as nested tuples (key, is_numeric, threshold,
-    level->goes_left, left, right, default_left, feature_index, cohort), so the walk follows
-    references, not indices. Raises LookupError for a malformed tree."""
-    built: list[tuple[Any, ...] | None] = [None] * len(nodes)
+) -> Node:
+    """The pre-order node list of a document as linked `Node`s, so the walk follows references,
+    not indices. Raises LookupError for a malformed tree."""
+    built: list[Node | None] = [None] * len(nodes)
     for i in range(len(nodes) - 1, -1, -1):  # pre-order: children come after their parent
         nd = nodes[i]
         if "cohort" in nd:
@@ -137,16 +155,16 @@ def compile_tree(
         if not numeric:
             levels = dict.fromkeys(nd["right_levels"], False)
             levels.update(dict.fromkeys(nd["left_levels"], True))  # left wins
-        built[i] = (
-            key,
-            numeric,
-            float(nd["threshold"]) if numeric else 0.0,
-            levels,
-            left,
-            right,
-            nd["default"] == "left",
-            fi,
-            -1,
+        built[i] = Node(
+            key=key,
+            numeric=numeric,
+            threshold=float(nd["threshold"]) if numeric else 0.0,
+            levels=levels,
+            left=left,
+            right=right,
+            default_left=nd["default"] == "left",
+            feature=fi,
+            cohort=-1,
         )
     if not built or built[0] is None:
         raise LookupError("the document has no nodes")
@@ -272,22 +290,22 @@ class Plan:
         node = self._root
         defaults: list[int] | None = None
         while True:
-            key = node[0]
+            key = node.key
             if key is None:
                 break
             v = get(key)
-            if node[1]:  # numeric: x < threshold goes left; missing or NaN take the default
-                side = None if v is None or v != v else v < node[2]
+            if node.numeric:  # x < threshold goes left; missing or NaN take the default
+                side = None if v is None or v != v else v < node.threshold
             else:  # categorical: a level the node saw; anything else takes the default
-                side = node[3].get(v)
+                side = node.levels.get(v)  # type: ignore[union-attr]  # a split has levels
             if side is None:
-                side = node[6]
+                side = node.default_left
                 if defaults is None:
-                    defaults = [node[7]]
+                    defaults = [node.feature]
                 else:
-                    defaults.append(node[7])
-            node = node[4] if side else node[5]
-        cohort = node[8]
+                    defaults.append(node.feature)
+            node = node.left if side else node.right  # type: ignore[assignment]  # not a leaf
+        cohort = node.cohort
 
         encoded = member.encode("utf-8")
         if self._holdout_bound:

@@ -1,6 +1,6 @@
 """The low-latency assignment path: compiled plan index, salted hashing, registry and poller.
 
-Pure Python + numpy; never touches the database (design §3, §8). `compile_plan` turns a plan
+Pure Python + numpy; never touches the database (DEVELOPERS.md, layers). `compile_plan` turns a plan
 version into an immutable `CompiledPlan`; `PlanRegistry` holds the active ones per process and
 `RevisionPoller` keeps them in step with the store.
 """

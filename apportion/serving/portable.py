@@ -31,32 +31,33 @@ def _canonical(doc: dict[str, Any]) -> bytes:
 def _nodes(cp: CompiledPlan) -> list[dict[str, Any]]:
     """The reachable tree in pre-order (root first, then the left subtree, then the right), each
     node an object; children are indices into the list."""
-    levels_by_code = [{code: lv for lv, code in lut.items()} for lut in cp._level_codes]
+    t = cp.tree
+    levels_by_code = [{code: lv for lv, code in lut.items()} for lut in t.level_codes]
     order: list[int] = []
     stack = [0]
     while stack:
         nd = stack.pop()
         order.append(nd)
-        if not cp._is_leaf[nd]:
-            stack.extend((int(cp.node_right[nd]), int(cp.node_left[nd])))
+        if not t.is_leaf[nd]:
+            stack.extend((int(t.node_right[nd]), int(t.node_left[nd])))
     index = {nd: i for i, nd in enumerate(order)}
     out: list[dict[str, Any]] = []
     for nd in order:
-        if cp._is_leaf[nd]:
-            out.append({"cohort": int(cp.node_cohort[nd])})
+        if t.is_leaf[nd]:
+            out.append({"cohort": int(t.node_cohort[nd])})
             continue
-        fi = int(cp.node_feature[nd])
+        fi = int(t.node_feature[nd])
         node: dict[str, Any] = {"feature": fi}
-        if cp.node_is_numeric[nd]:
-            node["threshold"] = float(cp.node_threshold[nd])
+        if t.node_is_numeric[nd]:
+            node["threshold"] = float(t.node_threshold[nd])
         else:
-            dirs = cp.node_directions[nd]
+            dirs = t.node_directions[nd]
             names = levels_by_code[fi]
             node["left_levels"] = [names[c] for c in sorted(names) if dirs[c] == 1]
             node["right_levels"] = [names[c] for c in sorted(names) if dirs[c] == 0]
-        node["left"] = index[int(cp.node_left[nd])]
-        node["right"] = index[int(cp.node_right[nd])]
-        node["default"] = "left" if cp.node_default_left[nd] else "right"
+        node["left"] = index[int(t.node_left[nd])]
+        node["right"] = index[int(t.node_right[nd])]
+        node["default"] = "left" if t.node_default_left[nd] else "right"
         out.append(node)
     return out
 

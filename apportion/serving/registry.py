@@ -1,4 +1,4 @@
-"""The per-process registry of compiled plans and the poller that keeps it current (design §8).
+"""The per-process registry of compiled plans and the poller that keeps it current.
 
 Readers never lock: the registry holds one immutable mapping (plan -> CompiledPlan) and a swap
 replaces it with a new mapping in a single attribute assignment, which is atomic in CPython, so

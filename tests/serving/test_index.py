@@ -431,10 +431,10 @@ def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path(
     at a threshold, one double below it, at the infinities, NaN and an int beyond 2**53 it must
     send members where the single path (x < threshold goes left) sends them, with the (node,
     code) table and with the comparison walk that large trees use instead."""
-    from apportion.serving import index
+    from apportion.serving import compile as compile_module
 
     if not table:
-        monkeypatch.setattr(index, "TABLE_CELLS", 0)
+        monkeypatch.setattr(compile_module, "TABLE_CELLS", 0)
     rng = np.random.default_rng(5)
     p = random_partition(rng, depth=6, n_cohorts=4)
     cp = _plan(p, rng.dirichlet(np.ones(3), size=4))
@@ -452,5 +452,5 @@ def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path(
             if f.kind == "categorical" and i % 3:
                 r[f.key] = (*f.levels, "unseen")[i % (len(f.levels) + 1)]
     ids = [f"edge-{i}" for i in range(len(rows))]
-    assert (cp._next is None) is not table
+    assert (cp.tree.next_node is None) is not table
     assert cp.assign_batch(ids, rows) == [cp.assign(m, r) for m, r in zip(ids, rows, strict=True)]
