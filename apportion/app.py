@@ -28,9 +28,7 @@ from apportion.api.routes import (
 )
 from apportion.config import Settings, get_settings
 from apportion.observability import RequestContextMiddleware, configure_logging, show_labels
-from apportion.store.db import Database
-from apportion.store.migrate import is_current, upgrade
-from apportion.usecases import live
+from apportion.usecases import live, operations
 from apportion.usecases.auth import KeyCache
 from apportion.usecases.context import Services
 from apportion.usecases.jobs import JobRunner
@@ -45,9 +43,7 @@ DESCRIPTION = (
 
 
 def build_services(settings: Settings) -> Services:
-    db = Database.connect(
-        settings.database_url, pool_size=settings.db_pool_size, blob_uri=settings.blob_uri
-    )
+    db = operations.open_database(settings, pool_size=settings.db_pool_size)
     services = Services(settings=settings, db=db)
     services.keys = KeyCache(db)
     services.plans = live.new_registry()
@@ -58,8 +54,8 @@ def start(services: Services) -> None:
     """Bring a process up: migrations (unless told not to), caches, poller, job worker."""
     settings = services.settings
     if settings.migrate_on_start:
-        upgrade(services.db.engine, blob_uri=settings.blob_uri)
-    if not is_current(services.db.engine):
+        operations.upgrade_database(services.db)
+    if not operations.schema_is_current(services.db):
         log.warning(
             "the database schema is behind; /readyz answers 503 until 'apportion db upgrade' runs"
         )

@@ -10,7 +10,7 @@ from fastapi import Depends, Request, Response
 from fastapi.routing import APIRoute
 from starlette.concurrency import run_in_threadpool
 
-from apportion.store.audit import Actor
+from apportion.domain import Actor
 from apportion.usecases.auth import check_role
 from apportion.usecases.context import Services
 

@@ -11,7 +11,8 @@ from typing import Annotated
 
 import typer
 
-from apportion.cli.common import ROLES, Conn, client_command, console
+from apportion.cli.common import Conn, client_command, console
+from apportion.domain import ROLES
 from apportion.client import render
 
 audit = typer.Typer(help="the audit trail", no_args_is_help=True)
@@ -48,10 +49,9 @@ def check(conn: Conn) -> None:
 @audit.command("verify", help="verify the hash chain in the database (APPORTION_DATABASE_URL)")
 def verify(as_json: Annotated[bool, typer.Option("--json")] = False) -> None:
     from apportion.cli.server import database
-    from apportion.store import audit as audit_store  # the layers work moves this to a use case
+    from apportion.usecases.audit import verify as verify_chain
 
-    with database().read() as s:
-        result = audit_store.verify(s).to_dict()
+    result = verify_chain(database())
     if as_json:
         print(json.dumps(result))
     else:
@@ -69,11 +69,11 @@ def create(
         "the author rule compares owners, so give every person's keys that person's owner)")] = None,
 ) -> None:  # fmt: skip
     from apportion.cli.server import database
-    from apportion.store.migrate import upgrade
     from apportion.usecases.auth import SYSTEM, create_key
+    from apportion.usecases.operations import upgrade_database
 
     db = database()
-    upgrade(db.engine, blob_uri=db.blobs.uri)
+    upgrade_database(db)
     rec, secret = create_key(db, name=name, owner=owner or name, role=role.value, actor=SYSTEM)
     console(stderr=True).print(
         f"created key {rec.id} '{rec.name}' with role {rec.role}; the secret is shown once:"

@@ -32,7 +32,6 @@ CONTENT_TYPES = {
     ".ndjson": "application/x-ndjson",
     ".jsonl": "application/x-ndjson",
 }
-ROLES = ("reader", "analyst", "approver", "admin")
 
 
 class LocalError(Exception):

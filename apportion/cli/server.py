@@ -22,10 +22,9 @@ BACKLOG = 2048
 
 def database() -> Any:
     """The database the settings name (APPORTION_DATABASE_URL, APPORTION_BLOB_URI)."""
-    from apportion.store.db import Database  # the layers work moves this behind a use case
+    from apportion.usecases.operations import open_database
 
-    settings = get_settings()
-    return Database.connect(settings.database_url, blob_uri=settings.blob_uri)
+    return open_database(get_settings())
 
 
 def serve(
@@ -105,14 +104,14 @@ class DbAction(StrEnum):
 
 def db(action: DbAction) -> None:
     """Bring the schema to the newest revision (upgrade), or compare it with it (status)."""
-    from apportion.store.migrate import current_revision, head_revision, upgrade
+    from apportion.usecases.operations import migration_state, upgrade_database
 
     d = database()
     if action is DbAction.upgrade:
-        upgrade(d.engine, blob_uri=d.blobs.uri)
-        print(f"database at revision {current_revision(d.engine)}")
+        upgrade_database(d)
+        print(f"database at revision {migration_state(d)[0]}")
         return
-    cur, head = current_revision(d.engine), head_revision()
+    cur, head = migration_state(d)
     print(f"current {cur}, head {head}: {'up to date' if cur == head else 'behind'}")
     if cur != head:
         raise typer.Exit(1)

@@ -18,6 +18,7 @@ from typing import Any
 from sqlalchemy import event, select
 from sqlalchemy.orm import Session
 
+from apportion.domain import Actor
 from apportion.store.db import insert_or_ignore, utcnow
 from apportion.store.tables import AuditEntry, AuditHead
 
@@ -46,21 +47,6 @@ def _body(e: AuditEntry) -> dict[str, Any]:
         "reason": e.reason,
         "payload": e.payload,
     }
-
-
-@dataclass(frozen=True)
-class Actor:
-    """Who acts: the key's name and role, and the owner (the person or system identity the key
-    belongs to; one owner may hold several keys). Separation of duties compares `identity`."""
-
-    name: str
-    role: str
-    key_id: int | None = None
-    owner: str | None = None
-
-    @property
-    def identity(self) -> str:
-        return self.owner or self.name
 
 
 _PENDING = "audit_pending"

@@ -13,7 +13,6 @@ from apportion.errors import Conflict, NotFound
 from apportion.store.db import utcnow
 from apportion.store.tables import ApiKey
 
-ROLES = ("reader", "analyst", "approver", "admin")
 SECRET_PREFIX = "apk_"
 
 

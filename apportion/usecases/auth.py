@@ -7,13 +7,11 @@ from __future__ import annotations
 import hmac
 import threading
 
+from apportion.domain import ROLE_RANK, ROLES, Actor
 from apportion.errors import Forbidden, Unauthenticated
 from apportion.store import audit
 from apportion.store import keys as keys_store
-from apportion.store.audit import Actor
 from apportion.store.db import Database
-
-ROLE_RANK = {role: i for i, role in enumerate(keys_store.ROLES)}
 
 
 def check_role(actor: Actor, needed: str) -> None:
@@ -74,7 +72,7 @@ def create_key(
         from apportion.errors import InvalidInput
 
         raise InvalidInput(
-            f"role must be one of {', '.join(keys_store.ROLES)}; got '{role}'",
+            f"role must be one of {', '.join(ROLES)}; got '{role}'",
             errors=[{"field": "role", "problem": f"unknown role '{role}'"}],
         )
     with db.write() as s:

@@ -1,4 +1,4 @@
-"""Method comparisons on an experiment's own readout (issue 11 item 5): every candidate (cohort
+"""Method comparisons on an experiment's own readout: every candidate (cohort
 model method x optimizer) is cross-fitted over K folds and scored on the folds its plans never
 saw (apportion/optimize/crossfit.py); the job stores the ordered table and the recommendation.
 
@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from apportion.domain import Actor
 from apportion.errors import InvalidInput, NotFound
 from apportion.optimize.crossfit import (
     COMPARISON_DRAWS,
@@ -25,7 +26,6 @@ from apportion.store import comparisons as repo
 from apportion.store import experiments as exp_repo
 from apportion.store import jobs as job_repo
 from apportion.store import models as model_repo
-from apportion.store.audit import Actor
 from apportion.store.tables import Job, Readout
 from apportion.usecases import jobs
 from apportion.usecases.context import Services

@@ -7,6 +7,7 @@ from typing import Any
 
 import numpy as np
 
+from apportion.domain import Actor
 from apportion.errors import InvalidInput, NotFound
 from apportion.ingest.dataset import read_dataset
 from apportion.stats.estimates import CellMoments
@@ -17,7 +18,6 @@ from apportion.store import audit, blobs
 from apportion.store import experiments as exp_repo
 from apportion.store import jobs as job_repo
 from apportion.store import models as repo
-from apportion.store.audit import Actor
 from apportion.store.db import Database
 from apportion.store.tables import Job
 from apportion.usecases import jobs

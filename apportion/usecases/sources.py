@@ -20,13 +20,13 @@ import pyarrow as pa
 import pyarrow.dataset as pads
 import pyarrow.fs as pafs
 
+from apportion.domain import Actor
 from apportion.errors import Forbidden, InvalidInput, NotFound
 from apportion.ingest.problems import Problems
 from apportion.ingest.stream import dataset_source
 from apportion.store import audit
 from apportion.store import experiments as repo
 from apportion.store import jobs as job_repo
-from apportion.store.audit import Actor
 from apportion.store.tables import Job
 from apportion.usecases import jobs
 from apportion.usecases.context import Services

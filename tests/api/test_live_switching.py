@@ -15,8 +15,8 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, scenario_model
 
+from apportion.domain import Actor
 from apportion.errors import Conflict
-from apportion.store.audit import Actor
 from apportion.usecases import plans as uc
 
 POLL = 0.5  # seconds: the second process's poll interval (the in-process app swaps right after its commit)

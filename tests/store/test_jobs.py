@@ -86,7 +86,7 @@ def test_an_interrupted_fit_that_runs_out_of_attempts_leaves_its_model_failed(db
     (before, the model stayed `running` forever)."""
     from support import EXPERIMENT, rows_csv
 
-    from apportion.store.audit import Actor
+    from apportion.domain import Actor
     from apportion.usecases import experiments, models
 
     services = _services(db_url)

@@ -10,7 +10,7 @@ from fastapi import APIRouter, Query
 from apportion.api.body import GuardedRoute
 from apportion.api.deps import AdminDep, ReaderDep, ServicesDep
 from apportion.api.fields import INT64_MAX, TextQuery
-from apportion.store import audit
+from apportion.usecases import audit as uc
 
 router = APIRouter(prefix="/v1/audit", tags=["audit"], route_class=GuardedRoute)
 
@@ -38,20 +38,17 @@ def list_entries(
     ),
     limit: int = Query(100, ge=1, le=1000),
 ) -> dict[str, Any]:
-    with services.db.read() as s:
-        rows = audit.listing(
-            s,
-            entity=entity,
-            entity_id=entity_id,
-            actor=actor,
-            since=_stamp(since),
-            limit=limit,
-            after=after,
-        )
-    return {"entries": rows, "next_after": rows[-1]["id"] if len(rows) == limit else None}
+    return uc.entries(
+        services.db,
+        entity=entity,
+        entity_id=entity_id,
+        actor=actor,
+        since=_stamp(since),
+        limit=limit,
+        after=after,
+    )
 
 
 @router.get("/verify", summary="Verify the hash chain")
 def verify(_: AdminDep, services: ServicesDep) -> dict[str, Any]:
-    with services.db.read() as s:
-        return audit.verify(s).to_dict()
+    return uc.verify(services.db)

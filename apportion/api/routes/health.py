@@ -11,8 +11,7 @@ from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
 from apportion.api.body import LimitedRoute
 from apportion.api.deps import ServicesDep
 from apportion.observability import REFRESH_AGE, REGISTRY
-from apportion.store.db import ping
-from apportion.store.migrate import is_current
+from apportion.usecases.operations import readiness
 
 router = APIRouter(tags=["operations"], route_class=LimitedRoute)
 
@@ -33,12 +32,7 @@ def healthz() -> dict[str, str]:
     },
 )
 def readyz(services: ServicesDep) -> JSONResponse:
-    checks: dict[str, bool] = {}
-    checks["database"] = ping(services.db)
-    checks["migrations"] = checks["database"] and is_current(services.db.engine)
-    checks["plans_loaded"] = bool(
-        services.plans is not None and services.plans.last_refresh is not None
-    )
+    checks = readiness(services)
     ok = all(checks.values())
     return JSONResponse(
         {"status": "ready" if ok else "not ready", "checks": checks}, status_code=200 if ok else 503

@@ -3,7 +3,7 @@
 Who may see what: the page a link opens is a shell with no plan data, served without a key, so
 reviewers can follow a link from a ticket or chat. Plans are internal, so the data itself (cohort
 rules, effects, the audit trail) comes from fragment routes that need a reader key like every /v1
-route (design §4). The viewer types the key once; the page's script keeps it in sessionStorage (this
+route. The viewer types the key once; the page's script keeps it in sessionStorage (this
 tab only, gone when it closes), sends it as `Authorization: Bearer`, and never puts it in a URL, so
 it does not reach logs, history or referrers. Approve / reject / activate / rollback call the JSON
 lifecycle API with the same key, which enforces the approver role and the author rule.
