@@ -1,4 +1,4 @@
-"""Allocation plans from per-cohort estimates (design §7): numpy/scipy only.
+"""Allocation plans from per-cohort estimates: numpy/scipy only.
 
 problem.py   Guardrail, AllocationProblem, validate_problem, baseline_allocation, build_problem
 solve.py     solve(problem, method, allocation) -> Solution; Infeasible with best reachable values

@@ -1,4 +1,4 @@
-"""A guardrail promise that holds on new members, selection included (decision-methods §1-§2).
+"""A guardrail promise that holds on new members, selection included.
 
 The optimizer selects cohorts and arms on noisy estimates, so the chosen plan's guardrail
 estimates are too optimistic (the optimizer's curse acting on constraints; Smith and Winkler
@@ -9,7 +9,7 @@ estimates are too optimistic (the optimizer's curse acting on constraints; Smith
    DerSimonian-Laird (1986) between-cohort variance (the moment estimator statsmodels'
    `combine_effects(..., method_re="dl")` computes). Control means are left as they are.
 2. Calibration by a parametric bootstrap centred at the shrunk estimates (Efron and Tibshirani
-   1993 applied to the whole selection; decision-methods §2.2): draw cell means around the shrunk
+   1993 applied to the whole selection): draw cell means around the shrunk
    "truth", run the same pipeline (shrink, optimize at the same thresholds) on every draw, and
    record how far the chosen plan's estimated guardrail lift falls short of its lift under the
    bootstrap truth. The calibrated probability that guardrail k holds is

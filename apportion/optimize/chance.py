@@ -1,7 +1,7 @@
-"""Cone-constrained plans by outer approximation (methods §5.3 item 3).
+"""Cone-constrained plans by outer approximation.
 
 Each guardrail reads mu_k(x) + coef_k * sd_k(x) <= rhs_k, a second-order-cone constraint (convex
-for coef_k >= 0; Boyd and Vandenberghe 2004, §4.4.2). `coef` is z_conf for the chance method
+for coef_k >= 0; Boyd and Vandenberghe 2004, section 4.4.2). `coef` is z_conf for the chance method
 (Charnes and Cooper 1959) and the normal CVaR multiplier for the pure stochastic plan. We solve
 a sequence of LPs (Kelley 1960): add a tangent cut for every violated cone, re-solve, stop when
 the worst violation is below `tol` (relative to the allowed harm). Both mu_k and sd_k are

@@ -1,5 +1,4 @@
-"""Honest held-out evaluation of a whole decision pipeline, and the method comparison
-(decision-methods §3 and §6).
+"""Honest held-out evaluation of a whole decision pipeline, and the method comparison.
 
 A candidate is (cohort model method x optimizer). For each of K folds (by unit, stratified by
 arm), the candidate's full pipeline (cohort discovery, estimation, shrinkage, the calibrated
@@ -355,7 +354,7 @@ def _allowance(table: UnitTable, g: Guardrail, base_level: float) -> tuple[float
 
 
 def recommend(table, rows, psi, base, *, success, guardrails) -> dict:
-    """Rule (decision-methods §6): refuse a candidate whose held-out estimate of some guardrail
+    """Rule: refuse a candidate whose held-out estimate of some guardrail
     lies beyond its threshold; call it verified when estimate + z' se stays within for every
     guardrail (z' Bonferroni-adjusted for the number of candidates); among the rest take the
     best held-out success lift, preferring a verified one, and within one paired standard error

@@ -1,7 +1,7 @@
-"""The deterministic program (methods §5.1): maximize the success lift subject to every guardrail
+"""The deterministic program: maximize the success lift subject to every guardrail
 on point estimates, x on the product of simplices. Mixed plans are solved by the HiGHS dual
 simplex (`linprog(method="highs-ds")`, which returns a vertex, so at most as many cohorts are
-mixed as guardrails bind, methods §5.2); pure plans (one arm per cohort) by `milp` with binary x.
+mixed as guardrails bind); pure plans (one arm per cohort) by `milp` with binary x.
 
 The matrices are built once per problem and reused; extra rows (the chance method's tangent cuts)
 are appended per call. Rows and objective are scaled to unit max coefficient for HiGHS.
@@ -16,8 +16,9 @@ import scipy.sparse as sp
 from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 
 from apportion.optimize.linear import Linear
+from apportion.optimize.values import metric_values
 
-TIE_BREAK = 1e-6  # relative weight of the secondary objective that prefers control (methods §5.2)
+TIE_BREAK = 1e-6  # relative weight of the secondary objective that prefers control, so ties keep members where they are
 
 
 @dataclass
@@ -211,8 +212,6 @@ def best_reachable(lin: Linear, problem, k: int) -> tuple[float, np.ndarray]:
     allocation. A single linear (or linear-fractional) objective over a product of simplices is
     minimized at a vertex, one arm per cohort, so this is the LP minimizing that guardrail alone
     solved in closed form; ratio metrics iterate Dinkelbach (1967) to the exact minimum ratio."""
-    from apportion.optimize.linear import metric_values
-
     mom = problem.moments
     spec = problem.metric(lin.keys[k])
     harm = lin.harm[k]

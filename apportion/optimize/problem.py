@@ -1,5 +1,5 @@
 """The allocation problem as the optimizers see it: cohort shares, per-cell component moments,
-metric definitions, the success metric, guardrails and the baseline plan (design §7).
+metric definitions, the success metric, guardrails and the baseline plan.
 
 Shapes: C cohorts, J arms (arm 0 is the control), Q metric components. An allocation x is (C, J)
 with rows on the simplex. Guardrail thresholds follow the shared convention (CONTRACTS.md): the
@@ -14,6 +14,7 @@ from typing import Literal
 import numpy as np
 
 from apportion.errors import InvalidInput
+from apportion.optimize.values import metric_values
 from apportion.stats.estimates import CellMoments
 from apportion.stats.table import MetricSpec
 
@@ -198,8 +199,6 @@ def _single_arm_lifts(
     shares: np.ndarray, moments: CellMoments, metrics: tuple[MetricSpec, ...], arm: int
 ) -> dict[str, float] | None:
     """Point-estimate lifts of `arm`-for-everyone against all-control, or None if a cell is empty."""
-    from apportion.optimize.linear import metric_values
-
     avail = available_cells(moments)
     c, j, _ = moments.mean.shape
     if not avail[:, arm].all() or not avail[:, 0].all():

@@ -1,11 +1,11 @@
-"""Impact report of a plan (issue 4 item 4; design §7, methods §6): projected lifts with standard
+"""Impact report of a plan: projected lifts with standard
 errors, a bootstrap correction for the optimizer's curse, intervals, the probability each
 guardrail holds, and comparison rows (every single arm for everyone, the best single arm that
 meets the guardrails, the plan).
 
 Optimizer's curse (Smith and Winkler 2006): the plan was chosen because its estimated lifts look
 good, so they flatter it. Bias estimate (Efron and Tibshirani 1993, ch. 10, applied to a plug-in
-value; methods §6): draw cell means from their normal sampling distribution around the estimates,
+value): draw cell means from their normal sampling distribution around the estimates,
 re-optimize with the same method on each draw, and average how much each re-optimized plan
 flatters itself on its own draw against the original estimates; subtract that mean.
 Re-optimization: deterministic and chance plans are re-solved by the same LP/MILP (chance: the
@@ -13,7 +13,7 @@ cone cuts are warm-started at the reported plan); stochastic plans by the cone L
 CVaR multiplier, the exact equivalent of the CVaR guardrails under normal estimates, because 200
 runs of stochastic approximation would take minutes. Interval: bias-corrected value +/- z_0.975 se
 (normal, se from the delta method). Cohort discovery is not re-run in the draws, so the
-correction misses the optimism of choosing the cohorts (methods §6 pitfall); the held-out
+correction misses the optimism of choosing the cohorts; the held-out
 evaluation (apportion/stats/evaluation.py) is the honest number and is merged in elsewhere.
 """
 
@@ -25,10 +25,11 @@ import numpy as np
 from scipy.stats import norm
 
 from apportion.optimize.chance import solve_cone
-from apportion.optimize.linear import cvar_multiplier, lift_sd, linearize, metric_values
+from apportion.optimize.linear import cvar_multiplier, linearize
 from apportion.optimize.lp import LPModel, cut_row, simplex_rows
 from apportion.optimize.problem import AllocationProblem, available_cells, validate_problem
 from apportion.optimize.solve import Solution
+from apportion.optimize.values import lift_sd, metric_values
 
 Z95 = float(norm.ppf(0.975))
 # Cut tolerance of the draws' re-optimizations: each re-optimized plan is made exactly feasible by

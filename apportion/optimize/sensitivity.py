@@ -1,4 +1,4 @@
-"""Guardrail prices and the lift at nearby thresholds (issue 11 item 4; decision-methods §5).
+"""Guardrail prices and the lift at nearby thresholds.
 
 For each guardrail, the plan is re-solved with that guardrail's threshold moved by -2, -1, +1, +2
 steps (the others fixed), in its harmful direction: a positive step allows more harm. The step is

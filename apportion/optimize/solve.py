@@ -1,4 +1,4 @@
-"""One entry point for the three plan methods (design §7) and the summary of a plan.
+"""One entry point for the three plan methods and the summary of a plan.
 
 deterministic: the LP/MILP on point estimates. chance: each guardrail holds with its confidence
 under the estimates' normal sampling distribution (cone constraints, outer approximation).
@@ -17,9 +17,11 @@ from scipy.stats import norm
 
 from apportion.errors import Infeasible, InvalidInput
 from apportion.optimize.chance import cone_values, constraint_scale, solve_cone
-from apportion.optimize.linear import Linear, cvar_multiplier, lift_sd, linearize, metric_values
+from apportion.optimize.linear import Linear, cvar_multiplier, linearize
 from apportion.optimize.lp import LPModel, best_reachable
 from apportion.optimize.problem import AllocationProblem, available_cells, validate_problem
+from apportion.optimize.stochastic import csa
+from apportion.optimize.values import lift_sd, metric_values
 
 METHODS = ("deterministic", "chance", "stochastic")
 ALLOCATIONS = ("mixed", "pure")
@@ -231,8 +233,6 @@ def solve_linear(
                 "MILP with tangent cuts instead of rounding stochastic-approximation iterates"
             )
         return cone.x, cone.lp_iterations, diag
-    from apportion.optimize.stochastic import csa
-
     out = csa(lin, seed=seed, options=opts)
     return out.x, out.iterations, out.diagnostics
 

@@ -113,7 +113,7 @@ def csa(lin: Linear, *, seed: int = 0, options: dict | None = None) -> CSAResult
     # Prox geometry: the share-weighted Euclidean distance V(x, z) = 1/2 sum_c p_c ||x_c - z_c||^2,
     # a valid Bregman distance for CSA that makes every cohort move at the same speed whatever
     # its share; the prox step is still a row-wise projection, of x_c - gamma h_c / p_c.
-    # Constant steps per block (methods §4.1): D_x^2 = sum_c p_c = 1 (from a vertex), M^2 the
+    # Constant steps per block (Lan and Zhou 2020, CSA): D_x^2 = sum_c p_c = 1 (from a vertex), M^2 the
     # largest dual norm sum_c ||h_c||^2 / p_c of a normalized objective or guardrail gradient.
     inv_p = np.where(lin.p > 0, 1.0 / np.where(lin.p > 0, lin.p, 1.0), 0.0)[:, None]
     m_obj = np.sqrt(((grad_obj**2) * inv_p).sum())

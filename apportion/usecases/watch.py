@@ -13,18 +13,19 @@ from typing import Any
 
 import numpy as np
 
+from apportion.domain import Actor
 from apportion.errors import ApportionError, InvalidInput, NotFound
 from apportion.ingest.codec import decode_table, encode_table
 from apportion.ingest.parse import parse_units
 from apportion.observability import WATCH_STATUS
-from apportion.stats.estimates import cell_moments, metric_estimates
-from apportion.stats.sequential import absolute_threshold, difference_interval, guardrail_status
+from apportion.stats.monitoring import compare_with_holdout, harmonize_levels, merge_uploads
+from apportion.stats.partition import Partition
 from apportion.stats.table import UnitTable
 from apportion.store import audit, blobs
 from apportion.store import experiments as exp_repo
+from apportion.store import models as model_repo
 from apportion.store import plans as plan_repo
 from apportion.store import watch as repo
-from apportion.store.audit import Actor
 from apportion.usecases import live
 from apportion.usecases.context import Services
 from apportion.usecases.experiments import specs_of
@@ -52,128 +53,6 @@ def _context(services: Services, plan: str, version: int | None) -> dict[str, An
             "pointer_version": ptr.active_version,
             "auto_rollback": dict(ptr.auto_rollback or {}),
         }
-
-
-def _merge(tables: list[tuple[UnitTable, np.ndarray]]) -> tuple[UnitTable, np.ndarray, int]:
-    """Concatenate uploads; keep the last row of each member. Returns (table, holdout, replaced)."""
-    first = tables[0][0]
-    ids = np.concatenate([t.unit_ids for t, _ in tables])
-    order = np.arange(ids.shape[0])
-    # the last occurrence of each id wins: unique on the reversed ids gives last positions
-    _, last_rev = np.unique(ids[::-1], return_index=True)
-    keep = np.sort(order.shape[0] - 1 - last_rev)
-    replaced = int(ids.shape[0] - keep.shape[0])
-    feature_values = {
-        k: np.concatenate([t.feature_values[k] for t, _ in tables])[keep]
-        for k in first.feature_values
-    }
-    columns = {k: np.concatenate([t.columns[k] for t, _ in tables])[keep] for k in first.columns}
-    holdout = np.concatenate([h for _, h in tables])[keep]
-    merged = UnitTable(
-        unit_ids=ids[keep],
-        arm=np.zeros(keep.shape[0], dtype=np.int64),
-        arm_keys=first.arm_keys,
-        design_shares=first.design_shares,
-        features=first.features,
-        feature_values=feature_values,
-        metrics=first.metrics,
-        columns=columns,
-    )
-    return merged, holdout, replaced
-
-
-def _harmonize_levels(tables: list[UnitTable]) -> list[UnitTable]:
-    """Uploads discover categorical levels separately; re-code every upload to one level list."""
-    if len(tables) == 1:
-        return tables
-    out = []
-    union = {
-        f.key: sorted({lv for t in tables for lv in t.feature(f.key).levels})
-        for f in tables[0].features
-        if f.kind == "categorical"
-    }
-    for t in tables:
-        fv = dict(t.feature_values)
-        feats = []
-        for f in t.features:
-            if f.kind == "categorical":
-                levels = union[f.key]
-                remap = np.array([levels.index(lv) for lv in f.levels] + [-1], dtype=np.int32)
-                codes = fv[f.key]
-                fv[f.key] = remap[np.where(codes < 0, len(f.levels), codes)]
-                feats.append(type(f)(f.key, f.kind, tuple(levels)))
-            else:
-                feats.append(f)
-        out.append(
-            UnitTable(
-                t.unit_ids,
-                t.arm,
-                t.arm_keys,
-                t.design_shares,
-                tuple(feats),
-                fv,
-                t.metrics,
-                t.columns,
-            )
-        )
-    return out
-
-
-def evaluate(
-    table: UnitTable, holdout: np.ndarray, spec: dict[str, Any], *, horizon: int
-) -> list[dict[str, Any]]:
-    """Per metric (success first, then guardrails): interval of plan - holdout, threshold and status."""
-    group = np.where(holdout, 0, 1)
-    moments = cell_moments(
-        np.zeros(table.n, dtype=np.int64),
-        1,
-        group,
-        2,
-        table.component_matrix(),
-        table.component_names(),
-    )
-    base = metric_estimates(moments, table.metrics)
-    guardrails = spec["guardrails"]
-    k = max(1, len(guardrails))
-    out: list[dict[str, Any]] = []
-    rows = [(spec["success_metric"], None)] + [(g["metric"], g) for g in guardrails]
-    for key, g in rows:
-        metric = table.metric(key)
-        conf = float(g["confidence"]) if g else 0.95
-        alpha = (1 - conf) / k if g else 1 - conf
-        iv = difference_interval(moments, metric, alpha=alpha, horizon=horizon)
-        m_index = [m.key for m in table.metrics].index(key)
-        holdout_value = float(base.mean[0, 0, m_index])
-        item: dict[str, Any] = {
-            "metric": key,
-            "role": "guardrail" if g else "success",
-            "estimate": _f(iv.estimate),
-            "lower": _f(iv.lower),
-            "upper": _f(iv.upper),
-            "n_plan": iv.n_plan,
-            "n_holdout": iv.n_holdout,
-            "alpha": alpha,
-            "holdout_value": _f(holdout_value),
-            "status": None,
-            "threshold": None,
-        }
-        if g:
-            t_abs = absolute_threshold(
-                float(g["threshold"]), g.get("unit", "absolute"), holdout_value
-            )
-            item["threshold"] = t_abs
-            item["status"] = (
-                guardrail_status(iv, t_abs, metric.direction)
-                if np.isfinite(iv.lower)
-                else "inconclusive"
-            )
-        out.append(item)
-    return out
-
-
-def _f(x: float) -> float | None:
-    x = float(x)
-    return x if np.isfinite(x) else None
 
 
 def upload(
@@ -216,11 +95,11 @@ def upload(
             decode_table(blobs.get_blob(session=s, sha256=u.blob_sha256))
             for u in repo.uploads(session=s, plan=plan, version=row.version)
         ]
-        tables = _harmonize_levels([t for t, _ in previous] + [new_table])
+        tables = harmonize_levels([t for t, _ in previous] + [new_table])
         holdouts = [f["holdout"] for _, f in previous] + [new_holdout]
-        merged, holdout, replaced = _merge(list(zip(tables, holdouts, strict=True)))
+        merged, holdout, replaced = merge_uploads(list(zip(tables, holdouts, strict=True)))
         horizon = int(ar.get("horizon") or DEFAULT_HORIZON)
-        metrics = evaluate(merged, holdout, row.spec, horizon=horizon)
+        metrics = compare_with_holdout(merged, holdout, row.spec, horizon=horizon)
         breached = [m for m in metrics if m["status"] == "breached"]
         result: dict[str, Any] = {
             "rows": int(parsed.n_rows),
@@ -337,9 +216,6 @@ def _evidence_rows(
 
 
 def _partition(services: Services, model_id: int) -> Any:
-    from apportion.stats.partition import Partition
-    from apportion.store import models as model_repo
-
     with services.db.read() as s:
         return Partition.from_dict(
             model_repo.get_model(session=s, model_id=model_id).result["partition"]

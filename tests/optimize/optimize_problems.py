@@ -57,7 +57,7 @@ def random_problem(
     greedy = np.zeros((c, j))
     greedy[np.arange(c), mean[..., 0].argmax(axis=1)] = 1.0
     b = control_allocation(c, j)
-    from apportion.optimize.linear import metric_values
+    from apportion.optimize.values import metric_values
 
     vg = metric_values(greedy, shares, mean, metrics, tuple(comps))
     vb = metric_values(b, shares, mean, metrics, tuple(comps))

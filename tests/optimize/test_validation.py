@@ -116,8 +116,9 @@ def test_best_reachable_of_a_ratio_guardrail_is_the_minimum_ratio():
     # reference: enumeration of the pure plans (a linear-fractional objective over a product of
     # simplices is minimized at a vertex; Charnes and Cooper 1962)
     problem = random_problem(4, n_cohorts=4, n_arms=3, n_guardrails=3)
-    from apportion.optimize.linear import linearize, metric_values
+    from apportion.optimize.linear import linearize
     from apportion.optimize.lp import best_reachable
+    from apportion.optimize.values import metric_values
 
     lin = linearize(problem)
     k = lin.keys.index("g_ratio")
@@ -146,7 +147,7 @@ def test_build_problem_best_arm_baseline():
     arm = int(built.baseline[0].argmax())
     assert (built.baseline[:, arm] == 1).all()
     # reference: the definition; every single arm given to everyone, checked on point estimates
-    from apportion.optimize.linear import metric_values
+    from apportion.optimize.values import metric_values
 
     mom = problem.moments
     base = metric_values(
