@@ -4,7 +4,7 @@ readout), 5 folds, every candidate the service offers (model method x optimizer)
 reference run in the same process: one `causal_tree` fit on the whole table (max_depth 8, no
 pruning: bench/fit.py's and bench/member.py's reference setting).
 
-The target (issue 11): within 600 s on two cores, with progress. Progress goes to stderr (one line
+The target: within 600 s on two cores, with progress. Progress goes to stderr (one line
 per tenth); the figures go to stdout as one JSON line: total seconds, its ratio to the reference,
 fit seconds per model method summed over the folds, seconds per candidate (its share of its model's
 fits plus its optimizer), the recommendation, and the 1-minute load average at the start and end

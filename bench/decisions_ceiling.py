@@ -1,5 +1,5 @@
 """How much of the oracle's lift a 90 %-safe plan can keep at a given noise level, on the
-"opposed" design (decision-methods §7): the oracle LP (scipy linprog, HiGHS) at the harm
+"opposed" design (apportion/demo/designs.py): the oracle LP (scipy linprog, HiGHS) at the harm
 threshold lowered by z_0.9 x sd, where sd is the sampling sd of a treat-everyone plan's harm
 estimate when a share f of the n units estimates the cells: sd = sqrt(var(y1)) sqrt(2 / (f n/4))
 with var(y1) = sigma^2 + 0.2^2 (x5's prognostic term). A perfect partition and no selection

@@ -10,7 +10,7 @@ httpx and prints ONE JSON line:
 - `reference_parse_s`: `parse_units` on the same bytes in this process after the server stopped
   (the reference run in the same process), and `reference_csv_read_s`, a plain pyarrow CSV read
   (the floor any CSV parser here pays);
-- `ratio_target` = upload_s / 20 s (issue 2: upload end to end under 20 s on two cores),
+- `ratio_target` = upload_s / 20 s (the target: upload end to end under 20 s on two cores),
   `ratio_parse` = upload_s / reference_parse_s.
 
     .venv/bin/python bench/ingest.py [--rows 1000000] [--keep-server-log] [--py-spy OUT.svg|OUT.txt]

@@ -2,7 +2,7 @@
 
 Prints ONE JSON line. The reference run is a plain pyarrow CSV read of the same bytes in the same
 process (the floor any CSV parser here has to pay); `ratio_*` are our times over that reference.
-Target from issue 2: upload end to end under 20 s on two cores; parse + validate under ~5 s.
+The target: upload end to end under 20 s on two cores; parse + validate under ~5 s.
 
     .venv/bin/python bench/ingest_parse.py [--rows 1000000] [--repeat 1]
 """

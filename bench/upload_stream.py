@@ -7,7 +7,7 @@ either). Prints ONE JSON line:
 
 - `upload_s`: wall time of the POST, first byte sent to the parsed JSON answer;
 - `server_peak_rss_mb`: the server process's peak resident memory (Linux VmHWM) after the upload;
-- `ratio_memory_target` = server_peak_rss_mb / 1024 (issue 13: under 1 GB whatever the row count);
+- `ratio_memory_target` = server_peak_rss_mb / 1024 (the target: under 1 GB whatever the row count);
 - `reference_stream_read_s`: a plain pyarrow streaming CSV read of the same file in this process
   after the server stopped (the floor any streamed CSV parse pays), and
   `ratio_reference` = upload_s / reference_stream_read_s;

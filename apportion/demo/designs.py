@@ -1,6 +1,6 @@
 """Simulation designs for judging decision methods against a known truth (invented numbers only).
 
-Two designs (decision-methods §7): "aligned", where one arm is best and safe for everyone (a good
+Two designs: "aligned", where one arm is best and safe for everyone (a good
 pipeline returns that arm), and "opposed", where success and harm conflict for some members so a
 personalized plan beats every single arm. Four arms with designed shares 1/4, metrics y0 (success,
 higher is better), y1 (a harm, lower is better, allowed lift 0.03) and y2 (a binary guardrail,

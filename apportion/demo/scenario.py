@@ -1,4 +1,4 @@
-"""The invented demo scenario (shared/scenario.md): a simulator of a four-arm lesson-length test.
+"""The invented demo scenario: a simulator of a four-arm lesson-length test.
 
 Every number is invented. The module draws learners (features), assigns arms (the designed 25 %
 split, or codes given by the caller for post-launch streams) and draws the metric components from
@@ -74,7 +74,7 @@ GUARDRAILS: list[dict[str, Any]] = [
 MISSING_SHARE = 0.01
 _MISSABLE = ("daily_goal_min", "region")
 
-# Base levels under control (invented; calibrated so the population levels match scenario.md).
+# Base levels under control (invented; chosen so the population levels come out as the docstring says).
 _ACTIVE_BASE = 2.16  # days/week before the streak and tenure terms; population mean ~3.0
 _ABANDON_BASE = np.array([0.14, 0.11, 0.09])  # by level; lessons-weighted population ~12 %
 _CANCEL_BASE, _CANCEL_NEW = 0.034, 0.025  # + _CANCEL_NEW when tenure_days < 30; population ~4 %
@@ -212,7 +212,7 @@ def simulate(
     missing_share: float = MISSING_SHARE,
 ) -> UnitTable:
     """A UnitTable of n simulated learners: the designed 25 % split unless `arm` (n,) codes are
-    given; metric components drawn as scenario.md's noise model says."""
+    given; metric components drawn from the noise model above."""
     unit_ids, fv = simulate_features(n, seed, missing_share=missing_share)
     _, arm_rng, out = _streams(seed)
     if arm is None:

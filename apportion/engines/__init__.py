@@ -1,4 +1,4 @@
-"""Fit engines: where a cohort model's passes over the rows run (design §9).
+"""Fit engines: where a cohort model's passes over the rows run.
 
 `memory` keeps the rows in numpy (small readouts); `duckdb` aggregates the readout's Parquet files
 embedded and out of core; `spark` runs the same aggregations on a Spark cluster. The statistics

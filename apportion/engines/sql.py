@@ -5,6 +5,9 @@ A backend (DuckDB, Spark) supplies four things: how to quote a name and a string
 query into a pyarrow table, and how to keep the working table `work` (one row per readout row:
 role `r`, arm code `a`, bin codes `b0..`, metric components `c0..`). Everything else, and so the
 numbers, is the same text for both.
+
+Longer than most modules (about 480 lines) on purpose: splitting the passes apart would put the
+one SQL text both backends share into several files that must stay in step.
 """
 
 from __future__ import annotations

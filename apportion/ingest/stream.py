@@ -7,6 +7,10 @@ spills within a memory limit.
 
 Rows in problems are 1-based data rows of the whole upload (the header is not a row), exactly as
 the whole-upload parser reports them. Pure: pyarrow, numpy, duckdb; no web, no database.
+
+Longer than most modules (about 550 lines) on purpose: the batch loop and the checks that span
+batches share one state (the problems so far, the duplicate-id table, the discovered levels),
+and reading them together is how a reader checks that nothing is counted twice.
 """
 
 from __future__ import annotations

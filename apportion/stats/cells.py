@@ -4,7 +4,7 @@
 t+1, and a copied split whose one side holds no rows is skipped (its rows all go the other way),
 so the result has only non-empty cells and still routes every possible unit to exactly one leaf.
 `merge_small` then joins cells below the minimum with the neighbouring cell whose effects are
-closest (methods §1.3 [S]); several leaves then map to one cohort.
+closest; several leaves then map to one cohort.
 """
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Decision-focused partitions (decision-methods §4.3 and §5): the model methods `two_model`,
+"""Decision-focused partitions: the model methods `two_model`,
 `forest` and `policy_tree`.
 
 All three grow a policy tree (`apportion.stats.policytree`) on the structure half of an honest split,
@@ -9,7 +9,7 @@ with per-unit Lagrangian rewards built from doubly robust scores (`apportion.sta
 where lambda_k are the guardrail prices of the allocation LP solved on the current partition. By LP
 duality the constrained optimum on a partition is min over lambda >= 0 of
 sum_c p_c max_j (mu_cj0 - sum_k lambda_k mu_cjk) + sum_k lambda_k t_k, so for fixed prices the
-partition-dependent part is exactly the policy tree's criterion (§5). A few rounds alternate:
+partition-dependent part is exactly the policy tree's criterion. A few rounds alternate:
 grow on the current prices, estimate the cells of the new partition on the structure half,
 re-solve the LP, average the old and new prices; stop when a partition repeats. The prices can
 cycle between partitions (a split changes which guardrail binds), so the kept partition is the

@@ -1,4 +1,4 @@
-"""Doubly robust (AIPW) scores for J arms with known design shares (decision-methods §3).
+"""Doubly robust (AIPW) scores for J arms with known design shares (Robins, Rotnitzky and Zhao 1994).
 
     Gamma_ijq = mu_jq(X_i) + 1{W_i = j} (Y_iq - mu_jq(X_i)) / e_j,     Delta_ijq = Gamma_ijq - Gamma_i0q
 

@@ -1,5 +1,5 @@
 """Held-out evaluation of a cohort plan: what each metric would be under the plan and under the
-baseline, estimated from randomized rows the plan was not learned on (design §6, methods §7).
+baseline, estimated from randomized rows the plan was not learned on.
 
 Two estimators per metric, both unbiased because the propensities are the known design shares:
 inverse-propensity weighting (Horvitz and Thompson, 1952) and the doubly robust augmented IPW
@@ -63,7 +63,7 @@ def evaluate_policy(
         table, row_fold = _fixed_means(outcome_means, n_cohorts, n_arms, q), np.zeros(n, int)
     residual = values - table[row_fold, cohort, arm]  # Y_i - mu_{W_i}(X_i)
 
-    # per-unit scores, (n, Q) per policy: IPW w_i Y_i and AIPW Gamma_i (methods §7)
+    # per-unit scores, (n, Q) per policy: IPW w_i Y_i and AIPW Gamma_i
     scores = {}
     for name, policy in (("plan", plan), ("baseline", baseline)):
         w = (policy[cohort, arm] / shares[arm])[:, None]
@@ -211,7 +211,7 @@ def _validate(
                 f"{name} rows must be >= 0 and sum to 1; cohorts {bad[:5].tolist()} "
                 f"have sums {sums[bad[:5]].tolist()}"
             )
-        # positivity (methods §7): a policy may only use arms the design could assign
+        # positivity: a policy may only use arms the design could assign
         used = np.flatnonzero((p > 0).any(axis=0) & (shares <= 0))
         if used.size:
             raise InvalidInput(

@@ -1,4 +1,4 @@
-"""The honest criterion of Athey and Imbens (2016, PNAS) for J arms and K metrics (methods §1.1-1.2).
+"""The honest criterion of Athey and Imbens (2016, PNAS) for J arms and K metrics.
 
 Trees grow on a structure half and are estimated on an estimation half. The per-leaf criterion is
 the leaf-count form of AI's honest -EMSE, one term per (treated arm j, metric k),

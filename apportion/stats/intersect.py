@@ -1,4 +1,4 @@
-"""The `intersect` cohort model (methods §1.3 [S]): one honest tree per (treated arm, metric) pair
+"""The `intersect` cohort model: one honest tree per (treated arm, metric) pair
 with that pair's binary Athey-Imbens criterion, their leaves intersected into one exhaustive
 partition (grafted into one tree), cells below the minimum merged into the neighbour with the
 closest effects. Every tree also keeps `min_units` of every arm per leaf, which the final cells

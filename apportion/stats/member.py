@@ -1,4 +1,4 @@
-"""Member-level outcome models (decision-methods §4): predictions mu_jq(X) of every metric component
+"""Member-level outcome models: predictions mu_jq(X) of every metric component
 q under every arm j, made for each row without that row's outcome, so they can feed the doubly
 robust scores of `apportion.stats.dr`.
 
@@ -72,8 +72,8 @@ def arm_mean_outcomes(
 
 @dataclass(frozen=True)
 class BoostSettings:
-    """scikit-learn HistGradientBoostingRegressor settings of the two-model fit (§4.1 defaults,
-    except the row cap, which bounds the cost at a million units)."""
+    """scikit-learn HistGradientBoostingRegressor settings of the two-model fit (scikit-learn's defaults
+    where they serve, except the row cap, which bounds the cost at a million units)."""
 
     learning_rate: float = 0.05
     max_iter: int = 300

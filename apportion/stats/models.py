@@ -4,6 +4,10 @@ Four methods share one result type, `CohortModelFit`: `global` (one cohort), `se
 the caller names), `causal_tree` (one honest tree for all arms and metrics, Athey and Imbens 2016)
 and `intersect` (one honest tree per arm and metric, intersected). Estimates always come from
 `apportion.stats.estimates` on the estimation rows.
+
+Longer than most modules (about 440 lines) on purpose: it is the one table of every method's
+parameters with their bounds (`_Param`) and the dispatcher that validates and runs them, so a
+reader sees every method's knobs in one place.
 """
 
 from __future__ import annotations

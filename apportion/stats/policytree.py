@@ -1,5 +1,5 @@
 """A policy tree: a partition grown to maximize the summed reward of each leaf's best arm
-(decision-methods §4.3 and §5; Athey and Wager 2021, Zhou, Athey and Wager 2023 learn tree
+(Athey and Wager 2021, Zhou, Athey and Wager 2023 learn tree
 policies from doubly robust rewards).
 
     value(S) = max_j sum_{i in S} r_ij,    gain(split of S into L, R) = value(L) + value(R) - value(S)
@@ -10,7 +10,7 @@ score every threshold at once in O(J). Estimation rows are only counted: every a
 `min_units` rows on both sides in both halves, so the leaves can be estimated honestly. A split is
 kept only if its gain exceeds `split_z` standard errors of the gain (the per-unit reward
 differences it buys, d_i = r_i,arm(child) - r_i,arm(parent)): the max over arms is optimistic per
-leaf, and without this rule the criterion rewards splits that separate noise (§5, pitfall 2).
+leaf, and without this rule the criterion rewards splits that separate noise.
 
 The result is a `apportion.stats.tree.Tree`, so it becomes a `Partition` like every other model.
 """

@@ -1,5 +1,5 @@
 """Weakest-link pruning (Breiman et al. 1984, ch. 3) and the K-fold choice of the penalty per leaf
-for the honest criterion (Athey and Imbens 2016; methods §1.1 steps 2-4).
+for the honest criterion (Athey and Imbens 2016).
 
 The penalized criterion is Crit(tree) - lambda * n_leaves. The gain of a split is the criterion
 change it brings, so a branch's improvement over its root is the sum of the gains inside it.

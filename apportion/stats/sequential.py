@@ -10,7 +10,7 @@ estimated variance of Waudby-Smith, Arbour, Sinha, Kennedy and Ramdas (2024, Ann
     estimate +/- sigma_hat * sqrt( 2 (t rho^2 + 1) / (t^2 rho^2) * log( sqrt(t rho^2 + 1) / alpha ) )
 
 with rho^2 = (2 log(1/alpha) + log(1 + 2 log(1/alpha))) / t*, which makes the boundary tightest
-near the expected horizon t* (methods.md section 9.2). With se = sigma_hat / sqrt(t) the radius is
+near the expected horizon t* (Waudby-Smith et al. 2024, above). With se = sigma_hat / sqrt(t) the radius is
 se * sqrt(2 (t rho^2 + 1) / (t rho^2) * log(sqrt(t rho^2 + 1) / alpha)). The same set is the
 acceptance region of the mixture SPRT of Johari, Koomen, Pekelis and Walsh (2022) with mixing
 variance tau^2 = rho^2 sigma_hat^2; we compute the boundary form, not the likelihood ratio.
@@ -69,7 +69,7 @@ def _check(alpha: float, horizon: int) -> None:
 
 def rho_squared(alpha: float, horizon: int) -> float:
     """The mixture precision rho^2 that makes the boundary tightest near `horizon` units
-    (methods.md section 9.2)."""
+    (Waudby-Smith et al. 2024, above)."""
     _check(alpha, horizon)
     la = np.log(1.0 / alpha)
     return float((2.0 * la + np.log1p(2.0 * la)) / horizon)

@@ -2,7 +2,7 @@
 
 A mismatch between the counts and the designed shares signals broken assignment or logging, and
 makes every estimate downstream suspect, so a readout that fails it is refused unless overridden.
-Pearson's chi-square goodness-of-fit test of the counts against N * shares (methods §8).
+Pearson's chi-square goodness-of-fit test of the counts against N * shares (Fabijan et al. 2019, "Diagnosing Sample Ratio Mismatch", KDD).
 """
 
 from __future__ import annotations
@@ -15,7 +15,7 @@ from scipy import stats
 
 from apportion.errors import InvalidInput
 
-DEFAULT_THRESHOLD = 0.001  # common practice; see methods §8
+DEFAULT_THRESHOLD = 0.001  # common practice (from memory: SRM alarms at p < 0.001 or stricter)
 
 
 @dataclass(frozen=True)

@@ -1,10 +1,13 @@
-"""Histogram-based honest causal tree for J arms and K metrics (Athey and Imbens 2016; methods §1.2).
+"""Histogram-based honest causal tree for J arms and K metrics (Athey and Imbens 2016).
 
 The tree grows level by level on the structure rows. For every feature, one `np.bincount` per
 statistic (count, sum and sum of squares of each metric, per arm) gathers the per-bin sufficient
 statistics of all nodes of the level at once; cumulative sums over the bins then score every
 threshold of every node at once. Estimation rows are only counted (every arm must keep
 `min_units` rows on both halves), their outcomes are never looked at while growing.
+
+Longer than most modules (about 400 lines) on purpose: the grower, its per-level histogram pass
+and the tree type it returns are one algorithm, read together.
 """
 
 from __future__ import annotations

@@ -1,5 +1,9 @@
 """Declaring experiments and storing readouts: validated whole, stored with their audit entry in one
-transaction, immutable and content-hashed (the same bytes twice give the same version)."""
+transaction, immutable and content-hashed (the same bytes twice give the same version).
+
+Longer than most modules (about 510 lines): the declaration's validation and the readout's
+upload share the experiment's specs (`specs_of`) and its view; a split into declaring and
+readouts is the next step once the typed commands and views of `apportion/schemas` settle."""
 
 from __future__ import annotations
 
@@ -14,6 +18,7 @@ from typing import Any
 import numpy as np
 import pyarrow.fs as pafs
 
+from apportion.domain import Actor
 from apportion.errors import InvalidInput
 from apportion.ingest.dataset import MANIFEST, Manifest, read_dataset
 from apportion.ingest.formats import media_format
@@ -24,7 +29,6 @@ from apportion.stats.srm import sample_ratio_check
 from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
 from apportion.store import audit, blobs
 from apportion.store import experiments as repo
-from apportion.store.audit import Actor
 from apportion.store.db import Database
 
 RESERVED_COLUMNS = {"unit_id", "arm", "member_id", "holdout"}
