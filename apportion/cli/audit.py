@@ -12,8 +12,8 @@ from typing import Annotated
 import typer
 
 from apportion.cli.common import Conn, client_command, console
-from apportion.domain import ROLES
 from apportion.client import render
+from apportion.domain import ROLES
 
 audit = typer.Typer(help="the audit trail", no_args_is_help=True)
 keys = typer.Typer(help="API keys", no_args_is_help=True)
