@@ -1,4 +1,4 @@
-"""The audit chain (issue 2 item 6)."""
+"""The audit chain."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""API keys and roles (issue 2 item 5)."""
+"""API keys and roles."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Method comparisons through the HTTP API (issue 11 item 5): a job with progress, the ordered
+"""Method comparisons through the HTTP API: a job with progress, the ordered
 held-out table and the recommendation, the 4xx cases with nothing stored, roles, and the draft's
 link to the comparison it follows. Small readouts, two or three folds, a short candidate list."""
 

@@ -1,5 +1,5 @@
-"""Concurrent writers in one process (threads through the HTTP app), on SQLite and PostgreSQL
-(issue 10, items 2 and 3): every request gets its correct answer (never a 5xx), numbers never
+"""Concurrent writers in one process (threads through the HTTP app), on SQLite and PostgreSQL:
+every request gets its correct answer (never a 5xx), numbers never
 collide, the same content is stored once, and the audit chain holds one entry per transition.
 
 The two-process version of these races is tests/races/; these are the fast reproducers."""

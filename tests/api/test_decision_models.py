@@ -1,5 +1,5 @@
 """A decision-focused model through the whole path: fit as a job, draft a plan on it, look members
-up: everything downstream of the partition works unchanged (issue 11 items 3 and 4)."""
+up: everything downstream of the partition works unchanged."""
 
 from __future__ import annotations
 

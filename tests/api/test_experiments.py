@@ -1,4 +1,4 @@
-"""Experiments and readouts through the HTTP API (issue 2 item 7)."""
+"""Experiments and readouts through the HTTP API."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""What the service shows without a key (issue 10 item 11): /metrics labels are configurable,
+"""What the service shows without a key: /metrics labels are configurable,
 no benchmark route ships, /docs is off by default, and a request without a valid key gets 401
 before its body is looked at."""
 

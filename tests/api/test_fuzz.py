@@ -1,5 +1,5 @@
 """Schema fuzzing: schemathesis generates requests for every operation of the app's own OpenAPI
-document and checks each answer against that document (issue 10, the standing suite).
+document and checks each answer against that document.
 
 Checks, from schemathesis itself: no 5xx (`not_a_server_error`), every status code is one the
 document declares for the operation (`status_code_conformance`), the content type is a declared one
@@ -36,7 +36,7 @@ EXAMPLES = 12  # per operation and key: 28 operations x 2 keys x 12 = at most 67
 # Defects the fuzzer finds that belong to another change in flight, listed so that this suite can
 # run now without hiding them: each must still fail exactly so, and the test fails as soon as one
 # is fixed (then delete its line). Integers beyond 64 bits in a path reach SQLite and give 500
-# (issue 10 item 8, being fixed with the bounds on every request integer).
+# (bounded on every request integer).
 KNOWN_DEFECTS: dict[tuple[str, str], str] = {}
 CHECKS = [
     not_a_server_error,

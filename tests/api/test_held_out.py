@@ -1,4 +1,4 @@
-"""A draft's cross-fitted held-out evaluation runs as its own job (issue 11 item 2), so a draft
+"""A draft's cross-fitted held-out evaluation runs as its own job, so a draft
 answers without refitting its model once per fold; the job writes the figures into the version's
 report, audits it, and a failure says so instead of staying pending. The estimator itself is
 checked in tests/optimize/test_crossfit.py."""

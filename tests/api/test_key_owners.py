@@ -1,4 +1,4 @@
-"""Separation of duties by key owner, and the last admin key (issue 10 item 10)."""
+"""Separation of duties by key owner, and the last admin key."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Concurrency and rollback under load (issue 5): racing activations, switching the live version
+"""Concurrency and rollback under load: racing activations, switching the live version
 back and forth while assignments flow, and a second server process sharing the database."""
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Cohort models fitted as jobs through the HTTP API (issue 3)."""
+"""Cohort models fitted as jobs through the HTTP API."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Role matrix: every route with every role and with no key (issue 5). Roles are ordered
+"""Role matrix: every route with every role and with no key. Roles are ordered
 reader < analyst < approver < admin; a key below the route's role gets 403, no key 401."""
 
 from __future__ import annotations

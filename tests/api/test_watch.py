@@ -1,4 +1,4 @@
-"""The guardrail watch through the HTTP API (issue 7): uploads accumulate, duplicates count once,
+"""The guardrail watch through the HTTP API: uploads accumulate, duplicates count once,
 holdout flags are checked against the lookup, and a confirmed harm rolls the plan back by itself."""
 
 from __future__ import annotations

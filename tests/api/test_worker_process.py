@@ -1,4 +1,4 @@
-"""`apportion worker` runs fits in a separate process that claims jobs from the database (issue 3)."""
+"""`apportion worker` runs fits in a separate process that claims jobs from the database."""
 
 from __future__ import annotations
 

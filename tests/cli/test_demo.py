@@ -23,7 +23,9 @@ def test_demo_end_to_end(tmp_path: Path) -> None:
     assert Path(r["database"]).parent == tmp_path and Path(r["database"]).name.startswith("demo-")
 
     # the truth, from the scenario's effect functions (oracle: scipy linprog on the true effects)
-    assert r["best_single_arm"] == "ten_min"  # scenario.md: the best safe single arm
+    assert (
+        r["best_single_arm"] == "ten_min"
+    )  # the invented scenario's best safe single arm (apportion/demo/scenario.py)
     assert r["plan_success_true"] > r["best_single_success_true"]
     assert r["plan_success_true"] <= r["oracle_success_true"] + 1e-9  # nothing beats the oracle
     assert r["plan_meets_true_guardrails"]

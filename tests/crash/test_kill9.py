@@ -1,4 +1,4 @@
-"""The kill -9 suite (issue 10), on SQLite and PostgreSQL: a server process is killed with SIGKILL
+"""The kill -9 suite, on SQLite and PostgreSQL: a server process is killed with SIGKILL
 while readout uploads stream in, a fit job runs and activations and rollbacks race; after each
 restart the audit chain verifies, nothing is half-stored (tests/writers.py `assert_consistent`),
 every request that was answered with success is stored, and the interrupted job and its model

@@ -1,4 +1,4 @@
-"""The invented demo scenario: reproducible draws, calibration to scenario.md, the designed split,
+"""The invented demo scenario: reproducible draws, calibration to its stated levels (apportion/demo/scenario.py), the designed split,
 the oracle plan and the upload format."""
 
 from __future__ import annotations
@@ -13,7 +13,7 @@ from scipy import stats
 from apportion.demo import scenario as sc
 from apportion.stats.estimates import cell_moments, metric_estimates
 
-N = 200_000  # scenario.md's default demo size
+N = 200_000  # the demo's default size
 
 
 @pytest.fixture(scope="module")
@@ -97,7 +97,7 @@ def test_split_p_values_are_uniform_over_seeds():
 def test_control_base_rates_match_scenario_md(table):
     fv = table.feature_values
     truth = sc.true_metric_values(fv, _all_on(table.n, 0))
-    # The invented targets of scenario.md ("about"): calibration tolerances of a few per cent.
+    # The invented targets the scenario was tuned to ("about"): calibration tolerances of a few per cent.
     assert truth["active_days"] == pytest.approx(3.0, abs=0.05)
     assert truth["abandon_rate"] == pytest.approx(0.12, abs=0.005)
     assert truth["cancelled"] == pytest.approx(0.04, abs=0.002)
@@ -137,14 +137,14 @@ def test_simulated_effects_match_true_lifts(table):
 
 def test_single_arm_truths_match_the_worked_numbers_of_scenario_md(oracle):
     single = oracle["single_arm_lifts"]
-    # scenario.md: adaptive for everyone +0.17 active days and +1.5 points abandonment
+    # the scenario's design: adaptive for everyone +0.17 active days and +1.5 points abandonment
     assert single["adaptive"]["active_days"] == pytest.approx(0.17, abs=0.01)
     assert single["adaptive"]["abandon_rate"] == pytest.approx(0.015, abs=0.001)
     assert single["adaptive"]["abandon_rate"] > oracle["limits"]["abandon_rate"]
-    # scenario.md: the best single arm that holds every guardrail is ten_min, about +0.09
+    # the scenario's design: the best single arm that holds every guardrail is ten_min, about +0.09
     assert oracle["best_single_arm"] == "ten_min"
     assert oracle["best_single_lifts"]["active_days"] == pytest.approx(0.09, abs=0.01)
-    # scenario.md: the oracle reaches about +0.22 with the abandonment guardrail binding
+    # the scenario's design: the oracle reaches about +0.22 with the abandonment guardrail binding
     assert oracle["lifts"]["active_days"] == pytest.approx(0.22, abs=0.01)
     assert oracle["lifts"]["abandon_rate"] == pytest.approx(
         oracle["limits"]["abandon_rate"], abs=1e-6
@@ -165,7 +165,7 @@ def test_oracle_beats_every_safe_single_arm_and_meets_the_true_guardrails(table,
         assert lifts[key] <= limit + 1e-9, key
     assert lifts["active_days"] == pytest.approx(oracle["lifts"]["active_days"], rel=1e-9)
     # better than every single arm, even the unsafe adaptive-for-everyone (+0.17), and more than
-    # twice the best safe one (scenario.md: the safe arm gets about 42 % of the oracle)
+    # twice the best safe one (by design: the safe arm gets about 42 % of the oracle)
     for arm, single in oracle["single_arm_lifts"].items():
         assert lifts["active_days"] > single["active_days"] + 0.02, arm
     assert lifts["active_days"] > 2 * oracle["best_single_lifts"]["active_days"]

@@ -1,4 +1,4 @@
-"""The calibrated guardrail promise (issue 11 item 1): shrinkage, the bootstrap calibration and
+"""The calibrated guardrail promise: shrinkage, the bootstrap calibration and
 the refusal, checked against statsmodels and against a known truth over many seeds."""
 
 from __future__ import annotations
@@ -58,7 +58,7 @@ def test_shrinkage_is_the_normal_normal_posterior_mean():
 
 
 def _truth(c: int) -> np.ndarray:
-    """(C, J, 3) true lifts: four member types refined into c cohorts (decision-methods §0 cell
+    """(C, J, 3) true lifts: four member types refined into c cohorts (the cell
     model, invented numbers). Arm 3 wins on success but breaks the harm limit; arm 1 is safe."""
     types = np.array(
         [
@@ -105,7 +105,7 @@ def test_calibrated_promise_holds_on_the_cell_model_where_the_plain_chance_plan_
     # truth known (the cell model above, 16 cohorts, estimates drawn from their exact normal
     # sampling law); breach = the chosen plan's true harm lift above its limit. The plain chance
     # plan (z * sd margin only) is the control arm of this check: selection makes it break far
-    # more often than 10 % (decision-methods §1.4 table: 0.80 at C = 16), so the test can fail.
+    # more often than 10 % (an earlier simulation of this design, not re-run here: about 0.80 at C = 16), so the test can fail.
     truth = _truth(16)
     breaches, plain, kept = 0, 0, []
     for seed in range(SEEDS):

@@ -62,7 +62,7 @@ def test_chance_plan_holds_each_guardrail_with_its_confidence(seed):
 
 
 def test_chance_constraint_is_exactly_met_after_the_final_scaling():
-    # methods §5.3 item 3: the last cut LP point is moved toward the baseline until feasible
+    # the last cut LP point is moved toward the baseline until feasible
     problem = random_problem(3, n_cohorts=10, n_arms=4, n_guardrails=4)
     sol = solve(problem, "chance")
     from apportion.optimize.chance import cone_values

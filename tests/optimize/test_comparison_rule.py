@@ -1,4 +1,4 @@
-"""The comparison's table order and recommendation rule (decision-methods §6), and an external
+"""The comparison's table order and recommendation rule, and an external
 check of the held-out doubly robust figure against statsmodels."""
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Cross-fitted held-out evaluation and the method comparison (issue 11 items 2 and 5)."""
+"""Cross-fitted held-out evaluation and the method comparison."""
 
 from __future__ import annotations
 

@@ -15,7 +15,7 @@ from apportion.optimize.solve import solve
 
 
 def independent_lp(problem: AllocationProblem):
-    """The LP of design §7 written out directly from the moments (no apportion.optimize code):
+    """The allocation LP written out directly from the moments (no apportion.optimize code):
     rows for mean metrics sum_c p_c sum_j x_cj m_cj; a ratio guardrail as
     N(x) - (R(b) + t) D(x) <= 0; higher-is-better rows flipped; relative
     thresholds t/100 * M(b)."""
@@ -57,7 +57,7 @@ def independent_lp(problem: AllocationProblem):
 
 @pytest.mark.parametrize("seed", range(6))
 def test_deterministic_matches_scipy_linprog_on_independent_matrices(seed):
-    # reference: scipy.optimize.linprog (HiGHS) on matrices built in this test from design §7
+    # reference: scipy.optimize.linprog (HiGHS) on matrices built in this test from the moments
     problem = random_problem(seed, n_cohorts=7, n_arms=4, n_guardrails=5)
     sol = solve(problem, "deterministic")
     ref = independent_lp(problem)
@@ -108,7 +108,7 @@ def test_pure_equals_brute_force_enumeration(seed):
 
 
 def test_vertex_has_at_most_as_many_fractional_cohorts_as_binding_guardrails():
-    # Bertsimas and Tsitsiklis (1997) ch. 2, basic feasible solutions (methods §5.2): with slacks
+    # Bertsimas and Tsitsiklis (1997) ch. 2, basic feasible solutions: with slacks
     # the LP has C + K equality rows, so a vertex has at most C + K positive variables; each
     # non-binding guardrail uses one (its slack) and each cohort at least one x, which leaves at
     # most K_binding cohorts with more than one positive arm.
@@ -128,7 +128,7 @@ def test_vertex_has_at_most_as_many_fractional_cohorts_as_binding_guardrails():
 
 
 def test_tie_break_prefers_control():
-    # common practice (methods §5.2): with arms identical to control, the plan stays on control
+    # common practice: with arms identical to control, the plan stays on control
     problem = random_problem(7, n_cohorts=4, n_arms=3, n_guardrails=2)
     mom = problem.moments
     mean = mom.mean.copy()

@@ -20,7 +20,7 @@ from apportion.stats.table import MetricSpec
 
 
 def test_optimism_equals_expected_maximum_of_three_normals():
-    # Smith and Winkler (2006); methods §6: three arms with equal estimates, independent errors
+    # Smith and Winkler (2006): three arms with equal estimates, independent errors
     # of sd sigma; the re-optimized plan picks the arm with the largest draw, so its optimism
     # against the original estimates is E[max of 3 N(0, 1)] sigma - E[control error] =
     # 3 / (2 sqrt(pi)) sigma = 0.8463 sigma (the n = 3 order statistic, a textbook closed form).

@@ -1,4 +1,4 @@
-"""The invented demo scenario (shared/scenario.md): plans fitted on 200,000 simulated learners
+"""The invented demo scenario: plans fitted on 200,000 simulated learners
 against the truth the simulator exposes (true effect functions, the oracle plan on them)."""
 
 from __future__ import annotations
@@ -69,7 +69,7 @@ def test_chance_plan_is_more_cautious_than_the_point_estimate_plan(outcomes):
 
 @pytest.mark.slow
 def test_chance_plan_reaches_80_percent_of_the_oracle(outcomes):
-    # issue 4: >= 80 % of the oracle's true lift, above the best safe single arm, no true guardrail
+    # the target: >= 80 % of the oracle's true lift, above the best safe single arm, no true guardrail
     # broken, in at least 9 of 10 seeds, at the scenario's guardrails (confidence 0.8 each; see
     # scenario.GUARDRAILS for why not 0.95, which reached 80 % in 3 of 10 seeds). Truth: the
     # scenario's effect functions and its oracle LP (scipy linprog), independent of the optimizer.

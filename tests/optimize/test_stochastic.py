@@ -16,7 +16,7 @@ from apportion.optimize.solve import solve
 @pytest.mark.parametrize(("seed", "sampler"), [(2, "cells"), (5, "marginal")])
 def test_tail_widened_to_the_mean_reaches_the_lp_optimum(seed, sampler):
     # Lan and Zhou (2020): CSA's optimality gap and violation are O(1/sqrt(N)); with the tail
-    # widened to 1 the CVaR is the mean and the problem is the deterministic LP (methods §4.2).
+    # widened to 1 the CVaR is the mean and the problem is the deterministic LP.
     # N = 40,000 steps, 1% of the LP optimum (observed gaps 0.1-0.7% on seeds 0-7).
     problem = random_problem(seed, n_cohorts=6, n_arms=3, n_guardrails=2)
     lp = solve(problem, "deterministic")

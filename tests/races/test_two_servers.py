@@ -1,4 +1,4 @@
-"""The race suite (issue 10): two server processes on one PostgreSQL database, requests released
+"""The race suite: two server processes on one PostgreSQL database, requests released
 together by a barrier and spread over both processes. Readout uploads (distinct files and the same
 bytes), guardrail-watch uploads, activations and rollbacks of one plan: 0 answers of 5xx, exactly
 one winner wherever callers compete for the same revision, and the audit chain holds exactly one

@@ -1,9 +1,9 @@
 """Salted draws: range, known answers, uniformity, independence of salts and purposes, stability
-across processes. Methods §10 (bins + chisquare, kstest, chi2_contingency; p > 0.001 with fixed ids).
+across processes. Common practice (bins + chisquare, kstest, chi2_contingency; p > 0.001 with fixed ids).
 
 With fixed ids and salts every p-value below is a fixed number, so these tests are deterministic;
 for a sound hash each check would fall under 0.001 with probability 0.001 (the threshold is the one
-Methods §10 prescribes, common practice for SRM-style checks).
+common practice for SRM-style checks).
 """
 
 from __future__ import annotations
@@ -27,7 +27,7 @@ ROOT = Path(__file__).resolve().parents[2]
 
 
 def _ids(n: int = N) -> list[str]:
-    # three id styles, as Methods §10 suggests: sequential, seeded UUID-like hex, e-mail-like
+    # three id styles, common practice: sequential, seeded UUID-like hex, e-mail-like
     rng = np.random.default_rng(11)
     third = n // 3
     seq = [str(i) for i in range(third)]
@@ -61,7 +61,7 @@ def test_batch_draws_equal_single_draws_bit_for_bit():
 def test_draws_in_unit_interval_and_uniform():
     u = _draws("bucket-test", "arm", _ids())
     assert u.min() >= 0.0 and u.max() < 1.0
-    # Methods §10 step 1: 100 equal bins (expected 2000 >= 5, Cochran), chisquare df = 99
+    # 100 equal bins (expected 2000 >= 5, Cochran), chisquare df = 99
     counts = np.bincount((u * 100).astype(int), minlength=100)
     assert stats.chisquare(counts).pvalue > 0.001
     assert stats.kstest(u, "uniform").pvalue > 0.001
@@ -73,7 +73,7 @@ def test_two_salts_are_independent():
     b = (_draws("salt-two", "arm", ids) * 10).astype(int)
     table = np.zeros((10, 10), dtype=int)
     np.add.at(table, (a, b), 1)
-    # Methods §10 step 2: 10 x 10 cross-tabulation, scipy.stats.chi2_contingency
+    # 10 x 10 cross-tabulation, scipy.stats.chi2_contingency
     assert stats.chi2_contingency(table).pvalue > 0.001
     # and the two purposes under one salt (holdout vs arm) are independent too
     h = (_draws("salt-one", "holdout", ids) * 10).astype(int)

@@ -196,7 +196,7 @@ def test_realised_shares_match_plan_per_cohort_and_holdout():
     hold = np.array([a.holdout for a in out])
     arm = np.array([ARMS.index(a.arm) for a in out])
     assert (arm[hold] == 0).all()
-    # holdout share: SRM-style chisquare of [holdout, rest] vs [h, 1 - h] (Methods §8, §10.3)
+    # holdout share: SRM-style chisquare of [holdout, rest] vs [h, 1 - h] (common practice)
     k = int(hold.sum())
     assert stats.chisquare([k, n - k], [0.1 * n, 0.9 * n]).pvalue > 0.001
     # the holdout does not depend on the cohort: chi2_contingency of holdout x cohort

@@ -1,4 +1,4 @@
-"""Registry swaps under concurrent readers, and the revision poller (design §8)."""
+"""Registry swaps under concurrent readers, and the revision poller."""
 
 from __future__ import annotations
 

@@ -1,9 +1,9 @@
-"""The causal tree on the simulation designs of Athey and Imbens (2016, PNAS), methods.md §3.1.
+"""The causal tree on the simulation designs of Athey and Imbens (2016, PNAS).
 
-The design formulas are from memory (methods.md tags them [M]); in particular epsilon ~ N(0, .01)
+The design formulas are from memory; in particular epsilon ~ N(0, .01)
 is read as variance 0.01. No published number is hard-coded: the checks are that the first splits
 use the effect modifiers and that the honest tree's infeasible MSE against the known kappa(x) is
-no worse than a transformed-outcome tree (methods §2) fitted with scikit-learn on the same rows.
+no worse than a transformed-outcome tree (the baseline Athey and Imbens 2016 compare against) fitted with scikit-learn on the same rows.
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ N_TEST = 8000  # AI 2016's test-sample size [M]
 
 
 def eta_kappa(design: int, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Mean and effect functions of AI 2016 designs 1 and 2 (from memory, methods.md §3.1)."""
+    """Mean and effect functions of AI 2016 designs 1 and 2 (from memory)."""
     if design == 1:
         return 0.5 * x[:, 0] + x[:, 1], 0.5 * x[:, 0]
     eta = 0.5 * (x[:, 0] + x[:, 1]) + x[:, 2:6].sum(axis=1)
@@ -53,7 +53,7 @@ def ai_table(design: int, n: int, seed: int) -> tuple[UnitTable, np.ndarray]:
 
 
 def tot_tree_effects(table: UnitTable, x: np.ndarray, est: np.ndarray, x_te: np.ndarray, seed: int):
-    """Transformed-outcome tree (methods §2): scikit-learn's regression tree on
+    """Transformed-outcome tree (the baseline Athey and Imbens 2016 compare against): scikit-learn's regression tree on
     Y* = Y (W - p) / (p (1 - p)) on the structure rows, pruned by 5-fold CV over its own
     cost-complexity path, leaves re-estimated by difference in means on the estimation rows."""
     p = 0.5
@@ -84,13 +84,13 @@ def our_effects(fit, table_te: UnitTable) -> np.ndarray:
     "design, modifiers", [(1, {"x1"}), (2, {"x1", "x2"})], ids=["design1", "design2"]
 )
 def test_first_split_uses_an_effect_modifier(design, modifiers):
-    # AI 2016 (as recalled in methods §3.1): only x1 (design 1) or x1, x2 (design 2) modify the
+    # AI 2016 (from memory): only x1 (design 1) or x1, x2 (design 2) modify the
     # effect; the others move the mean only. The root split must be on a modifier and every
     # modifier must be used. Deeper splits on the mean-only covariates are not an error: the
     # honest criterion's variance term rewards leaves whose effect estimates are more precise
     # (a split on x2 in design 1 cuts the within-leaf variance of Y), so they are not asserted on.
     # With 2000 structure rows CV pruning sometimes keeps a single split, so "every modifier used"
-    # is asked of 8 of 10 replications (the >90 % of methods §3.1 is for larger samples [S]).
+    # is asked of 8 of 10 replications (the >90 % recalled from the paper is for larger samples).
     all_used = 0
     for rep in range(10):
         table, _ = ai_table(design, N_TRAIN, seed=100 + rep)
@@ -122,5 +122,5 @@ def test_mse_no_worse_than_transformed_outcome_tree(design):
         tot_hat = tot_tree_effects(table, x, fit.estimation_mask, x_te, seed=rep)
         tot.append(np.mean((kappa_te - tot_hat) ** 2))
     assert np.mean(ours) <= np.mean(tot), (ours, tot)
-    # and the tree beats the constant effect when there is heterogeneity (methods §2, check 3)
+    # and the tree beats the constant effect when there is heterogeneity
     assert np.mean(ours) < np.var(kappa_te)

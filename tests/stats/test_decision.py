@@ -34,7 +34,7 @@ def test_prices_are_the_slope_of_the_optimum():
 
 
 def test_ratio_guardrail_linearization_is_exact():
-    # R(x) - R(control) <= t  <=>  N(x) - (R0 + t) D(x) <= t D0 (decision-methods §3): for random
+    # R(x) - R(control) <= t  <=>  N(x) - (R0 + t) D(x) <= t D0: for random
     # plans over two cells, the linear column of `targets` stays within its allowed harm exactly
     # when the ratio does.
     metrics = (MetricSpec("s", "mean"), MetricSpec("r", "ratio", "lower", "num", "den"))

@@ -1,8 +1,8 @@
 """Held-out policy evaluation: IPW (Horvitz and Thompson, 1952) and AIPW (Robins, Rotnitzky and
-Zhao, 1994) as written in methods §7, checked by simulation with known values, by direct
-computation of the published formulas, and by the post-stratification identity of methods §7.
+Zhao, 1994) as published, checked by simulation with known values, by direct
+computation of the published formulas, and by the post-stratification identity.
 
-Wager and Athey (2018) setting A (methods §3.2) has a non-constant propensity; ours are the design
+Wager and Athey (2018) setting A has a non-constant propensity; ours are the design
 shares, so that case does not apply and is not tested.
 """
 
@@ -95,7 +95,7 @@ def _population_sd(score_var: float, n: int) -> float:
 
 def test_dr_has_smaller_se_than_ipw_when_outcomes_depend_on_cohort():
     # Outcomes differ by cohort (0, 10, 20): IPW's score w Y carries that spread, AIPW's residual
-    # term does not. Population variances of the scores (methods §7, with the true mu; cross-fitting
+    # term does not. Population variances of the scores (with the true mu; cross-fitting
     # adds O(1/n)):
     #   IPW  Var(w Y) = sum_c p_c sum_j e_j (pi_cj / e_j)^2 (mu_cj^2 + sigma^2) - V^2
     #   DR   Var(Gamma) = Var_c(sum_j pi_cj mu_cj) + sum_c p_c sum_j pi_cj^2 / e_j sigma^2
@@ -117,7 +117,7 @@ def test_dr_has_smaller_se_than_ipw_when_outcomes_depend_on_cohort():
 
 
 def test_ipw_and_dr_match_a_direct_computation():
-    # Direct, unit-by-unit evaluation of the formulas of methods §7 (Horvitz-Thompson; AIPW with a
+    # Direct, unit-by-unit evaluation of the published formulas (Horvitz-Thompson; AIPW with a
     # fixed outcome model; paired lift; delta method for the ratio, Deng, Knoblich and Lu 2018).
     c, a, v = _simulate(3, 60)
     rng = np.random.default_rng(4)
@@ -163,7 +163,7 @@ def test_ipw_and_dr_match_a_direct_computation():
 
 
 def test_dr_with_in_sample_cell_means_equals_post_stratified():
-    # methods §7 special case [D]: with mu = in-sample cohort-arm means and a cohort-constant
+    # a special case, derived here: with mu = in-sample cohort-arm means and a cohort-constant
     # policy, the residual term sums to zero in each cell, and AIPW equals the post-stratified
     # estimator sum_c (n_c / n) sum_j pi_cj ybar_cj exactly.
     c, a, v = _simulate(9, 3000)

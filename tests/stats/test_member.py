@@ -59,7 +59,7 @@ def design():
 
 def test_forest_beats_one_honest_tree_and_a_random_forest_t_learner(design):
     # Smooth effect on two of six features: averaging many honest partitions removes the step
-    # error of one tree (decision-methods §4.2). References on the same rows: our single honest
+    # error of one tree. References on the same rows: our single honest
     # causal tree (cross-validated), and scikit-learn's RandomForestRegressor fitted per arm
     # (a T-learner). Measured at this seed: forest MSE 0.024, tree 0.100, T-learner 0.085 against
     # Var(tau) 0.99; the bounds leave that margin (a forest no better than either fails).
@@ -134,7 +134,7 @@ def test_two_model_predictions_equal_scikit_learn_fits_on_the_other_folds(design
 def test_two_model_effects_on_the_wager_athey_design(design):
     # The T-learner with boosting recovers the smooth effect: measured MSE 0.065 at this seed
     # against Var(tau) 0.99 (bound 0.15 Var(tau)); 0.118 from a quarter of the rows; the error must also fall with n
-    # (decision-methods §4.1 test): a quarter of the rows gives a larger error.
+    # a quarter of the rows gives a larger error.
     table, tau, train, test = design
     x, cat = feature_matrix(table, [f"x{i}" for i in range(D)])
     values, arm = table.component_matrix(), table.arm

@@ -3,7 +3,7 @@
 Sources: the normal-mixture boundary of Howard, Ramdas, McAuliffe and Sekhon (2021, Ann. Statist.)
 and its estimated-variance (asymptotic) form of Waudby-Smith et al. (2024, Ann. Statist.); the
 mixture SPRT statistic of Johari, Koomen, Pekelis and Walsh (2022, Oper. Res.), as written in
-methods.md section 9.1 (from memory there, checked by simulation); Ville's inequality for the
+(from memory, checked by simulation); Ville's inequality for the
 time-uniform error bound; scipy.stats.norm for the fixed-horizon interval.
 """
 
@@ -119,7 +119,7 @@ def test_cs_is_wider_than_the_fixed_interval_and_tightest_relative_near_the_hori
     f = sq.radius_factor(t, ALPHA, horizon=10_000)
     assert np.all(f > z)
     # rho is tuned so that the radius at t = t* is (near) its smallest over choices of rho
-    # (methods.md 9.2): at t = 10,000 the boundary tuned for 10,000 beats those tuned elsewhere
+    # (Waudby-Smith et al. 2024): at t = 10,000 the boundary tuned for 10,000 beats those tuned elsewhere
     tuned = [sq.radius_factor(10_000, ALPHA, horizon=h) for h in (100, 1000, 10_000, 100_000)]
     assert np.argmin(tuned) == 2
 

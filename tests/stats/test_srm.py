@@ -35,7 +35,7 @@ def test_statistic_and_p_value_equal_scipy_chisquare(counts, shares):
 
 
 def test_two_arms_equals_z_test_of_a_proportion():
-    # With two arms the chi-square test is the two-sided z-test of one proportion (methods §8;
+    # With two arms the chi-square test is the two-sided z-test of one proportion (
     # a standard identity: chi2(1) = z^2), checked with scipy.stats.binomtest's normal analogue.
     n1, n = 5150, 10000
     z = (n1 - 0.5 * n) / np.sqrt(n * 0.25)
@@ -46,7 +46,7 @@ def test_two_arms_equals_z_test_of_a_proportion():
 
 def test_default_threshold_is_one_in_a_thousand():
     # p < 0.001 is common practice for sample-ratio mismatch (Kohavi, Tang and Xu, Trustworthy
-    # Online Controlled Experiments, 2020, ch. 21; the value is from memory, methods §8).
+    # Online Controlled Experiments, 2020, ch. 21; the value is from memory).
     assert DEFAULT_THRESHOLD == 0.001
     assert sample_ratio_check([5000, 5000], [0.5, 0.5]).threshold == 0.001
 
@@ -79,7 +79,7 @@ def test_threshold_decides_the_flag():
 
 
 def test_units_in_a_zero_share_arm_are_an_immediate_flag():
-    # methods §8: any count in an arm with designed share 0 is a failure; df counts positive arms
+    # any count in an arm with designed share 0 is a failure; df counts positive arms
     got = sample_ratio_check([5000, 5000, 1], [0.5, 0.5, 0.0])
     assert got.flagged is True
     assert got.p_value == 0.0

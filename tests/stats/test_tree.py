@@ -49,7 +49,7 @@ def _unit_outcomes(table, structure: np.ndarray) -> np.ndarray:
 
 def _honest_value(y, arm, rows, n_arms, v, n_tr, n_est) -> float:
     """sum_jk (1/v_jk) g_jk(leaf), g written out from Athey and Imbens (2016) in the leaf-count
-    form of methods §1.1-1.2, with explicit loops and numpy's ddof=1 variance."""
+    form of Athey and Imbens (2016), with explicit loops and numpy's ddof=1 variance."""
     total = 0.0
     n_leaf = rows.sum()
     for j in range(1, n_arms):
@@ -72,7 +72,7 @@ def test_every_leaf_keeps_the_minimum_of_every_arm_on_both_halves(table, fit):
 
 def test_gains_are_positive_and_match_the_published_criterion(table, fit):
     # Recompute every split's gain g(L) + g(R) - g(parent) from the raw rows (Athey and Imbens
-    # 2016 honest criterion, per-pair standardization at the root as in methods §1.2).
+    # 2016 honest criterion, per-pair standardization at the root).
     est = fit.estimation_mask
     s = ~est
     y = _unit_outcomes(table, s)

@@ -1,4 +1,4 @@
-"""The causal tree on the invented lesson-length scenario (shared/scenario.md), default settings.
+"""The causal tree on the invented lesson-length scenario, default settings.
 
 What the scenario sets: `level` (beginners differ for ten_min and fifteen_min), `device` (phone for
 fifteen_min's abandonment and ten_min's beginners; tablet for adaptive), `streak_days >= 7` (only

@@ -1,5 +1,5 @@
 """Jobs: two workers never take the same job, and an interrupted job is picked up again or
-marked failed, never left running (issue 3)."""
+marked failed, never left running."""
 
 from __future__ import annotations
 
