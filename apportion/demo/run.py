@@ -12,6 +12,9 @@ scenario's effect functions evaluated on the plan's allocation per learner (`tru
 oracle plan and the best single arm that meets the guardrails.
 
     python -m apportion.demo.run [--learners 200000] [--seed 1] [--serve] [--port 8000]
+
+Longer than most modules (about 600 lines) on purpose: it is one script, read top to bottom as
+the walkthrough of the whole job; its steps share the run's keys, client and truth.
 """
 
 from __future__ import annotations

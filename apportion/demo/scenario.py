@@ -8,6 +8,10 @@ the scenario's true effect functions, which it also exposes (`true_component_mea
 Random streams: one `np.random.SeedSequence(seed)` is spawned into independent children for the
 features, the arm draw and the outcomes, so `simulate(n, seed, arm=a)` sees exactly the learners of
 `simulate_features(n, seed)` whatever `a` is.
+
+Longer than most modules (about 470 lines) on purpose: the invented truth (features, effect
+functions, noise model) and the simulator that draws from it must be read together to check
+that the demo's report compares the plan with the very truth the data came from.
 """
 
 from __future__ import annotations
