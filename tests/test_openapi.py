@@ -69,3 +69,42 @@ def test_every_key_route_declares_its_security_and_its_problems() -> None:
                 assert "413" in responses, (method, path)
     for route in ("activate", "rollback"):
         assert "409" in doc["paths"][f"/v1/plans/{{plan}}/{route}"]["post"]["responses"]
+
+
+def _named_fields(schema: dict, components: dict) -> set[str]:  # type: ignore[type-arg]
+    while "$ref" in schema:
+        schema = components["schemas"][schema["$ref"].rsplit("/", 1)[1]]
+    return set(schema.get("properties") or {})
+
+
+def test_every_answer_of_every_operation_has_a_schema() -> None:
+    """Each documented answer says what its body is: a media type with a schema for every status
+    that carries a body, and a JSON body's schema names its fields (a bare `object` says
+    nothing); 204 and 304 carry no body (RFC 9110 sections 15.3.5 and 15.4.5), so for them the
+    document must not promise one."""
+    from apportion.openapi_export import openapi_document
+
+    doc = openapi_document()
+    components = doc["components"]
+    missing, promised = [], []
+    answers = 0
+    for path, item in doc["paths"].items():
+        for method, op in item.items():
+            for code, answer in op["responses"].items():
+                answers += 1
+                content = answer.get("content") or {}
+                if code in ("204", "304"):
+                    if content:
+                        promised.append((method, path, code))
+                    continue
+                if not content:
+                    missing.append((method, path, code, "no content"))
+                for media, spec in content.items():
+                    schema = spec.get("schema") or {}
+                    if "json" in media and not _named_fields(schema, components):
+                        missing.append((method, path, code, media))
+                    elif not schema:
+                        missing.append((method, path, code, media))
+    assert answers > 100  # every operation answers at least 401/403/500 besides its success
+    assert missing == [], missing
+    assert promised == [], promised

@@ -1,30 +1,14 @@
-"""Bounds every request field declares, once: integers fit the databases' 64-bit columns and text
-holds no NUL (PostgreSQL cannot store it). A value outside them is a 422 from the schema itself,
-before any use case runs, on every backend alike; the exported OpenAPI document shows them."""
+"""Path and query parameters with the bounds every request field declares (apportion/schemas/common:
+integers fit the databases' 64-bit columns, text holds no NUL). A value outside them is a 422 from
+the schema itself, before any use case runs, on every backend alike."""
 
 from __future__ import annotations
 
 from typing import Annotated
 
 from fastapi import Path, Query
-from pydantic import Field, StringConstraints
 
-INT64_MAX = 2**63 - 1  # BIGINT (PostgreSQL) and INTEGER (SQLite) are signed 64-bit
-NO_NUL = r"^[^\x00]*$"
-# a reason must say something: at least one character that is neither blank nor NUL
-REASON_PATTERN = r"^[^\x00]*[^\s\x00][^\x00]*$"
-
-Text = Annotated[str, StringConstraints(pattern=NO_NUL)]
-ShortText = Annotated[str, StringConstraints(max_length=200, pattern=NO_NUL)]
-Reason = Annotated[
-    str,
-    Field(
-        min_length=1,
-        max_length=5000,
-        pattern=REASON_PATTERN,
-        description="why; recorded in the audit trail",
-    ),
-]
+from apportion.schemas.common import INT64_MAX, NO_NUL
 
 VersionPath = Annotated[int, Path(ge=1, le=INT64_MAX, description="a version number")]
 IdPath = Annotated[int, Path(ge=1, le=INT64_MAX, description="a numeric id")]

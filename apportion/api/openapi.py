@@ -16,32 +16,14 @@ from typing import Any
 
 from fastapi import FastAPI
 
+from apportion.schemas.common import Problem
+
 PROBLEM_TYPE = "application/problem+json"
-PROBLEM_SCHEMA: dict[str, Any] = {
-    "title": "Problem",
-    "type": "object",
-    "description": "RFC 9457 problem details; `errors` lists each field that is wrong",
-    "required": ["type", "title", "status", "detail"],
-    "properties": {
-        "type": {"type": "string", "format": "uri"},
-        "title": {"type": "string"},
-        "status": {"type": "integer", "minimum": 400, "maximum": 599},
-        "detail": {"type": "string"},
-        "instance": {"type": "string"},
-        "request_id": {"type": "string"},
-        "errors": {
-            "type": "array",
-            "items": {
-                "type": "object",
-                "properties": {
-                    "field": {"type": "string"},
-                    "problem": {"type": "string"},
-                    "type": {"type": ["string", "null"]},
-                },
-            },
-        },
-    },
-}
+# the problem document's schema, from its one model (nested parts land in the components too)
+PROBLEM_SCHEMA: dict[str, Any] = Problem.model_json_schema(
+    ref_template="#/components/schemas/{model}"
+)
+PROBLEM_PARTS: dict[str, Any] = PROBLEM_SCHEMA.pop("$defs", {})
 SECURITY_SCHEME = {
     "type": "http",
     "scheme": "bearer",
@@ -90,6 +72,7 @@ def finish(doc: dict[str, Any]) -> dict[str, Any]:
     components = doc.setdefault("components", {})
     schemas = components.setdefault("schemas", {})
     schemas["Problem"] = PROBLEM_SCHEMA
+    schemas.update(PROBLEM_PARTS)
     components["securitySchemes"] = {"apiKey": SECURITY_SCHEME}
     for path, item in doc.get("paths", {}).items():
         for method, op in item.items():

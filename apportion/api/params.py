@@ -10,8 +10,7 @@ from typing import Annotated
 
 from fastapi import Path
 
-# plan and experiment keys: lower-case letters, digits, '-' and '_', starting with a letter or digit
-KEY_PATTERN = r"^[a-z0-9][a-z0-9_-]{0,99}$"
+from apportion.schemas.common import KEY_PATTERN
 
 PlanKey = Annotated[
     str,

@@ -51,7 +51,7 @@ def verify(as_json: Annotated[bool, typer.Option("--json")] = False) -> None:
     from apportion.cli.server import database
     from apportion.usecases.audit import verify as verify_chain
 
-    result = verify_chain(database())
+    result = verify_chain(database()).model_dump(mode="json")
     if as_json:
         print(json.dumps(result))
     else:

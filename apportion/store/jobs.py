@@ -125,18 +125,3 @@ def reclaim_stale(*, session: Session, stale_seconds: float) -> list[Job]:
             row.error = f"interrupted: no heartbeat for more than {stale_seconds:.0f} s after {row.attempts} attempts"
     session.flush()
     return list(rows)
-
-
-def job_view(row: Job) -> dict[str, Any]:
-    return {
-        "id": row.id,
-        "kind": row.kind,
-        "status": row.status,
-        "progress": round(float(row.progress), 4),
-        "error": row.error,
-        "attempts": row.attempts,
-        "created_at": row.created_at,
-        "started_at": row.started_at,
-        "finished_at": row.finished_at,
-        "result": (row.payload or {}).get("result"),
-    }

@@ -3,8 +3,7 @@ itself, hash-linked entries written with each change, lives in `store/audit.py`)
 
 from __future__ import annotations
 
-from typing import Any
-
+from apportion.schemas.audit import AuditPage, ChainCheck
 from apportion.store import audit
 from apportion.store.db import Database
 
@@ -18,17 +17,19 @@ def entries(
     since: str | None = None,
     limit: int = 100,
     after: int = 0,
-) -> dict[str, Any]:
+) -> AuditPage:
     """One page of entries, oldest first, and the `after` of the next page (None on the last)."""
     with db.read() as s:
         rows = audit.listing(
             s, entity=entity, entity_id=entity_id, actor=actor, since=since, limit=limit,
             after=after,
         )  # fmt: skip
-    return {"entries": rows, "next_after": rows[-1]["id"] if len(rows) == limit else None}
+    return AuditPage.model_validate(
+        {"entries": rows, "next_after": rows[-1]["id"] if len(rows) == limit else None}
+    )
 
 
-def verify(db: Database) -> dict[str, Any]:
+def verify(db: Database) -> ChainCheck:
     """Walk the whole chain: intact, the number of entries, and the first broken one with why."""
     with db.read() as s:
-        return audit.verify(s).to_dict()
+        return ChainCheck.model_validate(audit.verify(s).to_dict())

@@ -13,12 +13,19 @@ from apportion.domain import Actor
 from apportion.errors import InvalidInput, NotFound
 from apportion.optimize.crossfit import (
     COMPARISON_DRAWS,
-    FOLDS,
     check_folds,
     evaluate_candidates,
     parse_candidates,
 )
 from apportion.optimize.problem import Guardrail, check_objective
+from apportion.schemas.comparisons import (
+    ComparisonIn,
+    ComparisonList,
+    ComparisonListed,
+    ComparisonQueued,
+    ComparisonView,
+)
+from apportion.schemas.plans import GuardrailSpec
 from apportion.stats.decision import DECISION_METHODS
 from apportion.stats.models import validate_params
 from apportion.store import audit
@@ -38,26 +45,27 @@ def _guardrails(spec: dict[str, Any]) -> tuple[Guardrail, ...]:
     return tuple(Guardrail(**g) for g in spec["guardrails"])
 
 
-def _resolve_guardrails(body: dict[str, Any]) -> list[dict[str, Any]]:
+def _resolve_guardrails(command: ComparisonIn) -> list[dict[str, Any]]:
     """The request's guardrails with the comparison's confidence where one gives none."""
-    default = float(body.get("confidence") or 0.95)
-    out = []
-    for g in body.get("guardrails") or []:
-        conf = g.get("confidence")
-        out.append({"metric": g["metric"], "threshold": float(g["threshold"]),
-                    "unit": g.get("unit") or "absolute",
-                    "confidence": float(conf if conf is not None else default)})  # fmt: skip
-    return out
+    return [
+        GuardrailSpec(
+            metric=g.metric,
+            threshold=g.threshold,
+            unit=g.unit,
+            confidence=g.confidence if g.confidence is not None else command.confidence,
+        ).model_dump()
+        for g in command.guardrails
+    ]
 
 
 def _model_params(
-    body: dict[str, Any], models: list[str], specs: Any, guardrails: list[dict[str, Any]],
+    command: ComparisonIn, models: list[str], specs: Any, guardrails: list[dict[str, Any]],
     success: str, from_model: tuple[str, dict[str, Any]] | None,
 ) -> dict[str, dict[str, Any]]:  # fmt: skip
     """Validated parameters per cohort model method. A decision-focused method prices the
     comparison's own guardrails unless told otherwise; a named model lends its parameters to its
     method. The seed is left out: each fold's fit takes the comparison's seed plus the fold."""
-    given = dict(body.get("params") or {})
+    given = dict(command.params or {})
     unknown = sorted(set(given) - set(models))
     if unknown:
         raise InvalidInput(
@@ -87,11 +95,10 @@ def _model_params(
     return out
 
 
-def start(services: Services, *, key: str, body: dict[str, Any], actor: Actor) -> dict[str, Any]:
-    candidates = parse_candidates(body.get("candidates"))
-    folds, seed = int(body.get("folds") or FOLDS), int(body.get("seed") or 0)
-    success = body["success_metric"]
-    guardrails = _resolve_guardrails(body)
+def start(services: Services, *, key: str, command: ComparisonIn, actor: Actor) -> ComparisonQueued:
+    candidates = parse_candidates(command.candidates)
+    folds, seed, success = command.folds, command.seed, command.success_metric
+    guardrails = _resolve_guardrails(command)
     if any(g["metric"] == success for g in guardrails):
         raise InvalidInput(
             f"guardrail metric {success!r} is the success metric; guard other metrics",
@@ -99,7 +106,7 @@ def start(services: Services, *, key: str, body: dict[str, Any], actor: Actor) -
                 {"field": "guardrails", "problem": "names the success metric", "value": success}
             ],
         )
-    if (body.get("readout_version") is None) == (body.get("model_id") is None):
+    if (command.readout_version is None) == (command.model_id is None):
         raise InvalidInput(
             "give exactly one of readout_version (compare on that readout) and model_id "
             "(compare on the model's readout, with its parameters for its method)",
@@ -111,7 +118,7 @@ def start(services: Services, *, key: str, body: dict[str, Any], actor: Actor) -
     with db.write() as s:
         exp = exp_repo.get_experiment(session=s, key=key, lock=True)  # level 1: numbers
         specs = specs_of(exp.declaration)
-        model_id, from_model = body.get("model_id"), None
+        model_id, from_model = command.model_id, None
         if model_id is not None:
             model = model_repo.get_model(session=s, model_id=int(model_id))
             if model.experiment_id != exp.id:
@@ -123,10 +130,10 @@ def start(services: Services, *, key: str, body: dict[str, Any], actor: Actor) -
             from_model = (model.method, dict((model.params or {}).get("method_params") or {}))
         else:
             readout = exp_repo.get_readout(
-                session=s, experiment_id=exp.id, version=int(body["readout_version"])
+                session=s, experiment_id=exp.id, version=int(command.readout_version or 0)
             )
             srm = readout.summary.get("sample_ratio", {})
-            if srm.get("flagged") and not body.get("override_sample_ratio"):
+            if srm.get("flagged") and command.override_sample_ratio is None:
                 raise InvalidInput(
                     f"readout {readout.version} failed the sample-ratio check; fix the assignment "
                     "or give override_sample_ratio with a reason",
@@ -140,7 +147,7 @@ def start(services: Services, *, key: str, body: dict[str, Any], actor: Actor) -
         check_objective(specs.metrics, success, tuple(Guardrail(**g) for g in guardrails))
         check_folds(readout.summary.get("arm_counts") or {}, folds)
         models = list(dict.fromkeys(c.model for c in candidates))
-        params = _model_params(body, models, specs, guardrails, success, from_model)
+        params = _model_params(command, models, specs, guardrails, success, from_model)
         spec = {
             "readout_version": readout.version,
             "model_id": model_id,
@@ -156,17 +163,18 @@ def start(services: Services, *, key: str, body: dict[str, Any], actor: Actor) -
                                   model_id=model_id, spec=spec, job_id=job.id,
                                   created_by=actor.name)  # fmt: skip
         job.payload = {"comparison_id": row.id}
-        reason = (body.get("override_sample_ratio") or {}).get("reason") or body.get("notes")
+        override = command.override_sample_ratio
+        reason = (override.reason if override else None) or command.notes
         audit.append(s, actor=actor, action="comparison.start", entity="comparison",
                      entity_id=f"{key}/{row.number}", payload={"experiment": key, **spec},
                      reason=reason)  # fmt: skip
-        out = {
-            "number": row.number,
-            "comparison": f"/v1/experiments/{key}/comparisons/{row.number}",
-            "job_id": job.id,
-            "job": f"/v1/jobs/{job.id}",
-            "status": "queued",
-        }
+        out = ComparisonQueued(
+            number=row.number,
+            comparison=f"/v1/experiments/{key}/comparisons/{row.number}",
+            job_id=job.id,
+            job=f"/v1/jobs/{job.id}",
+            status="queued",
+        )
     jobs.notify(services)
     return out
 
@@ -206,7 +214,8 @@ def _on_failed(session: Any, job: Job, message: str) -> None:
 jobs.FAILURE_HOOKS[KIND] = _on_failed
 
 
-def _view(row: Any, key: str, readout_version: int, progress: float) -> dict[str, Any]:
+def _view(row: Any, key: str, readout_version: int, progress: float) -> ComparisonView:
+    """The comparison's row; its stored spec and (once done) result are validated as read."""
     out: dict[str, Any] = {
         "experiment": key,
         "number": row.number,
@@ -232,10 +241,10 @@ def _view(row: Any, key: str, readout_version: int, progress: float) -> dict[str
         )
     elif row.status == "failed":
         out["error"] = res.get("error")
-    return out
+    return ComparisonView.model_validate(out)
 
 
-def get(services: Services, *, key: str, number: int) -> dict[str, Any]:
+def get(services: Services, *, key: str, number: int) -> ComparisonView:
     with services.db.read() as s:
         exp = exp_repo.get_experiment(session=s, key=key)
         row = repo.get_comparison(session=s, experiment_id=exp.id, number=number)
@@ -245,26 +254,26 @@ def get(services: Services, *, key: str, number: int) -> dict[str, Any]:
         return _view(row, key, readout.version, 1.0 if row.status == "done" else job.progress)
 
 
-def list_all(services: Services, *, key: str) -> dict[str, Any]:
+def list_all(services: Services, *, key: str) -> ComparisonList:
     with services.db.read() as s:
         exp = exp_repo.get_experiment(session=s, key=key)
         rows = repo.list_comparisons(session=s, experiment_id=exp.id)
-        return {
-            "experiment": key,
-            "comparisons": [
-                {
-                    "number": r.number,
-                    "href": f"/v1/experiments/{key}/comparisons/{r.number}",
-                    "status": r.status,
-                    "success_metric": r.spec.get("success_metric"),
-                    "candidates": len(r.spec.get("candidates") or []),
-                    "recommended": (r.result or {}).get("recommended"),
-                    "created_at": r.created_at,
-                    "created_by": r.created_by,
-                }
+        return ComparisonList(
+            experiment=key,
+            comparisons=[
+                ComparisonListed(
+                    number=r.number,
+                    href=f"/v1/experiments/{key}/comparisons/{r.number}",
+                    status=r.status,
+                    success_metric=r.spec.get("success_metric"),
+                    candidates=len(r.spec.get("candidates") or []),
+                    recommended=(r.result or {}).get("recommended"),
+                    created_at=r.created_at,
+                    created_by=r.created_by,
+                )
                 for r in rows
             ],
-        }
+        )
 
 
 def followed(services: Services, *, model_id: int, number: int, candidate: str) -> dict[str, Any]:

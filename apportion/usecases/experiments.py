@@ -24,6 +24,14 @@ from apportion.ingest.dataset import MANIFEST, Manifest, read_dataset
 from apportion.ingest.formats import media_format
 from apportion.ingest.problems import Problems
 from apportion.ingest.stream import Ingested, Source, file_source, ingest
+from apportion.schemas.experiments import (
+    Declaration,
+    ExperimentIn,
+    ExperimentView,
+    ReadoutListed,
+    ReadoutSummary,
+    ReadoutView,
+)
 from apportion.stats.estimates import CellMoments, cell_moments, metric_estimates
 from apportion.stats.srm import sample_ratio_check
 from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
@@ -172,7 +180,8 @@ def _level_problems(f: dict[str, Any]) -> list[dict[str, Any]]:
     return out
 
 
-def declare(db: Database, *, declaration: dict[str, Any], actor: Actor) -> dict[str, Any]:
+def declare(db: Database, *, command: ExperimentIn, actor: Actor) -> ExperimentView:
+    declaration = command.model_dump(exclude_none=True)
     validate_declaration(declaration)
     with db.write() as s:
         row = repo.add_experiment(
@@ -193,26 +202,30 @@ def declare(db: Database, *, declaration: dict[str, Any], actor: Actor) -> dict[
         return experiment_view(row, [])
 
 
-def experiment_view(row: Any, readouts: list[Any]) -> dict[str, Any]:
-    return {
-        **row.declaration,
-        "name": row.name,
-        "created_at": row.created_at,
-        "created_by": row.created_by,
-        "readouts": [
-            {
-                "version": r.version,
-                "n_rows": r.n_rows,
-                "content_hash": r.content_hash,
-                "created_at": r.created_at,
-                "sample_ratio": r.summary.get("sample_ratio"),
-            }
-            for r in readouts
-        ],
-    }
+def experiment_view(row: Any, readouts: list[Any]) -> ExperimentView:
+    """The stored declaration (validated as it is read) with who declared it and its readouts."""
+    declared = Declaration.model_validate(row.declaration)
+    return ExperimentView.model_validate(
+        {
+            **declared.model_dump(exclude_unset=True),
+            "name": row.name,
+            "created_at": row.created_at,
+            "created_by": row.created_by,
+            "readouts": [
+                ReadoutListed(
+                    version=r.version,
+                    n_rows=r.n_rows,
+                    content_hash=r.content_hash,
+                    created_at=r.created_at,
+                    sample_ratio=ReadoutSummary.model_validate(r.summary).sample_ratio,
+                )
+                for r in readouts
+            ],
+        }
+    )
 
 
-def get(db: Database, *, key: str) -> dict[str, Any]:
+def get(db: Database, *, key: str) -> ExperimentView:
     with db.read() as s:
         row = repo.get_experiment(session=s, key=key)
         return experiment_view(row, repo.list_readouts(session=s, experiment_id=row.id))
@@ -271,7 +284,7 @@ def _f(x: float) -> float | None:
 
 def upload_readout(
     db: Database, *, key: str, body: bytes, content_type: str, actor: Actor
-) -> tuple[dict[str, Any], bool]:
+) -> tuple[ReadoutView, bool]:
     """An upload held in memory: spooled to a temporary file, then `upload_readout_file`."""
     fd, path = tempfile.mkstemp(prefix="apportion-upload-")
     try:
@@ -298,7 +311,7 @@ def upload_readout_file(
     content_type: str,
     actor: Actor,
     work_dir: str | None = None,
-) -> tuple[dict[str, Any], bool]:
+) -> tuple[ReadoutView, bool]:
     """Validate an upload spooled to `path` in batches and store it as a readout version.
 
     Returns (readout view, created); the same bytes a second time return the existing version.
@@ -378,7 +391,7 @@ def record_readout(
     actor: Actor,
     action: str,
     extra: dict[str, Any],
-) -> tuple[dict[str, Any], bool]:
+) -> tuple[ReadoutView, bool]:
     """Store the readout row and its audit entry in one transaction (the dataset is published)."""
     result, sha, location, size = ingested
     exp_row = None
@@ -425,20 +438,21 @@ def record_readout(
         return readout_view(exp.key, row), True
 
 
-def readout_view(experiment_key: str, row: Any) -> dict[str, Any]:
-    return {
-        "experiment": experiment_key,
-        "version": row.version,
-        "n_rows": row.n_rows,
-        "content_hash": row.content_hash,
-        "content_type": row.content_type,
-        "created_at": row.created_at,
-        "created_by": row.created_by,
-        **row.summary,
-    }
+def readout_view(experiment_key: str, row: Any) -> ReadoutView:
+    """The readout's row with its stored summary (validated as it is read)."""
+    summary = ReadoutSummary.model_validate(row.summary)
+    return ReadoutView(
+        experiment=experiment_key,
+        version=row.version,
+        content_hash=row.content_hash,
+        content_type=row.content_type,
+        created_at=row.created_at,
+        created_by=row.created_by,
+        **summary.model_dump(exclude_unset=True),
+    )
 
 
-def get_readout(db: Database, *, key: str, version: int) -> dict[str, Any]:
+def get_readout(db: Database, *, key: str, version: int) -> ReadoutView:
     with db.read() as s:
         exp = repo.get_experiment(session=s, key=key)
         return readout_view(

@@ -14,6 +14,7 @@ from typing import Any
 
 from apportion.errors import ApportionError, JobLost
 from apportion.observability import JOB_FAILURES, JOB_SECONDS
+from apportion.schemas.jobs import JobView
 from apportion.store import jobs as repo
 from apportion.store.tables import Job
 from apportion.usecases.context import Services
@@ -31,9 +32,24 @@ def handler(kind: str) -> Callable[[Handler], Handler]:
     return register
 
 
-def get_job(services: Services, job_id: str) -> dict[str, Any]:
+def job_view(row: Job) -> JobView:
+    return JobView(
+        id=row.id,
+        kind=row.kind,
+        status=row.status,  # type: ignore[arg-type]
+        progress=round(float(row.progress), 4),
+        error=row.error,
+        attempts=row.attempts,
+        created_at=row.created_at,
+        started_at=row.started_at,
+        finished_at=row.finished_at,
+        result=(row.payload or {}).get("result"),
+    )
+
+
+def get_job(services: Services, job_id: str) -> JobView:
     with services.db.read() as s:
-        return repo.job_view(repo.get_job(session=s, job_id=job_id))
+        return job_view(repo.get_job(session=s, job_id=job_id))
 
 
 def run_one(services: Services, worker: str) -> bool:

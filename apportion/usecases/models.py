@@ -10,6 +10,7 @@ import numpy as np
 from apportion.domain import Actor
 from apportion.errors import InvalidInput, NotFound
 from apportion.ingest.dataset import read_dataset
+from apportion.schemas.models import FitIn, FitQueued, ModelView
 from apportion.stats.estimates import CellMoments
 from apportion.stats.models import METHODS, fit_cohort_model, validate_params
 from apportion.stats.partition import Partition
@@ -26,17 +27,11 @@ from apportion.usecases.context import Services
 from apportion.usecases.experiments import readout_data, specs_of
 
 
-def start_fit(
-    services: Services,
-    *,
-    key: str,
-    readout_version: int,
-    method: str,
-    params: dict[str, Any],
-    success_metric: str | None,
-    override_reason: str | None,
-    actor: Actor,
-) -> dict[str, Any]:
+def start_fit(services: Services, *, key: str, command: FitIn, actor: Actor) -> FitQueued:
+    readout_version, method, params = command.readout_version, command.method, command.params
+    success_metric = command.success_metric
+    override = command.override_sample_ratio
+    override_reason = override.reason if override else None
     if method not in METHODS:
         raise InvalidInput(
             f"method must be one of {', '.join(METHODS)}; got '{method}'",
@@ -101,14 +96,14 @@ def start_fit(
             },
             reason=override_reason,
         )
-        out = {
-            "model_id": row.id,
-            "version": row.version,
-            "job_id": job.id,
-            "job": f"/v1/jobs/{job.id}",
-            "model": f"/v1/models/{row.id}",
-            "status": "queued",
-        }
+        out = FitQueued(
+            model_id=row.id,
+            version=row.version,
+            job_id=job.id,
+            job=f"/v1/jobs/{job.id}",
+            model=f"/v1/models/{row.id}",
+            status="queued",
+        )
     jobs.notify(services)
     return out
 
@@ -217,7 +212,9 @@ def estimation_mask(db: Database, result: dict[str, Any], n: int) -> np.ndarray:
     return np.unpackbits(np.frombuffer(data, dtype=np.uint8), count=n).astype(bool)
 
 
-def model_view(row: Any, experiment_key: str) -> dict[str, Any]:
+def model_view(row: Any, experiment_key: str, progress: float) -> ModelView:
+    """The model's row; once fitted, the parts of its stored result a reader needs (validated
+    as they are read); when failed, its error."""
     out: dict[str, Any] = {
         "id": row.id,
         "experiment": experiment_key,
@@ -228,6 +225,7 @@ def model_view(row: Any, experiment_key: str) -> dict[str, Any]:
         "job": f"/v1/jobs/{row.job_id}",
         "created_at": row.created_at,
         "created_by": row.created_by,
+        "progress": progress,
     }
     res = row.result or {}
     if row.status == "done":
@@ -242,16 +240,14 @@ def model_view(row: Any, experiment_key: str) -> dict[str, Any]:
         )
     elif row.status == "failed":
         out["error"] = res.get("error")
-    return out
+    return ModelView.model_validate(out)
 
 
-def get_model(db: Database, *, model_id: int) -> dict[str, Any]:
+def get_model(db: Database, *, model_id: int) -> ModelView:
     with db.read() as s:
         row = repo.get_model(session=s, model_id=model_id)
         exp = s.get(exp_repo.Experiment, row.experiment_id)
         if exp is None:
             raise NotFound(f"experiment of model {model_id} is missing")
-        view = model_view(row, exp.key)
         job = job_repo.get_job(session=s, job_id=row.job_id)
-        view["progress"] = job.progress
-    return view
+        return model_view(row, exp.key, job.progress)

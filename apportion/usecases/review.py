@@ -8,6 +8,7 @@ from __future__ import annotations
 from typing import Any
 
 from apportion.errors import NotFound
+from apportion.schemas.common import dump
 from apportion.store import audit
 from apportion.usecases import experiments, plans
 from apportion.usecases.context import Services
@@ -22,7 +23,7 @@ def _watch(services: Services, plan: str, version: int) -> dict[str, Any] | None
     except ImportError:  # the page works without the watch
         return None
     try:
-        w = watch.get_watch(services, plan=plan, version=version)
+        w = dump(watch.get_watch(services, plan=plan, version=version))
     except NotFound:
         return None
     if not w or w.get("version") != version or not w.get("metrics"):
@@ -59,7 +60,7 @@ def _metrics(services: Services, key: str | None) -> dict[str, dict[str, Any]]:
         decl = experiments.get(services.db, key=key)
     except NotFound:
         return {}
-    return {m["key"]: m for m in decl.get("metrics", [])}
+    return {m.key: m.model_dump(exclude_unset=True) for m in decl.metrics}
 
 
 def review_page(services: Services, *, plan: str, version: int) -> dict[str, Any]:

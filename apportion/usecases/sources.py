@@ -24,6 +24,7 @@ from apportion.domain import Actor
 from apportion.errors import Forbidden, InvalidInput, NotFound
 from apportion.ingest.problems import Problems
 from apportion.ingest.stream import dataset_source
+from apportion.schemas.experiments import ReadoutImportQueued, ReadoutSourceIn
 from apportion.store import audit
 from apportion.store import experiments as repo
 from apportion.store import jobs as job_repo
@@ -122,9 +123,10 @@ def resolve_source(uri: str, prefixes: list[str]) -> Resolved:
 
 
 def import_readout(
-    services: Services, *, key: str, source: str, partitioning: str | None, actor: Actor
-) -> dict[str, Any]:
+    services: Services, *, key: str, command: ReadoutSourceIn, actor: Actor
+) -> ReadoutImportQueued:
     """Check the source now (403/404 before any job), then queue the import job; 202 view."""
+    source, partitioning = command.source, command.partitioning
     prefixes = list(services.settings.readout_source_prefixes)
     resolved = resolve_source(source, prefixes)
     with services.db.write() as s:
@@ -149,7 +151,9 @@ def import_readout(
         )
         job_id = job.id
     jobs.notify(services)
-    return {"job_id": job_id, "job": f"/v1/jobs/{job_id}", "status": "queued", "source": source}
+    return ReadoutImportQueued(
+        job_id=job_id, job=f"/v1/jobs/{job_id}", status="queued", source=source
+    )
 
 
 @jobs.handler("readout-import")
@@ -197,5 +201,5 @@ def _run_import(services: Services, job: Job, progress: Any) -> None:
     )
     with services.db.write() as s:
         row = job_repo.get_job(session=s, job_id=job.id)
-        row.payload = {**p, "result": {"readout_version": view["version"]}}
+        row.payload = {**p, "result": {"readout_version": view.version}}
         job_repo.finish(session=s, job=job)

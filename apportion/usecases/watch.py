@@ -18,6 +18,7 @@ from apportion.errors import ApportionError, InvalidInput, NotFound
 from apportion.ingest.codec import decode_table, encode_table
 from apportion.ingest.parse import parse_units
 from apportion.observability import WATCH_STATUS
+from apportion.schemas.watch import AutoRollbackIn, AutoRollbackView, MonitorResult, WatchView
 from apportion.stats.monitoring import compare_with_holdout, harmonize_levels, merge_uploads
 from apportion.stats.partition import Partition
 from apportion.stats.table import UnitTable
@@ -63,7 +64,7 @@ def upload(
     content_type: str,
     actor: Actor,
     version: int | None = None,
-) -> dict[str, Any]:
+) -> MonitorResult:
     ctx = _context(services, plan, version)
     row, specs = ctx["version"], ctx["specs"]
     parsed = parse_units(
@@ -170,7 +171,9 @@ def upload(
     for m in metrics:
         if m["role"] == "guardrail":
             WATCH_STATUS.labels(plan, m["metric"]).set(1 if m["status"] == "breached" else 0)
-    return {"plan": plan, "version": row.version, "upload": up.seq, **result}
+    return MonitorResult.model_validate(
+        {"plan": plan, "version": row.version, "upload": up.seq, **result}
+    )
 
 
 def _evidence_rows(
@@ -222,7 +225,7 @@ def _partition(services: Services, model_id: int) -> Any:
         )
 
 
-def get_watch(services: Services, *, plan: str, version: int | None = None) -> dict[str, Any]:
+def get_watch(services: Services, *, plan: str, version: int | None = None) -> WatchView:
     with services.db.read() as s:
         ptr = plan_repo.pointer(session=s, plan=plan)
         if ptr is None:
@@ -255,35 +258,31 @@ def get_watch(services: Services, *, plan: str, version: int | None = None) -> d
                 }
             )
     last = history[-1][2] if history else None
-    return {
-        "plan": plan,
-        "version": v,
-        "live_version": live_version,
-        "auto_rollback": auto,
-        "uploads": len(history),
-        "members": last["members"] if last else 0,
-        "holdout_flag_disagreement": last["holdout_flag_disagreement"] if last else None,
-        "rolled_back": next(
-            (r["rolled_back"] for _, _, r in reversed(history) if r.get("rolled_back")), None
-        ),
-        "metrics": list(metrics.values()),
-    }
+    return WatchView.model_validate(
+        {
+            "plan": plan,
+            "version": v,
+            "live_version": live_version,
+            "auto_rollback": auto,
+            "uploads": len(history),
+            "members": last["members"] if last else 0,
+            "holdout_flag_disagreement": last["holdout_flag_disagreement"] if last else None,
+            "rolled_back": next(
+                (r["rolled_back"] for _, _, r in reversed(history) if r.get("rolled_back")), None
+            ),
+            "metrics": list(metrics.values()),
+        }
+    )
 
 
 def set_auto_rollback(
-    services: Services,
-    *,
-    plan: str,
-    enabled: bool,
-    min_units_per_group: int,
-    horizon: int | None,
-    actor: Actor,
-    reason: str,
-) -> dict[str, Any]:
-    if min_units_per_group < 1:
-        raise InvalidInput(
-            "min_units_per_group must be at least 1", errors=[{"field": "min_units_per_group"}]
-        )
+    services: Services, *, plan: str, command: AutoRollbackIn, actor: Actor
+) -> AutoRollbackView:
+    enabled, min_units_per_group, horizon = (
+        command.enabled,
+        command.min_units_per_group,
+        command.horizon,
+    )
     with services.db.write() as s:
         ptr = plan_repo.pointer(session=s, plan=plan, lock=True)
         if ptr is None:
@@ -301,6 +300,6 @@ def set_auto_rollback(
             entity="plan",
             entity_id=plan,
             payload=setting,
-            reason=reason,
+            reason=command.reason,
         )
-    return {"plan": plan, "auto_rollback": setting}
+    return AutoRollbackView.model_validate({"plan": plan, "auto_rollback": setting})

@@ -270,3 +270,59 @@ def test_declared_routes_answer_as_the_gateway_does(live) -> None:  # type: igno
     batch = '{"members": [{"member_id": "a"}, {"member_id": "b"}]}'
     b = inner.post(f"/v1/plans/{PLAN}/assign/batch", content=batch, headers=h)
     assert b.json() == _post(c, keys, batch, batch=True).json()
+
+
+def _documented(c: TestClient, path: str, method: str) -> dict:  # type: ignore[type-arg]
+    """The 200 answer's JSON schema of an operation as the app's OpenAPI document states it, with
+    the document's components beside it so that its `$ref`s resolve."""
+    doc = c.get("/openapi.json").json()
+    schema = doc["paths"][path][method]["responses"]["200"]["content"]["application/json"]["schema"]
+    return {**schema, "components": doc["components"]}
+
+
+def _fields(schema: dict, components: dict) -> set[str]:  # type: ignore[type-arg]
+    while "$ref" in schema:
+        schema = components["schemas"][schema["$ref"].rsplit("/", 1)[1]]
+    return set(schema["properties"])
+
+
+def test_the_fast_lookup_answers_are_exactly_the_documented_schema(live) -> None:  # type: ignore[no-untyped-def]
+    """The lookup path writes its own bytes, so its documented answer is checked against real
+    answers three ways: jsonschema (an outside implementation of JSON Schema 2020-12, which
+    OpenAPI 3.1 uses) validates each answer against the document's schema; the documented fields
+    are exactly the answer's keys; and the answer models (which forbid undeclared keys) parse
+    the raw bytes."""
+    from jsonschema import Draft202012Validator
+
+    from apportion.schemas.assignments import AssignOut, BatchOut, CompiledPlanOut
+
+    c, keys = live
+    members = [
+        {"member_id": f"m-{i}", "features": {"tenure_days": i, "level": "beginner"}}
+        for i in range(20)
+    ]
+    singles = [_post(c, keys, json.dumps(m)) for m in members] + [
+        _post(c, keys, '{"member_id": "x"}')
+    ]
+    batch = _post(c, keys, json.dumps({"members": members}), batch=True)
+    compiled = c.get(f"/v1/plans/{PLAN}/compiled", headers=keys.h(keys.reader))
+    cases = [("/v1/plans/{plan}/assign", AssignOut, r) for r in singles] + [
+        ("/v1/plans/{plan}/assign/batch", BatchOut, batch),
+        ("/v1/plans/{plan}/compiled", CompiledPlanOut, compiled),
+    ]
+    for path, model, r in cases:
+        assert r.status_code == 200, r.text
+        schema = _documented(c, path, "get" if path.endswith("compiled") else "post")
+        body = r.json()
+        errors = [e.message for e in Draft202012Validator(schema).iter_errors(body)]
+        assert errors == [], (path, errors)
+        assert _fields(schema, schema["components"]) == set(body), path
+        model.model_validate_json(r.content)
+    one = batch.json()["assignments"][0]
+    assert _fields(
+        {"$ref": "#/components/schemas/AssignOut"},
+        _documented(c, "/v1/plans/{plan}/assign", "post")["components"],
+    ) == set(one)
+    # a planted extra key is refused: the check above can fail
+    with pytest.raises(ValueError, match="extra"):
+        AssignOut.model_validate({**one, "surprise": 1})

@@ -14,8 +14,8 @@ from typing import Any
 import pytest
 from fastapi.testclient import TestClient
 
-from apportion.api.fields import INT64_MAX
 from apportion.openapi_export import render
+from apportion.schemas.common import INT64_MAX
 
 BIG = INT64_MAX + 1
 

@@ -87,22 +87,20 @@ def test_an_interrupted_fit_that_runs_out_of_attempts_leaves_its_model_failed(db
     from support import EXPERIMENT, rows_csv
 
     from apportion.domain import Actor
+    from apportion.schemas.experiments import ExperimentIn
+    from apportion.schemas.models import FitIn
     from apportion.usecases import experiments, models
 
     services = _services(db_url)
     analyst = Actor("t-analyst", "analyst")
-    experiments.declare(services.db, declaration=EXPERIMENT, actor=analyst)
+    experiments.declare(services.db, command=ExperimentIn.model_validate(EXPERIMENT), actor=analyst)
     experiments.upload_readout(
         services.db, key="checkout-copy", body=rows_csv(300), content_type="text/csv", actor=analyst
     )
     started = models.start_fit(
         services,
         key="checkout-copy",
-        readout_version=1,
-        method="global",
-        params={},
-        success_metric=None,
-        override_reason=None,
+        command=FitIn(readout_version=1, method="global"),
         actor=analyst,
     )
     runner = uc.JobRunner(services, worker_name="fresh")
@@ -110,13 +108,14 @@ def test_an_interrupted_fit_that_runs_out_of_attempts_leaves_its_model_failed(db
         # a worker claims the fit, marks the model running as the handler does, then dies
         with services.db.write() as s:
             assert repo.claim_next(session=s, worker=f"dead-{attempt}", kinds=("fit",)) is not None
-            models.repo.get_model(session=s, model_id=started["model_id"]).status = "running"
+            models.repo.get_model(session=s, model_id=started.model_id).status = "running"
         time.sleep(1.2)
         runner.reclaim()
-    job = uc.get_job(services, started["job_id"])
-    model = models.get_model(services.db, model_id=started["model_id"])
-    assert job["status"] == "failed" and job["error"].startswith("interrupted: no heartbeat")
-    assert model["status"] == "failed" and model["error"] == job["error"]
+    job = uc.get_job(services, started.job_id)
+    model = models.get_model(services.db, model_id=started.model_id)
+    assert job.status == "failed" and job.error
+    assert job.error.startswith("interrupted: no heartbeat")
+    assert model.status == "failed" and model.error == job.error
     services.db.dispose()
 
 

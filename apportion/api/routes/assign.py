@@ -25,71 +25,28 @@ import secrets
 import time
 from itertools import repeat
 from operator import itemgetter
-from typing import Annotated, Any, NotRequired
+from typing import Any
 
 import numpy as np
 from fastapi import APIRouter, Request
 from fastapi.responses import Response
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints, TypeAdapter, ValidationError
-from typing_extensions import TypedDict
+from pydantic import TypeAdapter, ValidationError
 
 from apportion.errors import ApportionError, InvalidInput, NotFound, PayloadTooLarge
 from apportion.observability import ASSIGNMENTS, LATENCY, REQUESTS
+from apportion.schemas.assignments import (
+    BATCH,
+    SINGLE,
+    AssignOut,
+    BatchOut,
+    CompiledPlanOut,
+)
 from apportion.usecases.auth import check_role
 from apportion.usecases.live import portable_document
 
 router = APIRouter(tags=["assignment"])
 log = logging.getLogger("apportion.errors")
-MAX_BATCH = 10_000
 MAX_ERRORS = 20  # validation problems listed in one answer
-
-
-class AssignIn(TypedDict):
-    """One member to assign. Extra keys are ignored."""
-
-    __pydantic_config__ = ConfigDict(extra="ignore")  # type: ignore[misc]
-    member_id: Annotated[str, StringConstraints(min_length=1, max_length=200)]
-    features: NotRequired[dict[str, Any]]
-
-
-class BatchIn(TypedDict):
-    """Up to 10,000 members, answered in order."""
-
-    __pydantic_config__ = ConfigDict(extra="ignore")  # type: ignore[misc]
-    members: Annotated[list[AssignIn], Field(max_length=MAX_BATCH)]
-
-
-SINGLE = TypeAdapter(AssignIn)
-BATCH = TypeAdapter(BatchIn)
-
-
-class AssignOut(BaseModel):
-    arm: str
-    cohort: int
-    plan_version: int
-    holdout: bool
-    defaults_used: list[str]
-
-
-class BatchOut(BaseModel):
-    assignments: list[AssignOut]
-
-
-class CompiledPlanOut(BaseModel):
-    """The portable compiled plan (format version 1, docs/compiled-plan.md)."""
-
-    format: str
-    format_version: int
-    plan: str
-    plan_version: int
-    revision: int
-    hashing: dict[str, Any]
-    arms: list[str]
-    holdout: dict[str, Any]
-    features: list[dict[str, str]]
-    nodes: list[dict[str, Any]]
-    cumulative: list[list[float]]
-    content_hash: str
 
 
 def _inline(schema: dict[str, Any]) -> dict[str, Any]:

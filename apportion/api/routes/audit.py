@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 from datetime import UTC, datetime
-from typing import Any
 
 from fastapi import APIRouter, Query
 
 from apportion.api.body import GuardedRoute
 from apportion.api.deps import AdminDep, ReaderDep, ServicesDep
-from apportion.api.fields import INT64_MAX, TextQuery
+from apportion.api.fields import TextQuery
+from apportion.schemas.audit import AuditPage, ChainCheck
+from apportion.schemas.common import INT64_MAX
 from apportion.usecases import audit as uc
 
 router = APIRouter(prefix="/v1/audit", tags=["audit"], route_class=GuardedRoute)
@@ -23,7 +24,7 @@ def _stamp(at: datetime | None) -> str | None:
     return at.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
-@router.get("", summary="Audit entries, oldest first")
+@router.get("", summary="Audit entries, oldest first", response_model=AuditPage)
 def list_entries(
     _: ReaderDep,
     services: ServicesDep,
@@ -37,7 +38,7 @@ def list_entries(
         0, ge=0, le=INT64_MAX, description="only entries with a larger id (for paging)"
     ),
     limit: int = Query(100, ge=1, le=1000),
-) -> dict[str, Any]:
+) -> AuditPage:
     return uc.entries(
         services.db,
         entity=entity,
@@ -49,6 +50,6 @@ def list_entries(
     )
 
 
-@router.get("/verify", summary="Verify the hash chain")
-def verify(_: AdminDep, services: ServicesDep) -> dict[str, Any]:
+@router.get("/verify", summary="Verify the hash chain", response_model=ChainCheck)
+def verify(_: AdminDep, services: ServicesDep) -> ChainCheck:
     return uc.verify(services.db)

@@ -2,35 +2,31 @@
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Any
 
 from fastapi import APIRouter, Request, status
 from fastapi.responses import JSONResponse
-from pydantic import BaseModel, Field, ValidationError
+from pydantic import ValidationError
 from starlette.concurrency import run_in_threadpool
 
 from apportion.api.body import UPLOAD_TYPES, GuardedRoute, read_limited, spool_upload
 from apportion.api.deps import AnalystDep, ReaderDep, ServicesDep
-from apportion.api.fields import NO_NUL, ShortText, VersionPath
-from apportion.api.params import KEY_PATTERN, ExperimentKey
+from apportion.api.fields import VersionPath
+from apportion.api.params import ExperimentKey
 from apportion.errors import InvalidInput
+from apportion.schemas.common import dump
+from apportion.schemas.experiments import (
+    ExperimentIn,
+    ExperimentView,
+    ReadoutImportQueued,
+    ReadoutSourceIn,
+    ReadoutView,
+)
 from apportion.usecases import experiments as uc
 from apportion.usecases import sources
 
 router = APIRouter(prefix="/v1/experiments", tags=["experiments"], route_class=GuardedRoute)
 MAX_SOURCE_BODY = 16 * 1024
-
-
-class ReadoutSourceIn(BaseModel):
-    """A readout by reference: a Parquet dataset the service may read (see the route)."""
-
-    model_config = {"extra": "forbid"}
-    source: str = Field(
-        min_length=1, max_length=2000, pattern=NO_NUL, description="file, directory or glob URI"
-    )
-    partitioning: Literal["hive"] | None = Field(
-        None, description="'hive' when directories name partition columns (key=value)"
-    )
 
 
 READOUT_OPENAPI = {
@@ -42,51 +38,26 @@ READOUT_OPENAPI = {
         },
     }
 }
-KEY = r"^[a-z0-9][a-z0-9_-]{0,99}$"
-COLUMN = r"^[A-Za-z_][A-Za-z0-9_]{0,99}$"
 
 
-class ArmIn(BaseModel):
-    key: str = Field(pattern=COLUMN)
-    share: float = Field(gt=0, le=1, description="designed share of units")
+@router.post(
+    "",
+    status_code=status.HTTP_201_CREATED,
+    summary="Declare an experiment",
+    response_model=ExperimentView,
+    response_model_exclude_unset=True,
+)
+def declare(body: ExperimentIn, actor: AnalystDep, services: ServicesDep) -> Any:
+    return uc.declare(services.db, command=body, actor=actor)
 
 
-class MetricIn(BaseModel):
-    key: str = Field(pattern=COLUMN)
-    kind: Literal["mean", "proportion", "ratio"]
-    direction: Literal["higher", "lower"] = "higher"
-    numerator: str | None = Field(
-        None, pattern=COLUMN, description="ratio metrics: the numerator column"
-    )
-    denominator: str | None = Field(
-        None, pattern=COLUMN, description="ratio metrics: the denominator column"
-    )
-
-
-class FeatureIn(BaseModel):
-    key: str = Field(pattern=COLUMN)
-    kind: Literal["numeric", "categorical"]
-    levels: list[ShortText] | None = Field(
-        None, max_length=10000, description="categorical: the allowed levels (optional)"
-    )
-
-
-class ExperimentIn(BaseModel):
-    key: str = Field(pattern=KEY_PATTERN)
-    name: ShortText | None = None
-    arms: list[ArmIn] = Field(min_length=2, max_length=20)
-    control: ShortText
-    metrics: list[MetricIn] = Field(min_length=1, max_length=50)
-    features: list[FeatureIn] = Field(default_factory=list, max_length=200)
-
-
-@router.post("", status_code=status.HTTP_201_CREATED, summary="Declare an experiment")
-def declare(body: ExperimentIn, actor: AnalystDep, services: ServicesDep) -> dict[str, Any]:
-    return uc.declare(services.db, declaration=body.model_dump(exclude_none=True), actor=actor)
-
-
-@router.get("/{key}", summary="An experiment's declaration and its readouts")
-def get_experiment(key: ExperimentKey, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+@router.get(
+    "/{key}",
+    summary="An experiment's declaration and its readouts",
+    response_model=ExperimentView,
+    response_model_exclude_unset=True,
+)
+def get_experiment(key: ExperimentKey, _: ReaderDep, services: ServicesDep) -> Any:
     return uc.get(services.db, key=key)
 
 
@@ -99,9 +70,16 @@ def get_experiment(key: ExperimentKey, _: ReaderDep, services: ServicesDep) -> d
     "(APPORTION_READOUT_SOURCE_PREFIXES); it is validated and snapshotted in a job (202).",
     openapi_extra=READOUT_OPENAPI,
     status_code=status.HTTP_201_CREATED,
+    response_model=ReadoutView,
     responses={
-        200: {"description": "the same bytes were uploaded before: the existing version"},
-        202: {"description": "a source by reference: the import job was queued"},
+        200: {
+            "description": "the same bytes were uploaded before: the existing version",
+            "model": ReadoutView,
+        },
+        202: {
+            "description": "a source by reference: the import job was queued",
+            "model": ReadoutImportQueued,
+        },
         403: {"description": "the source is not under an allowed prefix"},
         415: {"description": "an unsupported media type or content encoding"},
         413: {"description": "too large"},
@@ -129,16 +107,18 @@ async def upload_readout(
         )
     finally:
         spooled.remove()
-    return JSONResponse(view, status_code=201 if created else 200)
+    return JSONResponse(dump(view), status_code=201 if created else 200)
 
 
 @router.get(
     "/{key}/readouts/{version}",
     summary="A readout's summary: per arm and metric n, mean, standard error",
+    response_model=ReadoutView,
+    response_model_exclude_unset=True,
 )
 def get_readout(
     key: ExperimentKey, version: VersionPath, _: ReaderDep, services: ServicesDep
-) -> dict[str, Any]:
+) -> Any:
     return uc.get_readout(services.db, key=key, version=version)
 
 
@@ -156,11 +136,6 @@ async def _import_by_reference(
             ],
         ) from exc
     view = await run_in_threadpool(
-        sources.import_readout,
-        services,
-        key=key,
-        source=body.source,
-        partitioning=body.partitioning,
-        actor=actor,
+        sources.import_readout, services, key=key, command=body, actor=actor
     )
-    return JSONResponse(view, status_code=202)
+    return JSONResponse(dump(view), status_code=202)

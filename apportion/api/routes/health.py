@@ -11,12 +11,13 @@ from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
 from apportion.api.body import LimitedRoute
 from apportion.api.deps import ServicesDep
 from apportion.observability import REFRESH_AGE, REGISTRY
+from apportion.schemas.common import Liveness, Readiness
 from apportion.usecases.operations import readiness
 
 router = APIRouter(tags=["operations"], route_class=LimitedRoute)
 
 
-@router.get("/healthz", summary="Liveness: the process answers")
+@router.get("/healthz", summary="Liveness: the process answers", response_model=Liveness)
 def healthz() -> dict[str, str]:
     return {"status": "ok"}
 
@@ -24,10 +25,11 @@ def healthz() -> dict[str, str]:
 @router.get(
     "/readyz",
     summary="Readiness: database reachable, migrations current, plans loaded",
+    response_model=Readiness,
     responses={
         503: {
             "description": "not ready: the same body, naming the check that failed",
-            "content": {"application/json": {}},
+            "model": Readiness,
         }
     },
 )
@@ -39,7 +41,12 @@ def readyz(services: ServicesDep) -> JSONResponse:
     )
 
 
-@router.get("/metrics", summary="Prometheus text format", response_class=Response)
+@router.get(
+    "/metrics",
+    summary="Prometheus text format",
+    response_class=Response,
+    responses={200: {"content": {"text/plain": {"schema": {"type": "string"}}}}},
+)
 def metrics(request: Request) -> Response:
     plans = request.app.state.services.plans
     if plans is not None and plans.last_refresh:

@@ -9,6 +9,7 @@ from fastapi import APIRouter
 from apportion.api.body import GuardedRoute
 from apportion.api.deps import ReaderDep, ServicesDep
 from apportion.api.params import JobId
+from apportion.schemas.jobs import JobView
 from apportion.usecases import jobs as uc
 
 router = APIRouter(tags=["jobs"], route_class=GuardedRoute)
@@ -17,6 +18,7 @@ router = APIRouter(tags=["jobs"], route_class=GuardedRoute)
 @router.get(
     "/v1/jobs/{job_id}",
     summary="A job's state: queued, running, done or failed, with progress 0..1",
+    response_model=JobView,
 )
-def get_job(job_id: JobId, _: ReaderDep, services: ServicesDep) -> dict[str, Any]:
+def get_job(job_id: JobId, _: ReaderDep, services: ServicesDep) -> Any:
     return uc.get_job(services, job_id)

@@ -2,51 +2,15 @@
 
 from __future__ import annotations
 
-from typing import Literal
-
 from fastapi import APIRouter, status
-from pydantic import BaseModel, Field
 
 from apportion.api.body import GuardedRoute
 from apportion.api.deps import AdminDep, ServicesDep
 from apportion.api.fields import IdPath
+from apportion.schemas.keys import KeyCreate, KeyCreated, KeyOut
 from apportion.usecases import auth
 
 router = APIRouter(prefix="/v1/keys", tags=["keys"], route_class=GuardedRoute)
-
-
-IDENTITY = r"^[A-Za-z0-9_.@-]+$"
-
-
-class KeyCreate(BaseModel):
-    name: str = Field(
-        min_length=1,
-        max_length=100,
-        pattern=IDENTITY,
-        description="the key's label, e.g. 'ci-deploy'",
-    )
-    owner: str = Field(
-        min_length=1,
-        max_length=100,
-        pattern=IDENTITY,
-        description="the person or system identity the key belongs to (e.g. 'ana@example.org'); "
-        "separation of duties compares owners, so one owner's keys never approve that owner's drafts",
-    )
-    role: Literal["reader", "analyst", "approver", "admin"]
-
-
-class KeyOut(BaseModel):
-    id: int
-    name: str
-    owner: str
-    role: str
-    created_at: str
-    created_by: str
-    revoked_at: str | None = None
-
-
-class KeyCreated(KeyOut):
-    secret: str = Field(description="shown once; only its SHA-256 is stored")
 
 
 @router.post(
