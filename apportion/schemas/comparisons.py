@@ -101,9 +101,12 @@ class CandidateRow(Answer):
     metrics: dict[str, HeldOutMetric]
     folds_without_plan: int
     seconds: float
-    status: Literal["verified", "unverified", "refused"]
+    status: Literal["verified", "unverified", "refused", "failed"] = Field(
+        description="failed: the candidate's fit or plan was refused on some fold (see error)"
+    )
     failing: list[str] = Field(description="guardrails whose held-out estimate breaks them")
-    rank: int
+    rank: int | None = Field(description="null for a failed candidate")
+    error: str | None = Field(None, description="why a failed candidate left the comparison")
 
 
 class ComparisonView(Answer):

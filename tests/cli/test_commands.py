@@ -246,8 +246,8 @@ def test_parse_pairs_types() -> None:
 
 
 def test_cli_api_and_fitter_offer_the_same_model_methods():
-    from apportion.api.routes.models import FitIn
     from apportion.cli.models import MODEL_METHODS
+    from apportion.schemas.models import FitIn
     from apportion.stats.models import METHODS
 
     assert MODEL_METHODS == METHODS
