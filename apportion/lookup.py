@@ -290,14 +290,14 @@ class Plan:
         node = self._root
         defaults: list[int] | None = None
         while True:
-            key = node.key
-            if key is None:
+            split_on = node.key
+            if split_on is None:
                 break
-            v = get(key)
+            v = get(split_on)
             if node.numeric:  # x < threshold goes left; missing or NaN take the default
                 side = None if v is None or v != v else v < node.threshold
             else:  # categorical: a level the node saw; anything else takes the default
-                side = node.levels.get(v)  # type: ignore[union-attr]  # a split has levels
+                side = node.levels.get(v)  # type: ignore[union-attr, arg-type]  # a split has levels
             if side is None:
                 side = node.default_left
                 if defaults is None:

@@ -163,7 +163,7 @@ def _encode_columns(
                 codes = np.fromiter(map(lut.get, col, repeat(miss, n)), np.intp, n)
             except TypeError:  # an unhashable value (a list, an object): check them all
                 vals = [categorical_value(key, v, members[i], i) for i, v in enumerate(col)]
-                codes = np.fromiter(map(lut.get, vals, repeat(miss, n)), np.intp, n)
+                codes = np.fromiter(map(lut.get, vals, repeat(miss, n)), np.intp, n)  # type: ignore[arg-type]
             for i in np.flatnonzero(codes == miss).tolist():
                 v = col[i]
                 if v is not None and type(v) is not str:
@@ -183,6 +183,7 @@ def _walk(t: FlatTree, codes: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarra
     ar = np.arange(n, dtype=np.intp)
     flat = codes.reshape(-1)
     feat, width, nxt, defaulted = t.node_feature, t.width, t.next_node, t.defaulted
+    assert defaulted is not None  # built with the table (compile.py)
     for _ in range(t.depth):
         f = feat.take(node)
         idx = node * width

@@ -37,6 +37,7 @@ from apportion.serving.compile import FlatTree, compile_tree, frozen
 from apportion.serving.hashing import hash_state, new_salt, normalise_member_id, unit_uniform
 from apportion.serving.portable import compiled_document
 from apportion.stats.partition import Partition
+from apportion.stats.table import FeatureSpec
 
 __all__ = [
     "Assignment",
@@ -101,8 +102,14 @@ class CompiledPlan:
     tree: FlatTree
     feature_keys: tuple[str, ...]
     checks: tuple[tuple[str, bool], ...]
+    feature_specs: Mapping[str, FeatureSpec]
     answers: dict[int, Assignment]
     holdout_index: int
+    holdout_state: Any  # a hashlib.blake2b state, copied per draw
+    arm_state: Any
+    _kernel: PortablePlan
+    _cum_lists: tuple[tuple[float, ...], ...]
+    _portable: list[Any]
 
     def __init__(
         self,

@@ -83,7 +83,7 @@ def draft_version(
         shares = mix
     guardrails = guardrails_of(body)
     method = body.get("method", "chance")
-    spec = {
+    spec: dict[str, Any] = {
         k: body.get(k)
         for k in (
             "model_id",

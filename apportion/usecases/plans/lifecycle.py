@@ -97,7 +97,11 @@ def _switch(
         actor=actor.name,
         reason=reason,
     )
-    payload = {"from_version": previous, "to_version": to_version, "revision": revision}
+    payload: dict[str, Any] = {
+        "from_version": previous,
+        "to_version": to_version,
+        "revision": revision,
+    }
     if evidence:
         payload["evidence"] = evidence
     audit.append(
