@@ -2,14 +2,12 @@
 
 from __future__ import annotations
 
-from typing import Literal
-
 from pydantic import BaseModel, Field
 
+from apportion.domain import Role
 from apportion.schemas.common import Answer, Timestamp
 
 IDENTITY = r"^[A-Za-z0-9_.@-]+$"
-Role = Literal["reader", "analyst", "approver", "admin"]
 
 
 class KeyCreate(BaseModel):
