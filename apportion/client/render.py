@@ -2,7 +2,11 @@
 prints them to the terminal and the demo to its report, so both show an answer the same way.
 
 Every function takes an answer as the server sent it (parsed JSON) and returns a rich renderable;
-`to_text` turns one into plain text (no colour) for files and tests."""
+`to_text` turns one into plain text (no colour) for files and tests.
+
+Longer than most modules (about 470 lines) on purpose: one rendering per kind of answer, all
+built from the same few number and table helpers, so the terminal and the demo's report read
+the same; split by resource they would each need those helpers again."""
 
 from __future__ import annotations
 

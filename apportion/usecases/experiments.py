@@ -1,9 +1,9 @@
 """Declaring experiments and storing readouts: validated whole, stored with their audit entry in one
 transaction, immutable and content-hashed (the same bytes twice give the same version).
 
-Longer than most modules (about 510 lines): the declaration's validation and the readout's
-upload share the experiment's specs (`specs_of`) and its view; a split into declaring and
-readouts is the next step once the typed commands and views of `apportion/schemas` settle."""
+Longer than most modules (about 530 lines): the declaration's validation and the readout's
+upload share the experiment's specs (`specs_of`) and its view, and a readout is checked against
+the declaration it belongs to; a split into declaring and readouts would pass both around."""
 
 from __future__ import annotations
 
