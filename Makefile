@@ -1,4 +1,6 @@
 # Apportion: the two commands are `make demo` and `make test`; `make serve` runs the API.
+# `make test` runs pytest on two workers (pytest-xdist), one test module per worker at a time
+# (`--dist loadscope`), so a module's fitted-model snapshot is built once (tests/snapshots.py).
 PY ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
@@ -28,7 +30,7 @@ demo: $(STAMP)
 
 test: $(DEVSTAMP)
 	$(BIN)/ruff check apportion tests bench migrations
-	$(BIN)/python -m pytest
+	$(BIN)/python -m pytest -n 2 --dist loadscope
 	@command -v node >/dev/null || { echo "make test: the JavaScript evaluator's tests need Node.js >= 18 (Debian: apt-get install nodejs)"; exit 1; }
 	node --test js/test/
 

@@ -1,25 +1,59 @@
 """Shared fixtures. Tests that need a database run on SQLite always, and on PostgreSQL too when
-APPORTION_TEST_DATABASE_URL is set (each test gets an empty schema)."""
+APPORTION_TEST_DATABASE_URL is set.
+
+Each test gets its own database, already migrated: the migrations run once per backend and worker
+into a template (a SQLite file, a PostgreSQL database), and every test gets a copy of it (a file
+copy; PostgreSQL's CREATE DATABASE ... TEMPLATE). A module whose tests all start from the same
+fitted model builds that state once with `snapshot(...)` and gives each test a copy of it the same
+way, so a test may still change what it was given. Under pytest-xdist every worker has its own
+databases (their names carry the worker's tag) and its own temporary directories."""
 
 from __future__ import annotations
 
-import os
 from collections.abc import Iterator
+from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
-from support import Keys, make_keys, make_settings, reset_postgres
-
-PG_URL = os.environ.get("APPORTION_TEST_DATABASE_URL")
-BACKENDS = ["sqlite"] + (["postgresql"] if PG_URL else [])
+from snapshots import BACKENDS, Snapshot, empty_database, pg_name
+from support import Keys, drop_postgres, make_keys, make_settings, reset_postgres
 
 
-@pytest.fixture(params=BACKENDS)
-def db_url(request: pytest.FixtureRequest, tmp_path) -> str:  # type: ignore[no-untyped-def]
-    if request.param == "sqlite":
+@pytest.fixture(scope="session", params=BACKENDS)
+def backend(request: pytest.FixtureRequest) -> str:
+    return str(request.param)
+
+
+@pytest.fixture(scope="session")
+def migrated(backend: str, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Snapshot]:
+    """An empty database at the head revision, made once per backend (and worker)."""
+    from apportion.store.db import Database
+    from apportion.store.migrate import upgrade
+
+    d = tmp_path_factory.mktemp(f"migrated-{backend}")
+    url = empty_database(backend, d, "migrated")
+    db = Database.connect(url, pool_size=1)
+    try:
+        upgrade(db.engine, blob_uri=str(d / "blobs"))
+    finally:
+        db.dispose()
+    yield Snapshot(backend, url, str(d / "blobs"))
+    if backend == "postgresql":
+        drop_postgres(pg_name("migrated"))
+
+
+@pytest.fixture
+def db_url(migrated: Snapshot, tmp_path: Path) -> str:
+    """A private copy of the migrated template."""
+    return migrated.clone(tmp_path)
+
+
+@pytest.fixture
+def empty_db_url(backend: str, tmp_path: Path) -> str:
+    """A database with no tables at all (for the migration tests)."""
+    if backend == "sqlite":
         return f"sqlite:///{tmp_path}/apportion.db"
-    assert PG_URL
-    return reset_postgres(PG_URL)
+    return reset_postgres("empty")
 
 
 @pytest.fixture

@@ -1,5 +1,11 @@
-"""Real server processes for the race and kill -9 suites: `apportion serve` on a free port against a
-given database, with its stderr kept in a log file so a failure shows what the server said."""
+"""The one place tests (and bench/serve.py) get a running server from.
+
+- `thread_server(app)`: the app under uvicorn in a background thread of this process, on a free
+  127.0.0.1 port (the demo's own `serve_in_thread`, so tests run the server the demo runs); for the
+  browser and command-line tests, which need a real socket but may share the process.
+- `Server`: `apportion serve` as a child process on a free port against a given database, with its
+  stderr kept in a log file so a failure shows what the server said; for the race and kill -9
+  suites, which need two processes or a process to kill, and for the benchmark."""
 
 from __future__ import annotations
 
@@ -9,9 +15,12 @@ import socket
 import subprocess
 import sys
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import SimpleNamespace
+from typing import Any
 
 import httpx
 from support import Keys, make_keys, reset_postgres
@@ -23,12 +32,24 @@ NO_POSTGRES = (
 )
 
 
+@contextmanager
+def thread_server(app: Any) -> Iterator[str]:
+    """Serve `app` (its lifespan runs first) until the block ends; yields its base URL."""
+    from apportion.demo.run import serve_in_thread
+
+    running = serve_in_thread(app, port=0)
+    try:
+        yield running.url
+    finally:
+        running.stop()
+
+
 def fresh_database(kind: str, tmp_path: Path) -> str:
     """An empty SQLite file, or the PostgreSQL test database with an empty `public` schema."""
     if kind == "sqlite":
         return f"sqlite:///{tmp_path}/apportion.db"
     assert PG_URL, NO_POSTGRES
-    return reset_postgres(PG_URL)
+    return reset_postgres("server")
 
 
 def prepare(db_url: str) -> Keys:

@@ -51,22 +51,77 @@ def rows_csv(n: int = 400, seed: int = 1, arms=None) -> bytes:  # type: ignore[n
     return ("\n".join(lines) + "\n").encode()
 
 
-def reset_postgres(url: str) -> str:
-    """Empty the `public` schema of a throwaway PostgreSQL database; returns the psycopg URL."""
+PG_URL = os.environ.get("APPORTION_TEST_DATABASE_URL")
+
+
+def _psycopg(url: str) -> str:
+    if url.startswith("postgresql://"):
+        return "postgresql+psycopg://" + url[len("postgresql://") :]
+    return url
+
+
+def worker_tag() -> str:
+    """`gw0`, `gw1`, ... under pytest-xdist, else `main`: each worker's databases carry it, so two
+    workers never share a PostgreSQL database."""
+    return os.environ.get("PYTEST_XDIST_WORKER", "main")
+
+
+def postgres_url(name: str) -> str:
+    """APPORTION_TEST_DATABASE_URL with its database name replaced by `name`."""
+    from sqlalchemy.engine import make_url
+
+    assert PG_URL
+    return make_url(_psycopg(PG_URL)).set(database=name).render_as_string(hide_password=False)
+
+
+def recreate_postgres(name: str, template: str | None = None) -> str:
+    """Drop database `name` (closing its leftover connections) and create it again, empty or as
+    a copy of database `template` (PostgreSQL's CREATE DATABASE ... TEMPLATE copies the files, far
+    cheaper than replaying the migrations); returns its URL. The administrative connection goes
+    to the throwaway database of APPORTION_TEST_DATABASE_URL, which is never dropped."""
     from sqlalchemy import create_engine, text
 
-    if url.startswith("postgresql://"):
-        url = "postgresql+psycopg://" + url[len("postgresql://") :]
-    eng = create_engine(url, isolation_level="AUTOCOMMIT")
-    with eng.connect() as c:
-        c.execute(text("DROP SCHEMA IF EXISTS public CASCADE"))
-        c.execute(text("CREATE SCHEMA public"))
-    eng.dispose()
-    return url
+    assert PG_URL
+    eng = create_engine(_psycopg(PG_URL), isolation_level="AUTOCOMMIT")
+    try:
+        with eng.connect() as c:
+            c.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+            tail = f' TEMPLATE "{template}"' if template else ""
+            c.execute(text(f'CREATE DATABASE "{name}"{tail}'))
+    finally:
+        eng.dispose()
+    return postgres_url(name)
+
+
+def drop_postgres(name: str) -> None:
+    from sqlalchemy import create_engine, text
+
+    assert PG_URL
+    eng = create_engine(_psycopg(PG_URL), isolation_level="AUTOCOMMIT")
+    try:
+        with eng.connect() as c:
+            c.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+    finally:
+        eng.dispose()
+
+
+def reset_postgres(label: str = "db") -> str:
+    """An empty PostgreSQL database of this worker's own (`<test db>_<worker>_<label>`)."""
+    from sqlalchemy.engine import make_url
+
+    assert PG_URL
+    base = make_url(_psycopg(PG_URL)).database
+    return recreate_postgres(f"{base}_{worker_tag()}_{label}")
+
+
+# blob store of a database URL whose blobs do not sit beside it (cloned PostgreSQL databases)
+BLOB_DIRS: dict[str, str] = {}
 
 
 def _blob_dir(db_url: str) -> str:
     """A blob store beside a SQLite test database, else a fresh temporary directory."""
+    if db_url in BLOB_DIRS:
+        return BLOB_DIRS[db_url]
     if db_url.startswith("sqlite:///") and db_url != "sqlite:///:memory:":
         return os.path.join(os.path.dirname(db_url[len("sqlite:///") :]), "blobs")
     return tempfile.mkdtemp(prefix="apportion-blobs-")
@@ -144,6 +199,49 @@ def draft_plan(client, keys, model_id: int, plan: str = "lesson-length", **overr
     r = client.post(f"/v1/plans/{plan}/versions", json=body, headers=keys.h(keys.analyst))
     assert r.status_code == 201, r.text
     return r.json()
+
+
+def approve(
+    client, keys, version: int, *, plan: str = "lesson-length", approver: str | None = None
+) -> dict:  # type: ignore[no-untyped-def]
+    """Approve `version` of `plan` with the first approver's key (not the author of a draft made by
+    the analyst key); asserts the 200 and returns the version."""
+    r = client.post(
+        f"/v1/plans/{plan}/versions/{version}/approve",
+        json={"reason": "reviewed"},
+        headers=keys.h(approver or keys.approver),
+    )
+    assert r.status_code == 200, r.text
+    return r.json()
+
+
+def activate(
+    client, keys, version: int, *, plan: str = "lesson-length", expected_revision: int | None = None
+) -> dict:  # type: ignore[no-untyped-def]
+    """Make approved `version` live; the expected revision is the plan's current one unless
+    given. Asserts the 200 and returns the answer."""
+    h = keys.h(keys.approver)
+    if expected_revision is None:
+        r = client.get(f"/v1/plans/{plan}", headers=h)
+        assert r.status_code == 200, r.text
+        expected_revision = r.json()["revision"]
+    body = {"version": version, "reason": "go", "expected_revision": expected_revision}
+    r = client.post(f"/v1/plans/{plan}/activate", json=body, headers=h)
+    assert r.status_code == 200, r.text
+    return r.json()
+
+
+def launch(client, keys, *versions: int, plan: str = "lesson-length") -> dict:  # type: ignore[no-untyped-def]
+    """Approve each of `versions` (drafted by the analyst key), then activate them in order, so
+    the last one is live and the earlier ones are there to roll back to; returns the last
+    activation's answer. Works with a TestClient and an httpx.Client alike."""
+    assert versions
+    for v in versions:
+        approve(client, keys, v, plan=plan)
+    out: dict = {}
+    for v in versions:
+        out = activate(client, keys, v, plan=plan)
+    return out
 
 
 @dataclass

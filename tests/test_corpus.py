@@ -19,10 +19,17 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import BACKENDS, PG_URL
 from fastapi.testclient import TestClient
 from sqlalchemy import inspect, text
-from support import Keys, draft_plan, make_keys, make_settings, reset_postgres, scenario_model
+from support import (
+    Keys,
+    draft_plan,
+    launch,
+    make_keys,
+    make_settings,
+    reset_postgres,
+    scenario_model,
+)
 
 from apportion.app import create_app
 
@@ -34,15 +41,14 @@ def _load(path: Path) -> dict[str, Any]:
     return json.loads(path.read_text())
 
 
-@pytest.fixture(scope="module", params=BACKENDS)
-def seeded(request: pytest.FixtureRequest, tmp_path_factory) -> Iterator[tuple[TestClient, Keys]]:  # type: ignore[no-untyped-def]
+@pytest.fixture(scope="module")
+def seeded(backend: str, tmp_path_factory) -> Iterator[tuple[TestClient, Keys]]:  # type: ignore[no-untyped-def]
     """One service per backend: readout 1 of 'lesson-length', model 1, plan 'lesson-length'
     version 1 approved and live (revision 1)."""
-    if request.param == "sqlite":
+    if backend == "sqlite":
         url = f"sqlite:///{tmp_path_factory.mktemp('corpus')}/apportion.db"
     else:
-        assert PG_URL
-        url = reset_postgres(PG_URL)
+        url = reset_postgres("corpus")
     app = create_app(make_settings(url))
     with TestClient(app, raise_server_exceptions=False) as client:
         keys = make_keys(app.state.services)
@@ -51,17 +57,7 @@ def seeded(request: pytest.FixtureRequest, tmp_path_factory) -> Iterator[tuple[T
         )
         assert model == 1
         draft_plan(client, keys, model, method="deterministic", draws=10, guardrails=[])
-        h = keys.h(keys.approver)
-        r = client.post(
-            "/v1/plans/lesson-length/versions/1/approve", json={"reason": "ok"}, headers=h
-        )
-        assert r.status_code == 200, r.text
-        r = client.post(
-            "/v1/plans/lesson-length/activate",
-            json={"version": 1, "reason": "go", "expected_revision": 0},
-            headers=h,
-        )
-        assert r.status_code == 200, r.text
+        launch(client, keys, 1)
         yield client, keys
 
 

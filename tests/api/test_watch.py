@@ -10,34 +10,29 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pytest
 from fastapi.testclient import TestClient
-from support import draft_plan, scenario_model
+from snapshots import module_snapshot
+from support import draft_plan, launch, scenario_model
 
 from apportion.demo.postlaunch import harm_to_beginners, post_launch_csv
 
 CSV = {"content-type": "text/csv"}
 
 
-@pytest.fixture
-def live_plan(client: TestClient, keys):  # type: ignore[no-untyped-def]
+def _two_live_versions(client: TestClient, keys) -> dict:  # type: ignore[no-untyped-def]
     """Versions 1 and 2 approved; 1 went live first, then 2 (so a rollback has somewhere to go)."""
     model = scenario_model(client, keys)
     draft_plan(client, keys, model, holdout={"share": 0.2})
     draft_plan(client, keys, model, holdout={"share": 0.2}, method="deterministic")
-    h = keys.h(keys.approver)
-    for v in (1, 2):
-        client.post(
-            f"/v1/plans/lesson-length/versions/{v}/approve", json={"reason": "ok"}, headers=h
-        )
-    client.post(
-        "/v1/plans/lesson-length/activate",
-        json={"version": 1, "reason": "go", "expected_revision": 0},
-        headers=h,
-    )
-    client.post(
-        "/v1/plans/lesson-length/activate",
-        json={"version": 2, "reason": "v2", "expected_revision": 1},
-        headers=h,
-    )
+    launch(client, keys, 1, 2)
+    return {}
+
+
+# one fit, two drafts and two activations for the module; each test gets its own copy
+snap, db_url, keys = module_snapshot(_two_live_versions)
+
+
+@pytest.fixture
+def live_plan(client: TestClient, keys):  # type: ignore[no-untyped-def]
     return client.app.state.services  # type: ignore[attr-defined]
 
 

@@ -33,8 +33,8 @@ def _table(n: int = 300, seed: int = 3) -> UnitTable:
     )
 
 
-def test_readout_and_blob_survive_the_move_out_of_the_database(db_url: str, tmp_path) -> None:
-    engine = make_engine(db_url)
+def test_readout_and_blob_survive_the_move_out_of_the_database(empty_db_url: str, tmp_path) -> None:
+    engine = make_engine(empty_db_url)
     upgrade(engine, "0003")
     table = _table()
     data = encode_table(table)
@@ -76,7 +76,7 @@ def test_readout_and_blob_survive_the_move_out_of_the_database(db_url: str, tmp_
     cols = {c["name"] for c in sa.inspect(engine).get_columns("blobs")}
     assert "data" not in cols and {"kind", "location"} <= cols
 
-    db = Database.connect(db_url, blob_uri=blob_dir)
+    db = Database.connect(empty_db_url, blob_uri=blob_dir)
     try:
         back, _row = load_readout_table(db, readout_id=7)
         assert list(back.unit_ids) == list(table.unit_ids)

@@ -17,8 +17,8 @@ def _downgrade(engine, revision: str) -> None:  # type: ignore[no-untyped-def]
         command.downgrade(cfg, revision)
 
 
-def test_comparisons_table_up_down_up(db_url: str) -> None:
-    engine = make_engine(db_url)
+def test_comparisons_table_up_down_up(empty_db_url: str) -> None:
+    engine = make_engine(empty_db_url)
     upgrade(engine, "0004")
     before = sorted(inspect(engine).get_table_names())
     assert "comparisons" not in before

@@ -11,8 +11,8 @@ from apportion.store.migrate import current_revision, head_revision, upgrade
 from apportion.store.tables import Base
 
 
-def test_upgrade_head_then_autogenerate_finds_no_difference(db_url: str) -> None:
-    engine = make_engine(db_url)
+def test_upgrade_head_then_autogenerate_finds_no_difference(empty_db_url: str) -> None:
+    engine = make_engine(empty_db_url)
     upgrade(engine)
     assert current_revision(engine) == head_revision()
     with engine.connect() as conn:
@@ -22,12 +22,12 @@ def test_upgrade_head_then_autogenerate_finds_no_difference(db_url: str) -> None
     assert diff == []
 
 
-def test_readyz_is_503_while_schema_is_behind(db_url: str) -> None:
+def test_readyz_is_503_while_schema_is_behind(empty_db_url: str) -> None:
     from support import make_settings
 
     from apportion.app import create_app
 
-    app = create_app(make_settings(db_url, migrate_on_start=False))
+    app = create_app(make_settings(empty_db_url, migrate_on_start=False))
     with TestClient(app) as c:
         r = c.get("/readyz")
         assert r.status_code == 503

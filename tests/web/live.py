@@ -1,14 +1,11 @@
-"""A real server for browser tests and the screenshot script: uvicorn in a background thread on a
-free 127.0.0.1 port, keys for every role, and the scenario plan drafted through the HTTP API.
+"""A real server for browser tests and the screenshot script: the app in a background thread on a
+free 127.0.0.1 port (tests/servers.py), keys for every role, and the scenario plan drafted through the HTTP API.
 
 Chromium comes from Debian's `chromium` package at /usr/bin/chromium (never a browser download);
 `launch_chromium` points Playwright at it."""
 
 from __future__ import annotations
 
-import socket
-import threading
-import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -44,36 +41,18 @@ class Live:
 
 @contextmanager
 def live_server(db_url: str) -> Iterator[Live]:
-    """Start the app on a free port; yield when it answers /healthz; stop it on exit."""
-    import uvicorn
+    """Start the app on a free port (servers.thread_server); stop it on exit."""
+    from servers import thread_server
     from support import make_keys, make_settings
 
     from apportion.app import create_app
 
     app = create_app(make_settings(db_url))
-    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
-    sock.bind(("127.0.0.1", 0))
-    port = sock.getsockname()[1]
-    config = uvicorn.Config(app, log_level="warning", access_log=False, ws="none", lifespan="on")
-    server = uvicorn.Server(config)
-    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
-    thread.start()
-    base = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + 30
-    while not server.started:
-        if time.monotonic() > deadline or not thread.is_alive():
-            raise RuntimeError("the test server did not start")
-        time.sleep(0.02)
-    services = app.state.services
-    keys = make_keys(services)
-    client = httpx.Client(base_url=base, timeout=60)
-    try:
-        yield Live(base=base, client=client, keys=keys, services=services)
-    finally:
-        client.close()
-        server.should_exit = True
-        thread.join(timeout=10)
-        sock.close()
+    with thread_server(app) as base:
+        services = app.state.services
+        keys = make_keys(services)
+        with httpx.Client(base_url=base, timeout=180) as client:
+            yield Live(base=base, client=client, keys=keys, services=services)
 
 
 def build_plan(

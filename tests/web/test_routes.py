@@ -7,12 +7,21 @@ import xml.etree.ElementTree as ET
 
 import pytest
 from fastapi.testclient import TestClient
-from support import draft_plan, scenario_model
+from snapshots import module_snapshot
+from support import draft_plan, launch, scenario_model
+
+
+def _drafted(client: TestClient, keys) -> dict:  # type: ignore[no-untyped-def]
+    return {"drafted": draft_plan(client, keys, scenario_model(client, keys, n=8000))}
+
+
+# one fit and one draft for the module; each test gets its own copy of that database
+snap, db_url, keys = module_snapshot(_drafted)
 
 
 @pytest.fixture
-def drafted(client: TestClient, keys) -> dict:  # type: ignore[no-untyped-def]
-    return draft_plan(client, keys, scenario_model(client, keys, n=8000))
+def drafted(snap) -> dict:  # type: ignore[no-untyped-def]
+    return snap.data["drafted"]
 
 
 def test_shell_needs_no_key_and_allows_only_this_origin(client: TestClient) -> None:
@@ -131,19 +140,7 @@ def test_live_version_page_draws_the_guardrail_watch(
 ) -> None:  # type: ignore[no-untyped-def]
     from apportion.demo.postlaunch import post_launch_csv
 
-    h = keys.h(keys.approver)
-    assert (
-        client.post(
-            "/v1/plans/lesson-length/versions/1/approve", json={"reason": "fine"}, headers=h
-        ).status_code
-        == 200
-    )
-    r = client.post(
-        "/v1/plans/lesson-length/activate",
-        json={"version": 1, "reason": "go", "expected_revision": 0},
-        headers=h,
-    )
-    assert r.status_code == 200, r.text
+    launch(client, keys, 1)
     compiled = client.app.state.services.plans.get("lesson-length")  # type: ignore[attr-defined]
     for seed in (5, 6):
         r = client.post(
