@@ -42,8 +42,6 @@ import os
 import re
 import resource
 import shutil
-import signal
-import socket
 import statistics
 import subprocess
 import sys
@@ -57,6 +55,9 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # run as a script from anywhere
+sys.path.insert(0, str(ROOT / "tests"))  # the server harness the tests use (tests/servers.py)
+
+from servers import Server  # noqa: E402
 
 from apportion.client import ApportionClient  # noqa: E402
 from apportion.demo.scenario import (  # noqa: E402
@@ -75,12 +76,6 @@ LUA = Path(__file__).with_name("serve_assign.lua")
 PLAN = "lesson-length"
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
 def _cli(env: dict[str, str], *args: str) -> str:
     exe = ROOT / ".venv" / "bin" / "apportion"
     out = subprocess.run(
@@ -89,53 +84,27 @@ def _cli(env: dict[str, str], *args: str) -> str:
     return out.stdout.strip().splitlines()[-1]
 
 
-def _start(cmd: list[str], env: dict[str, str], ready: str, log: Path) -> subprocess.Popen:
-    with log.open("wb") as fh:
-        proc = subprocess.Popen(
-            cmd, env=env, stdout=fh, stderr=subprocess.STDOUT, start_new_session=True
-        )
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            raise RuntimeError(f"server exited with {proc.returncode}: {log.read_text()[-2000:]}")
-        try:
-            httpx.get(ready, timeout=1)
-            return proc
-        except httpx.HTTPError:
-            pass
-        time.sleep(0.2)
-    _stop(proc)
-    raise RuntimeError(f"{cmd} did not answer in 60 s")
-
-
-def _start_servers(env: dict[str, str], workers: int, tmp: Path) -> tuple[Any, Any, int, int]:
-    """(lookup server, reference server, their ports), both with `workers` processes."""
-    exe = ROOT / ".venv" / "bin" / "apportion"
-    p1, p2 = _free_port(), _free_port()
-    lookup = _start(
-        [str(exe), "serve", "--host", "127.0.0.1", "--port", str(p1), "--workers", str(workers)],
-        env,
-        f"http://127.0.0.1:{p1}/readyz",
-        tmp / f"serve-{workers}.log",
-    )
-    ref = _start(
-        [sys.executable, str(ROOT / "bench" / "serve_reference.py"), "--port", str(p2),
-         "--workers", str(workers)],
-        env,
-        f"http://127.0.0.1:{p2}/",
-        tmp / f"reference-{workers}.log",
-    )  # fmt: skip
-    return lookup, ref, p1, p2
-
-
-def _stop(proc: subprocess.Popen) -> None:
-    if proc.poll() is None:
-        os.killpg(proc.pid, signal.SIGINT)  # the server and its worker processes
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
+def _start_servers(env: dict[str, str], workers: int, tmp: Path) -> tuple[Server, Server]:
+    """(lookup server, reference server), both with `workers` processes (tests/servers.py's
+    harness, without the test settings)."""
+    lookup = Server(
+        env["APPORTION_DATABASE_URL"], tmp / f"serve-{workers}.log", env=env,
+        args=["--workers", str(workers)], test_settings=False,
+    ).launch()  # fmt: skip
+    ref = Server(
+        "", tmp / f"reference-{workers}.log", env=env, test_settings=False, ready_path="/",
+        ready_status=None,
+        command=[sys.executable, str(ROOT / "bench" / "serve_reference.py"), "--port", "{port}",
+                 "--workers", str(workers)],
+    ).launch()  # fmt: skip
+    try:
+        lookup.wait_ready(60)
+        ref.wait_ready(60)
+    except AssertionError:
+        lookup.stop()
+        ref.stop()
+        raise
+    return lookup, ref
 
 
 def _ok(r: httpx.Response, *codes: int) -> dict[str, Any]:
@@ -319,7 +288,8 @@ def compare(
     a: Any, workers: int, env: dict, keys: dict, bodies: Path, members: list, tmp: Path
 ) -> dict:
     """Alternating reference / lookup rounds on `workers` processes each."""
-    lookup, ref, p1, p2 = _start_servers(env, workers, tmp)
+    lookup, ref = _start_servers(env, workers, tmp)
+    p1, p2 = lookup.port, ref.port
     auth = keys["reader"]["Authorization"]
     try:
         with httpx.Client(base_url=f"http://127.0.0.1:{p1}", timeout=600) as c:
@@ -342,8 +312,8 @@ def compare(
             rounds.append((s, r))
         batches = alternate_batches(p1, p2, keys["reader"], members[: a.batch], a.repeats)
     finally:
-        _stop(lookup)
-        _stop(ref)
+        lookup.stop()
+        ref.stop()
 
     def med(which: int, key: str) -> float:
         return statistics.median(x[which][key] for x in rounds)
@@ -412,8 +382,9 @@ def main() -> None:
         for role in ("analyst", "approver", "reader")
     }
     keys = {role: {"Authorization": f"Bearer {secret}"} for role, secret in secrets.items()}
-    lookup, ref, port, _ = _start_servers(env, 1, tmp)
-    _stop(ref)
+    lookup, ref = _start_servers(env, 1, tmp)
+    port = lookup.port
+    ref.stop()
     result: dict[str, Any] = {"bench": "serve"}
     try:
         with httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=600) as c:
@@ -425,7 +396,7 @@ def main() -> None:
             assert probe["plan_version"] == 1, probe
             batch = http_batch(c, keys["reader"], members[: a.batch], a.repeats)
     finally:
-        _stop(lookup)
+        lookup.stop()
     bodies = tmp / "bodies.jsonl"
     bodies.write_text("\n".join(json.dumps(m) for m in members[: a.members]) + "\n")
     per_workers = {str(n): compare(a, n, env, keys, bodies, members, tmp) for n in a.workers}

@@ -72,17 +72,44 @@ def _free_port() -> int:
         return int(s.getsockname()[1])
 
 
+# what the test servers run with, as in support.make_settings: a short poll, and no held-out job
+# per draft (approval would wait for it)
+TEST_ENV = {
+    "APPORTION_LOG_LEVEL": "WARNING",
+    "APPORTION_POLL_INTERVAL_SECONDS": "0.3",
+    "APPORTION_DB_POOL_SIZE": "12",
+    "APPORTION_HELD_OUT_FOLDS": "0",
+}
+
+
 @dataclass
 class Server:
+    """A server process in a session of its own (so stopping it stops its worker processes too).
+
+    By default `apportion serve` on 127.0.0.1 with `args` after it (e.g. `--workers 2`) and the
+    test settings (`TEST_ENV`, unless `test_settings` is false, as for the benchmark); `command`
+    runs another server instead (`{port}` in it is replaced by the chosen port). Ready when
+    `ready_path` answers `ready_status` (None: any answer)."""
+
     db_url: str
     log_path: Path
     env: dict[str, str] = field(default_factory=dict)
+    args: list[str] = field(default_factory=list)
+    command: list[str] | None = None
+    ready_path: str = "/readyz"
+    ready_status: int | None = 200
+    test_settings: bool = True
     port: int = 0
     proc: subprocess.Popen | None = None  # type: ignore[type-arg]
 
     @property
     def url(self) -> str:
         return f"http://127.0.0.1:{self.port}"
+
+    @property
+    def pid(self) -> int:
+        assert self.proc is not None
+        return self.proc.pid
 
     def start(self, timeout: float = 90.0) -> Server:
         return self.launch().wait_ready(timeout)
@@ -93,19 +120,18 @@ class Server:
         env = {
             **os.environ,
             "APPORTION_DATABASE_URL": self.db_url,
-            "APPORTION_LOG_LEVEL": "WARNING",
-            "APPORTION_POLL_INTERVAL_SECONDS": "0.3",
-            "APPORTION_DB_POOL_SIZE": "12",
-            # as in support.make_settings: no held-out job per draft (approval would wait for it)
-            "APPORTION_HELD_OUT_FOLDS": "0",
+            **(TEST_ENV if self.test_settings else {}),
             **self.env,
         }
+        argv = (
+            [a.replace("{port}", str(self.port)) for a in self.command]
+            if self.command
+            else [sys.executable, "-m", "apportion.cli", "serve", "--host", "127.0.0.1",
+                  "--port", str(self.port), *self.args]
+        )  # fmt: skip
         log = open(self.log_path, "ab")  # noqa: SIM115 - the child writes it until it exits
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "apportion.cli", "serve", "--port", str(self.port)],
-            env=env,
-            stdout=subprocess.DEVNULL,
-            stderr=log,
+            argv, env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True
         )
         log.close()
         return self
@@ -117,7 +143,8 @@ class Server:
             if self.proc.poll() is not None:
                 raise AssertionError(f"server exited at start:\n{self.log()}")
             try:
-                if httpx.get(self.url + "/readyz", timeout=1.0).status_code == 200:
+                r = httpx.get(self.url + self.ready_path, timeout=1.0)
+                if self.ready_status is None or r.status_code == self.ready_status:
                     return self
             except httpx.HTTPError:
                 pass
@@ -125,15 +152,21 @@ class Server:
         self.kill9()
         raise AssertionError(f"server not ready in {timeout} s:\n{self.log()}")
 
+    def _signal(self, sig: int) -> None:
+        try:
+            os.killpg(self.pid, sig)  # the server and any worker processes it started
+        except ProcessLookupError:
+            pass
+
     def kill9(self) -> None:
         """SIGKILL: no shutdown hook, no flush, no rollback runs in the process."""
         if self.proc is not None and self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGKILL)
+            self._signal(signal.SIGKILL)
             self.proc.wait(timeout=30)
 
     def stop(self) -> None:
         if self.proc is not None and self.proc.poll() is None:
-            self.proc.terminate()
+            self._signal(signal.SIGTERM)
             try:
                 self.proc.wait(timeout=30)
             except subprocess.TimeoutExpired:

@@ -13,7 +13,8 @@ import time
 import httpx
 import pytest
 from fastapi.testclient import TestClient
-from support import draft_plan, scenario_model
+from snapshots import module_snapshot
+from support import approve, draft_plan, scenario_model
 
 from apportion.domain import Actor
 from apportion.errors import Conflict
@@ -22,23 +23,21 @@ from apportion.usecases import plans as uc
 POLL = 0.5  # seconds: the second process's poll interval (the in-process app swaps right after its commit)
 
 
-def _approved_pair(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
+def _approved_pair(client: TestClient, keys) -> dict:  # type: ignore[no-untyped-def]
+    """Versions 1 (chance) and 2 (deterministic) drafted and approved, neither live yet."""
     model = scenario_model(client, keys)
     draft_plan(client, keys, model)
     draft_plan(client, keys, model, method="deterministic", holdout={"share": 0.2})
     for v in (1, 2):
-        assert (
-            client.post(
-                f"/v1/plans/lesson-length/versions/{v}/approve",
-                json={"reason": "ok"},
-                headers=keys.h(keys.approver),
-            ).status_code
-            == 200
-        )
+        approve(client, keys, v)
+    return {}
+
+
+# one fit, two drafts and two approvals for the module; each test gets its own copy
+snap, db_url, keys = module_snapshot(_approved_pair)
 
 
 def test_two_activations_with_the_same_revision_exactly_one_wins(client: TestClient, keys) -> None:  # type: ignore[no-untyped-def]
-    _approved_pair(client, keys)
     services = client.app.state.services  # type: ignore[attr-defined]
     barrier = threading.Barrier(2)
     results: list[object] = []
@@ -127,7 +126,6 @@ def second_server(client: TestClient, db_url: str):  # type: ignore[no-untyped-d
 def test_switching_under_load_never_fails_and_reaches_the_second_process(
     client: TestClient, keys, second_server: str
 ) -> None:  # type: ignore[no-untyped-def]
-    _approved_pair(client, keys)
     h = keys.h(keys.approver)
     assert (
         client.post(

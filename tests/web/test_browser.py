@@ -9,7 +9,7 @@ from collections.abc import Iterator
 from typing import Any
 
 import pytest
-from support import draft_plan
+from support import approve, draft_plan
 from web.live import CHROMIUM, SKIP_REASON, Live, build_plan, launch_chromium, live_server
 
 from apportion.demo.scenario import GUARDRAILS
@@ -206,20 +206,16 @@ def test_the_forged_activation_link_activates_nothing(page: Any, live: Live) -> 
     """The reproducer step by step: an analyst drafts a version whose notes hold a decision form
     aimed at another approved version; an approver who is signed in opens a link whose plan
     segment holds backslashes, and presses the button the page shows."""
-    h = live.keys.h
-    target = draft_plan(live.client, live.keys, live.model_id)["version"]  # type: ignore[attr-defined]
-    r = live.client.post(
-        f"/v1/plans/lesson-length/versions/{target}/approve",
-        json={"reason": "fine on its own"},
-        headers=h(live.keys.approver),
-    )
-    assert r.status_code == 200, r.text
+    # no report draws: the attack needs two versions, not their impact reports
+    target = draft_plan(live.client, live.keys, live.model_id, draws=0)["version"]  # type: ignore[attr-defined]
+    approve(live.client, live.keys, target)
     before = _plan(live)
     bait = draft_plan(
         live.client,
         live.keys,
         live.model_id,  # type: ignore[attr-defined]
         notes=_bait(target, before["revision"]),
+        draws=0,
     )["version"]
 
     page.goto(f"{live.base}/ui/plans/lesson-length/versions/1")
