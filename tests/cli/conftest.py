@@ -55,7 +55,7 @@ def shared_live(
         url = f"sqlite:///{tmp_path_factory.mktemp('cli')}/apportion.db"
     else:
         assert PG_URL
-        url = reset_postgres(PG_URL)
+        url = reset_postgres("cli")  # this worker's own database
     yield from _serve(url)
 
 
