@@ -124,23 +124,22 @@ def live_plan(url: str, secrets: dict[str, str], units: int, seed: int) -> dict:
         data = to_csv_bytes(simulate(units, seed=seed))
         readout, _ = analyst.upload_readout(decl["key"], data, "text/csv")
         params = {"max_depth": 8, "min_units_per_arm": 20, "cv_folds": 0, "seed": seed}
-        fit = analyst.fit_model(decl["key"], readout_version=readout["version"],
+        fit = analyst.fit_model(decl["key"], readout_version=readout.version,
                                 method="causal_tree", params=params)  # fmt: skip
-        job = analyst.wait(fit["job_id"], timeout=600)
-        if job["status"] != "done":
-            raise RuntimeError(f"fit failed: {job}")
-        model = analyst.model(fit["model_id"])
-        partition = Partition.from_dict(model["partition"])
+        job = analyst.wait(fit.job_id, timeout=600)
+        if job.status != "done":
+            raise RuntimeError(f"fit failed: {job.error}")
+        partition = Partition.from_dict(analyst.model(fit.model_id).partition or {})
         draft = {
-            "model_id": fit["model_id"],
+            "model_id": fit.model_id,
             "success_metric": SUCCESS,
             "guardrails": GUARDRAILS,
             "method": "deterministic",
             "holdout": {"share": 0.1},
         }
         v = analyst.draft_plan(PLAN, draft)
-        approver.approve(PLAN, v["version"], "bench")
-        approver.activate(PLAN, v["version"], "bench", expected_revision=0)
+        approver.approve(PLAN, v.version, "bench")
+        approver.activate(PLAN, v.version, "bench", expected_revision=0)
     return {
         "depth": partition.depth(),
         "leaves": len(partition.leaves()),

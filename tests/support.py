@@ -144,12 +144,13 @@ def make_settings(db_url: str, **overrides: object) -> Settings:
 
 def wait_job(client, keys, job_url: str, timeout: float = 60.0) -> dict:  # type: ignore[no-untyped-def]
     """The client library's job waiter over `client` (a TestClient or an httpx.Client), reading
-    as the reader key; polls every 0.05 s at first, at most every 0.2 s."""
-    from apportion.client import ApportionClient, Backoff, JobTimeout
+    as the reader key; polls every 0.05 s at first, at most every 0.2 s. The job's JSON."""
+    from apportion.client import ApportionClient, Backoff, JobTimeout, as_json
 
     api = ApportionClient(key=keys.reader, http=client)
     try:
-        return api.wait(job_url, timeout=timeout, backoff=Backoff(first=0.05, maximum=0.2))
+        job = api.wait(job_url, timeout=timeout, backoff=Backoff(first=0.05, maximum=0.2))
+        return as_json(job)  # type: ignore[no-any-return]
     except JobTimeout as exc:
         raise AssertionError(f"job {job_url} did not finish in {timeout} s") from exc
 

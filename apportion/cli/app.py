@@ -12,7 +12,7 @@ import typer
 
 from apportion.cli import audit, comparisons, experiments, models, plans, server, watch
 from apportion.cli.common import LocalError, console
-from apportion.client import JobFailed, JobTimeout, ProblemError, Unreachable
+from apportion.client import ClientError, JobFailed, JobTimeout, ProblemError, Unreachable
 
 app = typer.Typer(
     name="apportion",
@@ -60,7 +60,7 @@ def main(argv: list[str] | None = None) -> int:
     except JobFailed as exc:
         console(stderr=True).print(f"error: {exc}", markup=False)
         return 1
-    except (LocalError, Unreachable, JobTimeout) as exc:
+    except (LocalError, Unreachable, JobTimeout, ClientError) as exc:
         console(stderr=True).print(f"error: {exc}", markup=False)
         return 2
     return 0

@@ -20,7 +20,7 @@ from typing import Annotated, Any, get_type_hints
 import typer
 from rich.console import Console, RenderableType
 
-from apportion.client import ApportionClient
+from apportion.client import ApportionClient, as_json
 from apportion.client.http import DEFAULT_TIMEOUT, DEFAULT_URL, ENV_KEY, ENV_URL
 from apportion.client.render import WIDE, job_progress
 from apportion.client.waiter import ProgressCallback
@@ -78,7 +78,7 @@ class Conn:
     def emit(self, data: Any, human: Callable[[], RenderableType]) -> None:
         """The answer's JSON with --json, else its rendering for people."""
         if self.json:
-            print(json.dumps(data, indent=2, default=str))
+            print(json.dumps(as_json(data), indent=2, default=str))
         else:
             console().print(human())
 

@@ -71,14 +71,14 @@ def start(
         started = api.start_comparison(key, body)
         if no_wait:
             conn.emit(started, lambda: (
-                f"comparison {started['number']} queued as job {started['job_id']}; read it "
-                f"with 'apportion comparison show {key} {started['number']}'"))  # fmt: skip
+                f"comparison {started.number} queued as job {started.job_id}; read it "
+                f"with 'apportion comparison show {key} {started.number}'"))  # fmt: skip
             return
-        with conn.progress(f"comparison {started['number']}") as bar:
-            finished = api.wait(started["job_id"], on_progress=bar)
-        got = api.comparison(key, started["number"])
+        with conn.progress(f"comparison {started.number}") as bar:
+            finished = api.wait(started.job_id, on_progress=bar)
+        got = api.comparison(key, started.number)
     conn.emit(got, lambda: render.comparison_view(got))
-    if finished["status"] != "done":
+    if finished.status != "done":
         raise typer.Exit(1)
 
 
@@ -87,7 +87,7 @@ def show(conn: Conn, key: str, number: int) -> None:
     with conn.client() as api:
         got = api.comparison(key, number)
     conn.emit(got, lambda: render.comparison_view(got))
-    if got["status"] == "failed":
+    if got.status == "failed":
         raise typer.Exit(1)
 
 

@@ -7,7 +7,7 @@ from typing import Annotated
 import typer
 
 from apportion.cli.common import Conn, client_command, read_json_file, read_upload
-from apportion.client import render
+from apportion.client import as_json, render
 
 experiment = typer.Typer(help="declare and read experiments (HTTP)", no_args_is_help=True)
 readout = typer.Typer(help="upload and read readouts (HTTP)", no_args_is_help=True)
@@ -23,9 +23,8 @@ def create(
     with conn.client() as api:
         got = api.create_experiment(decl)
     conn.emit(got, lambda: (
-        f"declared experiment '{got['key']}': {len(got['arms'])} arms (control "
-        f"{got['control']}), {len(got['metrics'])} metrics, "
-        f"{len(got.get('features', []))} features"))  # fmt: skip
+        f"declared experiment '{got.key}': {len(got.arms)} arms (control {got.control}), "
+        f"{len(got.metrics)} metrics, {len(got.features)} features"))  # fmt: skip
 
 
 @client_command(experiment, "show", "an experiment's declaration and readouts")
@@ -47,7 +46,7 @@ def upload(
     data, ctype = read_upload(file, content_type)
     with conn.client() as api:
         got, created = api.upload_readout(key, data, ctype)
-    conn.emit({**got, "created": created}, lambda: render.readout_view(got, created))
+    conn.emit({**as_json(got), "created": created}, lambda: render.readout_view(got, created))
 
 
 @client_command(readout, "show", "a readout's per-arm summary")

@@ -13,11 +13,21 @@ from apportion.client import render
 model = typer.Typer(help="fit and read cohort models (HTTP)", no_args_is_help=True)
 job = typer.Typer(help="long-running work (HTTP)", no_args_is_help=True)
 
-# the model methods the server offers (apportion.stats.models.METHODS; a test keeps them equal)
-MODEL_METHODS = (
-    "global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree",
-)  # fmt: skip
-Method = StrEnum("Method", [(m, m) for m in MODEL_METHODS])
+
+class Method(StrEnum):
+    """The model methods the server offers (apportion.stats.models.METHODS; a test keeps them
+    equal)."""
+
+    global_ = "global"
+    segments = "segments"
+    causal_tree = "causal_tree"
+    intersect = "intersect"
+    two_model = "two_model"
+    forest = "forest"
+    policy_tree = "policy_tree"
+
+
+MODEL_METHODS = tuple(m.value for m in Method)
 
 
 @client_command(model, "fit", "fit a cohort model on a readout (runs as a job)")
@@ -25,7 +35,7 @@ def fit(
     conn: Conn,
     key: Annotated[str, typer.Argument(help="experiment key")],
     readout: Annotated[int, typer.Option("--readout", help="readout version")],
-    method: Annotated[Method, typer.Option("--method")] = Method.causal_tree,  # type: ignore[attr-defined]
+    method: Annotated[Method, typer.Option("--method")] = Method.causal_tree,
     param: Annotated[list[str] | None, typer.Option(
         "--param", metavar="NAME=VALUE", help="method parameter (repeatable)")] = None,
     success_metric: Annotated[str | None, typer.Option("--success-metric")] = None,
@@ -41,15 +51,15 @@ def fit(
                                 override_reason=override_sample_ratio)  # fmt: skip
         if no_wait:
             conn.emit(started, lambda: (
-                f"model {started['model_id']} queued as job {started['job_id']}; "
-                f"follow it with 'apportion job show {started['job_id']}'"))  # fmt: skip
+                f"model {started.model_id} queued as job {started.job_id}; "
+                f"follow it with 'apportion job show {started.job_id}'"))  # fmt: skip
             return
-        with conn.progress(f"fitting model {started['model_id']}") as bar:
-            finished = api.wait(started["job_id"], on_progress=bar)
-        got = api.model(started["model_id"])
+        with conn.progress(f"fitting model {started.model_id}") as bar:
+            finished = api.wait(started.job_id, on_progress=bar)
+        got = api.model(started.model_id)
     conn.emit(got, lambda: render.model_view(got))
-    if finished["status"] == "failed":
-        console(stderr=True).print(f"error: the fit failed: {finished.get('error')}")
+    if finished.status == "failed":
+        console(stderr=True).print(f"error: the fit failed: {finished.error}", markup=False)
         raise typer.Exit(1)
 
 
@@ -65,5 +75,5 @@ def show_job(conn: Conn, id: str) -> None:
     with conn.client() as api:
         got = api.job(id)
     conn.emit(got, lambda: render.job_view(got))
-    if got["status"] == "failed":
+    if got.status == "failed":
         raise typer.Exit(1)

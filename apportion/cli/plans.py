@@ -15,6 +15,7 @@ from apportion.cli.common import (
     read_json_file,
 )
 from apportion.client import render
+from apportion.schemas.plans import PlanVersionView
 
 plan_app = typer.Typer(help="draft, review, activate and roll back plans (HTTP)",
                        no_args_is_help=True)  # fmt: skip
@@ -113,9 +114,9 @@ def show(
 Reason = Annotated[str, typer.Option("--reason", help="why (kept in the audit trail)")]
 
 
-def _decided(conn: Conn, got: dict[str, Any]) -> None:
-    conn.emit(got, lambda: (f"plan version {got['plan']}/{got['version']} is {got['status']} "
-                            f"(by {got.get('decided_by')})"))  # fmt: skip
+def _decided(conn: Conn, got: PlanVersionView) -> None:
+    conn.emit(got, lambda: (f"plan version {got.plan}/{got.version} is {got.status} "
+                            f"(by {got.decided_by})"))  # fmt: skip
 
 
 @client_command(plan_app, "approve", "approve a draft version, with a reason")

@@ -8,7 +8,7 @@ from typing import Annotated
 import typer
 
 from apportion.cli.common import Conn, client_command, read_upload
-from apportion.client import render
+from apportion.client import as_json, render
 
 watch = typer.Typer(help="the guardrail watch of a live plan (HTTP)", no_args_is_help=True)
 
@@ -53,5 +53,5 @@ def auto_rollback(
     with conn.client() as api:
         got = api.set_auto_rollback(plan, enabled=state is OnOff.on,
                                     min_units_per_group=min_units, reason=reason)  # fmt: skip
-    conn.emit(got, lambda: f"{got['plan']}: automatic rollback {state.value} "
-                           f"({got['auto_rollback']})")  # fmt: skip
+    conn.emit(got, lambda: f"{got.plan}: automatic rollback {state.value} "
+                           f"({render.cell(as_json(got.auto_rollback))})")  # fmt: skip

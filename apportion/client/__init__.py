@@ -11,7 +11,7 @@ from apportion.client.errors import (
     Unreachable,
 )
 from apportion.client.http import DEFAULT_URL, ENV_KEY, ENV_URL, ApportionClient
-from apportion.client.tables import Rows
+from apportion.client.tables import Rows, as_json
 from apportion.client.waiter import Backoff, wait_for_job
 
 __all__ = [
@@ -26,5 +26,6 @@ __all__ = [
     "ProblemError",
     "Rows",
     "Unreachable",
+    "as_json",
     "wait_for_job",
 ]

@@ -68,14 +68,14 @@ class Unreachable(ClientError):
 class JobFailed(ClientError):
     """A job the caller waited for ended `failed`; `job` is its last view."""
 
-    def __init__(self, message: str, job: dict[str, Any] | None = None) -> None:
+    def __init__(self, message: str, job: Any = None) -> None:
         super().__init__(message)
-        self.job = job or {}
+        self.job = job
 
 
 class JobTimeout(ClientError):
     """A job was still running when the wait's time ran out; `job` is its last view."""
 
-    def __init__(self, message: str, job: dict[str, Any]) -> None:
+    def __init__(self, message: str, job: Any) -> None:
         super().__init__(message)
         self.job = job

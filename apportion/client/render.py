@@ -1,20 +1,21 @@
 """Answers rendered for people with rich: aligned tables and key/value blocks. The command line
 prints them to the terminal and the demo to its report, so both show an answer the same way.
 
-Every function takes an answer as the server sent it (parsed JSON) and returns a rich renderable;
+Every function takes an answer (the client's model, or its JSON) and returns a rich renderable;
 `to_text` turns one into plain text (no colour) for files and tests.
 
-Longer than most modules (about 470 lines) on purpose: one rendering per kind of answer, all
+Longer than most modules (about 500 lines) on purpose: one rendering per kind of answer, all
 built from the same few number and table helpers, so the terminal and the demo's report read
 the same; split by resource they would each need those helpers again."""
 
 from __future__ import annotations
 
+import functools
 import io
 import math
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from contextlib import contextmanager
-from typing import Any
+from typing import Any, Concatenate, ParamSpec, TypeVar
 
 from rich import box
 from rich.console import Console, Group, RenderableType
@@ -23,9 +24,23 @@ from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn
 from rich.table import Table
 from rich.text import Text
 
+from apportion.client.tables import as_json
 from apportion.client.waiter import ProgressCallback
 
+P = ParamSpec("P")
+R = TypeVar("R")
+
 WIDE = 240  # columns of text output that is not a terminal (files, pipes, tests): no wrapping
+
+
+def _from_answer(fn: Callable[Concatenate[Any, P], R]) -> Callable[Concatenate[Any, P], R]:
+    """Lets a rendering take the client's answer models: their JSON form is what it reads."""
+
+    @functools.wraps(fn)
+    def run(answer: Any, /, *args: P.args, **kwargs: P.kwargs) -> R:
+        return fn(as_json(answer), *args, **kwargs)
+
+    return run
 
 
 def to_text(renderable: RenderableType, width: int = WIDE) -> str:
@@ -115,6 +130,7 @@ def lines(*items: RenderableType | str) -> Group:
 # ---- experiments, readouts, models, jobs -------------------------------------------------------
 
 
+@_from_answer
 def experiment_view(e: dict[str, Any]) -> Group:
     arms = table([[a["key"], a["share"]] for a in e["arms"]], ["arm", "design share"])
     metrics = table(
@@ -131,6 +147,7 @@ def experiment_view(e: dict[str, Any]) -> Group:
                   readouts)  # fmt: skip
 
 
+@_from_answer
 def readout_view(r: dict[str, Any], created: bool | None = None) -> Group:
     srm = r.get("sample_ratio") or {}
     items: list[RenderableType | str] = []
@@ -160,6 +177,7 @@ def readout_view(r: dict[str, Any], created: bool | None = None) -> Group:
     return lines(*items)
 
 
+@_from_answer
 def model_view(m: dict[str, Any]) -> Group:
     head = kv([
         ("model", m["id"]),
@@ -198,6 +216,7 @@ def model_view(m: dict[str, Any]) -> Group:
     return lines(*items)
 
 
+@_from_answer
 def job_view(j: dict[str, Any]) -> Table:
     return kv([("job", j["id"]), ("kind", j["kind"]), ("status", j["status"]),
                ("progress", f"{j['progress']:.0%}"), ("error", j.get("error"))])  # fmt: skip
@@ -206,6 +225,7 @@ def job_view(j: dict[str, Any]) -> Table:
 # ---- comparisons -------------------------------------------------------------------------------
 
 
+@_from_answer
 def comparison_view(c: dict[str, Any]) -> Group:
     """What was compared, then (when done) one row per candidate in the server's order
     (guardrails holding on held-out folds first, by held-out success lift), every guardrail's
@@ -259,6 +279,7 @@ def comparison_view(c: dict[str, Any]) -> Group:
     )  # fmt: skip
 
 
+@_from_answer
 def comparisons_table(items: Sequence[dict[str, Any]]) -> Table:
     return table(
         [[c["number"], c["status"], c["success_metric"], c["candidates"], c["recommended"],
@@ -270,6 +291,7 @@ def comparisons_table(items: Sequence[dict[str, Any]]) -> Table:
 # ---- plans -------------------------------------------------------------------------------------
 
 
+@_from_answer
 def report_metric_rows(version: dict[str, Any]) -> list[dict[str, Any]]:
     """The impact report as one row per metric, the success metric first: metric, role, lift
     (point estimate), projected (corrected for the optimizer's curse), low/high (its interval),
@@ -295,6 +317,7 @@ def report_metric_rows(version: dict[str, Any]) -> list[dict[str, Any]]:
     return rows
 
 
+@_from_answer
 def cohorts_table(cohorts: Sequence[dict[str, Any]]) -> Table:
     return table(
         [[c["id"], f"{c['share']:.1%}", fmt_arms(c["arms"]), c["rule"]] for c in cohorts],
@@ -302,6 +325,7 @@ def cohorts_table(cohorts: Sequence[dict[str, Any]]) -> Table:
     )
 
 
+@_from_answer
 def prices_view(rows: Sequence[dict[str, Any]]) -> list[RenderableType | str]:
     """The report's guardrail prices and the success lift at five thresholds around each one."""
     if not rows:
@@ -320,6 +344,7 @@ def prices_view(rows: Sequence[dict[str, Any]]) -> list[RenderableType | str]:
     ]
 
 
+@_from_answer
 def held_out_view(held: Any) -> list[RenderableType | str]:
     """The draft's cross-fitted held-out evaluation: its figures, or why there are none yet."""
     if not isinstance(held, dict):
@@ -342,6 +367,7 @@ def held_out_view(held: Any) -> list[RenderableType | str]:
     ]
 
 
+@_from_answer
 def version_view(v: dict[str, Any]) -> Group:
     """A plan version: its spec, cohorts, impact report, prices, held-out figures, diff."""
     spec = v.get("spec") or {}
@@ -392,6 +418,7 @@ def version_view(v: dict[str, Any]) -> Group:
     return lines(*items)
 
 
+@_from_answer
 def plans_table(plans: Sequence[dict[str, Any]]) -> Table:
     return table(
         [[p["plan"], p["live_version"], p["revision"], p["versions"], p["latest_status"]]
@@ -400,6 +427,7 @@ def plans_table(plans: Sequence[dict[str, Any]]) -> Table:
     )  # fmt: skip
 
 
+@_from_answer
 def plan_view(plan: dict[str, Any]) -> Group:
     return lines(
         f"plan {plan['plan']}: live version {plan['live_version'] or 'none'}, "
@@ -414,6 +442,7 @@ def plan_view(plan: dict[str, Any]) -> Group:
     )  # fmt: skip
 
 
+@_from_answer
 def switch_line(got: dict[str, Any], plan: str, verb: str) -> str:
     return (
         f"{verb} {plan}: version {got['from_version'] or 'none'} -> {got['to_version']} "
@@ -421,6 +450,7 @@ def switch_line(got: dict[str, Any], plan: str, verb: str) -> str:
     )
 
 
+@_from_answer
 def assignments_table(items: Sequence[dict[str, Any]], members: Sequence[str]) -> Table:
     return table(
         [[m, a["arm"], a["cohort"], a["plan_version"], a["holdout"], ", ".join(a["defaults_used"])]
@@ -432,6 +462,7 @@ def assignments_table(items: Sequence[dict[str, Any]], members: Sequence[str]) -
 # ---- the watch, the audit trail ----------------------------------------------------------------
 
 
+@_from_answer
 def watch_table(metrics: Sequence[dict[str, Any]]) -> Table:
     """One row per metric with its latest always-valid interval and status."""
     rows = []
@@ -444,6 +475,7 @@ def watch_table(metrics: Sequence[dict[str, Any]]) -> Table:
                         "limit", "plan n", "holdout n"])  # fmt: skip
 
 
+@_from_answer
 def watch_upload_view(got: dict[str, Any]) -> Group:
     rolled = got.get("rolled_back")
     return lines(
@@ -455,6 +487,7 @@ def watch_upload_view(got: dict[str, Any]) -> Group:
     )
 
 
+@_from_answer
 def watch_view(w: dict[str, Any]) -> Group:
     return lines(
         f"{w['plan']} v{w['version']}: {w['uploads']} uploads, {w['members']} members",
@@ -462,6 +495,7 @@ def watch_view(w: dict[str, Any]) -> Group:
     )
 
 
+@_from_answer
 def audit_table(entries: Sequence[dict[str, Any]]) -> Table:
     return table(
         [[e["id"], e["at"], f"{e['actor_name']} ({e['actor_role']})", e["action"],
@@ -470,6 +504,7 @@ def audit_table(entries: Sequence[dict[str, Any]]) -> Table:
     )  # fmt: skip
 
 
+@_from_answer
 def chain_line(result: dict[str, Any]) -> str:
     """The audit chain's verification in one line."""
     if result["intact"]:

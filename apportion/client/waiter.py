@@ -10,12 +10,14 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypeVar
 
 from apportion.client.errors import JobTimeout
+from apportion.client.tables import as_json
 
 FINISHED = ("done", "failed")
 
+J = TypeVar("J")
 ProgressCallback = Callable[[float, str], None]
 """Called with (fraction done in [0, 1], job status) after every poll."""
 
@@ -37,7 +39,7 @@ class Backoff:
 
 
 def wait_for_job(
-    fetch: Callable[[str], dict[str, Any]],
+    fetch: Callable[[str], J],
     job_id: str,
     *,
     on_progress: ProgressCallback | None = None,
@@ -45,7 +47,7 @@ def wait_for_job(
     timeout: float | None = None,
     sleep: Callable[[float], None] = time.sleep,
     clock: Callable[[], float] = time.monotonic,
-) -> dict[str, Any]:
+) -> J:
     """Poll `fetch(job_id)` until the job is done or failed; returns its last view (the caller
     checks `status`). Raises JobTimeout after `timeout` seconds (None: wait as long as it runs).
     `job_id` may also be the job's address (`/v1/jobs/{id}`)."""
@@ -54,9 +56,10 @@ def wait_for_job(
     interval = backoff.first
     while True:
         job = fetch(job_id)
-        status = str(job.get("status"))
+        view: dict[str, Any] = as_json(job)  # a JobView, or the plain JSON of one
+        status = str(view.get("status"))
         if on_progress is not None:
-            done = 1.0 if status == "done" else float(job.get("progress") or 0.0)
+            done = 1.0 if status == "done" else float(view.get("progress") or 0.0)
             on_progress(min(max(done, 0.0), 1.0), status)
         if status in FINISHED:
             return job

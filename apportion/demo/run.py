@@ -36,7 +36,7 @@ from typing import Any, TextIO
 import numpy as np
 from rich.console import Console, RenderableType
 
-from apportion.client import ApportionClient, ProblemError, render
+from apportion.client import ApportionClient, ProblemError, as_json, render
 from apportion.client.render import fmt_num, report_metric_rows
 from apportion.demo import scenario as sc
 
@@ -146,10 +146,10 @@ def watch_with_harm(
                 {"member_id": ids[i], "features": member_features(fv, i)}
                 for i in range(lo, min(lo + 10_000, learners))
             ]
-            answers += api.assign_batch(PLAN, members)
+            answers += as_json(api.assign_batch(PLAN, members))
         codes = np.array([sc.ARMS.index(a["arm"]) for a in answers])
         holdout = np.array([a["holdout"] for a in answers])
-        last = api.monitor(PLAN, rows_csv(ids, learners, bseed, codes, holdout, harm=harm))
+        last = as_json(api.monitor(PLAN, rows_csv(ids, learners, bseed, codes, holdout, harm=harm)))
         abandon = next(m for m in last["metrics"] if m["metric"] == "abandon_rate")
         out.write(
             f"        upload {last['upload']}: {last['members']:,} members; abandon_rate plan - holdout "
@@ -162,7 +162,7 @@ def watch_with_harm(
                 f"        the watch rolled the plan back to version {rb.get('to_version')} by itself\n"
             )
             break
-    trail = api.audit(entity="plan", entity_id=PLAN, actor="guardrail-watch")
+    trail = as_json(api.audit(entity="plan", entity_id=PLAN, actor="guardrail-watch"))
     return {"last_upload": last, "rollback_entries": trail}
 
 
@@ -245,7 +245,7 @@ def _show(out: TextIO, renderable: RenderableType, spaces: int = 0) -> None:
 def _wait(api: ApportionClient, job_id: str, label: str) -> dict[str, Any]:
     """Wait for a job with a progress bar on stderr."""
     with render.job_progress(f"        {label}", Console(stderr=True)) as bar:
-        return api.wait(job_id, on_progress=bar)
+        return as_json(api.wait(job_id, on_progress=bar))
 
 
 def run_demo(
@@ -303,7 +303,7 @@ def run_demo(
             for name, role, owner in people:
                 made[name] = {
                     "role": role,
-                    "secret": admin.create_key(name, role, owner=owner)["secret"],
+                    "secret": admin.create_key(name, role, owner=owner).secret,
                 }
             analyst = admin.with_key(made["demo-analyst"]["secret"])
             approver = admin.with_key(made["demo-approver"]["secret"])
@@ -315,7 +315,7 @@ def run_demo(
         with steps.step(f"simulate {learners:,} learners and upload the readout as CSV"):
             table = sc.simulate(learners, seed)
             data = sc.to_csv_bytes(table)
-            readout, _ = analyst.upload_readout(sc.EXPERIMENT_KEY, data, "text/csv")
+            readout = as_json(analyst.upload_readout(sc.EXPERIMENT_KEY, data, "text/csv")[0])
             srm = readout["sample_ratio"]
             out.write(
                 f"        readout {readout['version']}: {readout['n_rows']:,} rows, "
@@ -331,10 +331,10 @@ def run_demo(
                 params={"seed": seed},
                 success_metric=sc.SUCCESS,
             )
-            job = _wait(analyst, started["job_id"], "fit")
+            job = _wait(analyst, started.job_id, "fit")
             if job["status"] != "done":
                 raise RuntimeError(f"the fit failed: {job['error']}")
-            model = analyst.model(started["model_id"])
+            model = as_json(analyst.model(started.model_id))
             out.write(f"        model {model['id']}: {len(model['cohorts'])} cohorts\n")
 
         with steps.step("compare decision methods on held-out folds (POST .../comparisons, a job)"):
@@ -343,8 +343,8 @@ def run_demo(
                 "guardrails": sc.GUARDRAILS, "candidates": list(COMPARED), "folds": 3,
                 "seed": seed,
                 "notes": "demo: which method to draft the plan with"})  # fmt: skip
-            _wait(analyst, compared["job_id"], "comparison")
-            comparison = analyst.comparison(sc.EXPERIMENT_KEY, compared["number"])
+            _wait(analyst, compared.job_id, "comparison")
+            comparison = as_json(analyst.comparison(sc.EXPERIMENT_KEY, compared.number))
             if comparison["status"] != "done":
                 raise RuntimeError(f"the comparison failed: {comparison.get('error')}")
             _show(out, render.comparison_view(comparison), 8)
@@ -357,10 +357,10 @@ def run_demo(
                 again = analyst.fit_model(sc.EXPERIMENT_KEY, readout_version=readout["version"],
                                           method=chosen_model, params={"seed": seed},
                                           success_metric=sc.SUCCESS)  # fmt: skip
-                job = _wait(analyst, again["job_id"], "fit")
+                job = _wait(analyst, again.job_id, "fit")
                 if job["status"] != "done":
                     raise RuntimeError(f"the fit failed: {job['error']}")
-                model = analyst.model(again["model_id"])
+                model = as_json(analyst.model(again.model_id))
                 out.write(f"        model {model['id']} ({chosen_model}): "
                           f"{len(model['cohorts'])} cohorts\n")  # fmt: skip
 
@@ -382,20 +382,20 @@ def run_demo(
         with steps.step(
             "draft version 1 with the recommended method (POST /v1/plans/.../versions)"
         ):
-            v1 = analyst.settle_draft(analyst.draft_plan(PLAN, spec))
+            v1 = as_json(analyst.settle_draft(analyst.draft_plan(PLAN, spec)))
             out.write(_held_out_line(v1["report"].get("held_out") or {}))
 
         with steps.step("approve version 1 with the approver's key"):
             approver.approve(PLAN, v1["version"], "demo: report reviewed, guardrails hold")
 
         with steps.step("activate version 1 (reads the plan's revision first)"):
-            act1 = approver.activate(PLAN, v1["version"], "demo: first launch")
+            act1 = as_json(approver.activate(PLAN, v1["version"], "demo: first launch"))
 
         with steps.step("answer sample assignments (POST /v1/plans/.../assign)"):
             ids, fv = sc.simulate_features(5, seed + 2)
             answers = []
             for i, m in enumerate(ids):
-                a = analyst.assign(PLAN, str(m), member_features(fv, i))
+                a = as_json(analyst.assign(PLAN, str(m), member_features(fv, i)))
                 answers.append({"member_id": str(m), **member_features(fv, i), **a})
             _show(out, render.table(
                 [[a["member_id"], a["level"], a["device"], a["streak_days"], a["tenure_days"],
@@ -411,13 +411,15 @@ def run_demo(
             "notes": "demo: the point-estimate plan with a 10 % holdout",
         }
         with steps.step("draft, approve and activate version 2 (deterministic, 10 % holdout)"):
-            v2 = analyst.settle_draft(analyst.draft_plan(PLAN, spec2))
+            v2 = as_json(analyst.settle_draft(analyst.draft_plan(PLAN, spec2)))
             approver.approve(PLAN, v2["version"], "demo: a second version to roll back")
-            act2 = approver.activate(PLAN, v2["version"], "demo: try the point-estimate plan")
+            act2 = as_json(
+                approver.activate(PLAN, v2["version"], "demo: try the point-estimate plan")
+            )
 
         with steps.step("roll back to version 1 (POST /v1/plans/.../rollback)"):
-            back = approver.rollback(PLAN, "demo: back to the recommended plan")
-            plan_state = analyst.plan(PLAN)
+            back = as_json(approver.rollback(PLAN, "demo: back to the recommended plan"))
+            plan_state = as_json(analyst.plan(PLAN))
             report["activations"] = [act1, act2, back]
             report["live_version"] = plan_state["live_version"]
 
@@ -427,10 +429,10 @@ def run_demo(
             )
             watch = watch_with_harm(analyst, learners=post_launch, seed=seed + 5, out=out)
             report["watch"] = watch
-            report["live_version"] = analyst.plan(PLAN)["live_version"]
+            report["live_version"] = analyst.plan(PLAN).live_version
 
         with steps.step("verify the audit chain (GET /v1/audit/verify, admin key)"):
-            chain = admin.audit_verify()
+            chain = as_json(admin.audit_verify())
             report["audit"] = chain
             out.write(
                 f"        {'intact' if chain['intact'] else 'BROKEN'}: {chain['entries']} entries\n"
@@ -443,7 +445,7 @@ def run_demo(
             report["method_v1"] = chosen
 
         with steps.step("read the audit trail of the plan (GET /v1/audit)"):
-            trail = analyst.audit(entity="plan", entity_id=PLAN)
+            trail = as_json(analyst.audit(entity="plan", entity_id=PLAN))
             report["plan_audit_actions"] = [e["action"] for e in trail]
 
         report["seconds"] = round(time.perf_counter() - t_start, 1)

@@ -9,7 +9,7 @@ import pytest
 from fastapi.testclient import TestClient
 from support import draft_plan, make_keys, make_settings, wait_job
 
-from apportion.client import ApportionClient
+from apportion.client import ApportionClient, as_json
 from apportion.demo.scenario import experiment_declaration, simulate, to_csv_bytes
 
 LIMIT = 1_500  # rows the in-memory path takes in these tests (APPORTION_FIT_ENGINE_MIN_ROWS)
@@ -61,7 +61,8 @@ def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
 
     # the plan draft reads rows for its held-out evaluation: a uniform sample of LIMIT rows
     v = draft_plan(c, keys, int(r.json()["model_id"]))
-    v = ApportionClient(key=keys.reader, http=c).settle_draft(v)  # waits for the held-out job
+    api = ApportionClient(key=keys.reader, http=c)
+    v = as_json(api.settle_draft(api.version(v["plan"], v["version"])))  # the held-out job
     held = v["report"]["held_out"]
     assert held["status"] == "complete", held
     assert held.get("sampled") is True, held

@@ -143,7 +143,7 @@ def test_model_fit_no_wait_then_job_show(cli, files, live) -> None:  # type: ign
     from apportion.client import ApportionClient
 
     with ApportionClient(live.url, live.keys["reader"]) as api:
-        assert api.wait(started["job_id"])["status"] == "done"
+        assert api.wait(started["job_id"]).status == "done"
     job = cli("reader", "job", "show", started["job_id"], "--json").json()
     assert job["status"] == "done" and job["progress"] == 1.0
 
@@ -243,6 +243,13 @@ def test_tables_right_align_number_columns_and_left_align_text() -> None:
 def test_parse_pairs_types() -> None:
     got = parse_pairs(["level=beginner", "tenure_days=40", "x=null", 'code="10"', "a=b=c"], "--f")
     assert got == {"level": "beginner", "tenure_days": 40, "x": None, "code": "10", "a": "b=c"}
+
+
+def test_cli_offers_the_roles_the_server_knows() -> None:
+    from apportion.cli.audit import Role
+    from apportion.domain import ROLES
+
+    assert tuple(Role) == ROLES
 
 
 def test_cli_api_and_fitter_offer_the_same_model_methods():

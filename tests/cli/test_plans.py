@@ -40,8 +40,8 @@ def model(shared_live) -> int:  # type: ignore[no-untyped-def]
         api.upload_readout(sc.EXPERIMENT_KEY, sc.to_csv_bytes(sc.simulate(6000, seed=5)))
         started = api.fit_model(sc.EXPERIMENT_KEY, readout_version=1, method="segments",
                                 params={"features": ["level"]})  # fmt: skip
-        assert api.wait(started["job_id"])["status"] == "done"
-        return int(started["model_id"])
+        assert api.wait(started.job_id).status == "done"
+        return started.model_id
 
 
 @pytest.fixture(scope="module")

@@ -1,6 +1,6 @@
 """The client library on a fake transport (httpx.MockTransport): refusals become one exception
-type with the problem's members, the job waiter backs off and reports progress, tabular answers
-turn into pandas DataFrames."""
+type with the problem's members, answers become the schema models, the job waiter backs off and
+reports progress, tabular answers turn into pandas DataFrames."""
 
 from __future__ import annotations
 
@@ -14,12 +14,25 @@ import pytest
 from apportion.client import (
     ApportionClient,
     Backoff,
+    ClientError,
     JobFailed,
     JobTimeout,
     ProblemError,
     Unreachable,
+    as_json,
     wait_for_job,
 )
+from apportion.schemas.jobs import JobView
+from apportion.schemas.plans import ImpactReport, PlanVersionView
+
+AT = "2026-12-03T17:00:00Z"
+
+
+def _job(status: str, progress: float, error: str | None = None) -> dict[str, Any]:
+    """A job's JSON as GET /v1/jobs/{id} sends it."""
+    return {"id": "j7", "kind": "fit", "status": status, "progress": progress, "error": error,
+            "attempts": 1, "created_at": AT, "started_at": AT, "finished_at": None,
+            "result": None}  # fmt: skip
 
 
 def _client(handler: Any, key: str | None = "s3cret") -> ApportionClient:
@@ -69,21 +82,30 @@ def test_unreachable_server_is_its_own_error() -> None:
         api.job("j1")
 
 
-def test_every_request_carries_the_key_and_answers_parse() -> None:
+def test_every_request_carries_the_key_and_answers_become_models() -> None:
     seen: list[httpx.Request] = []
 
     def handler(request: httpx.Request) -> httpx.Response:
         seen.append(request)
         body = json.loads(request.content)
-        return httpx.Response(201, json={"plan": "p", "version": 1, "spec": body})
+        return httpx.Response(200, json={"from_version": None, "to_version": body["version"],
+                                         "revision": body["expected_revision"] + 1})  # fmt: skip
 
     with _client(handler) as api:
-        got = api.draft_plan("p", {"model_id": 3})
-        other = api.with_key("other")
-        other.draft_plan("p", {"model_id": 4})
-    assert got["spec"] == {"model_id": 3}
+        got = api.activate("p", 3, "launch", expected_revision=0)
+        api.with_key("other").activate("p", 4, "next", expected_revision=1)
+    assert (got.from_version, got.to_version, got.revision) == (None, 3, 1)
+    assert as_json(got) == {"from_version": None, "to_version": 3, "revision": 1}
     assert [r.headers["authorization"] for r in seen] == ["Bearer s3cret", "Bearer other"]
-    assert {r.url.path for r in seen} == {"/v1/plans/p/versions"}
+    assert [json.loads(r.content)["reason"] for r in seen] == ["launch", "next"]
+    assert {r.url.path for r in seen} == {"/v1/plans/p/activate"}
+
+
+def test_an_answer_that_does_not_fit_its_model_is_a_client_error() -> None:
+    with _client(lambda r: httpx.Response(200, json={"from_version": 1})) as api:
+        with pytest.raises(ClientError, match="not a Switched") as caught:
+            api.rollback("p", "back")
+    assert not isinstance(caught.value, ProblemError)
 
 
 def _job_server(statuses: list[tuple[str, float]]) -> tuple[Any, list[str]]:
@@ -93,8 +115,7 @@ def _job_server(statuses: list[tuple[str, float]]) -> tuple[Any, list[str]]:
     def handler(request: httpx.Request) -> httpx.Response:
         paths.append(request.url.path)
         status, progress = statuses[min(len(paths) - 1, len(statuses) - 1)]
-        return httpx.Response(200, json={"id": "j7", "kind": "fit", "status": status,
-                                         "progress": progress, "error": None})  # fmt: skip
+        return httpx.Response(200, json=_job(status, progress))
 
     return handler, paths
 
@@ -108,7 +129,7 @@ def test_waiter_backs_off_geometrically_up_to_the_cap_and_reports_progress() -> 
     with _client(handler) as api:
         job = wait_for_job(api.job, "/v1/jobs/j7", on_progress=lambda f, s: progress.append((f, s)),
                            backoff=backoff, sleep=slept.append)  # fmt: skip
-    assert job["status"] == "done"
+    assert isinstance(job, JobView) and job.status == "done"
     assert paths == ["/v1/jobs/j7"] * len(answers)  # the address's id, one poll per answer
     # common practice for polling: exponential backoff with a cap; intervals first * factor^i
     expected = [min(0.1 * 2.0**i, 1.0) for i in range(len(answers) - 1)]
@@ -121,7 +142,7 @@ def test_waiter_returns_a_failed_job_for_the_caller_to_judge() -> None:
     handler, _ = _job_server([("running", 0.5), ("failed", 0.5)])
     with _client(handler) as api:
         job = api.wait("j7", backoff=Backoff(first=0.001, maximum=0.001))
-    assert job["status"] == "failed"
+    assert job.status == "failed"
 
 
 def test_waiter_gives_up_after_its_timeout_with_the_last_view() -> None:
@@ -134,7 +155,7 @@ def test_waiter_gives_up_after_its_timeout_with_the_last_view() -> None:
     with _client(handler) as api, pytest.raises(JobTimeout) as caught:
         wait_for_job(api.job, "j7", backoff=Backoff(first=1.0, factor=1.0, maximum=1.0),
                      timeout=5.0, sleep=sleep, clock=lambda: now[0])  # fmt: skip
-    assert caught.value.job["progress"] == 0.25 and "apportion job show j7" in str(caught.value)
+    assert caught.value.job.progress == 0.25 and "apportion job show j7" in str(caught.value)
     assert len(paths) == 6  # looks at t = 0, 1, 2, 3, 4 and 5 s; gives up at 5 s
 
 
@@ -149,23 +170,27 @@ def test_settle_draft_waits_for_the_report_job_and_reads_the_version_again() -> 
 
     def handler(request: httpx.Request) -> httpx.Response:
         calls.append(request.url.path)
-        if request.url.path.startswith("/v1/jobs/"):
-            return httpx.Response(200, json={"id": "r1", "status": "failed", "progress": 1.0,
-                                             "error": "solver gave up"})  # fmt: skip
-        return httpx.Response(200, json={"plan": "p", "version": 2, "report": {}})
+        return httpx.Response(200, json=_job("failed", 1.0, "solver gave up"))
 
-    draft = {"plan": "p", "version": 2, "report": {"status": "pending", "job": "/v1/jobs/r1"}}
+    def draft(**report: Any) -> PlanVersionView:  # the parts settle_draft reads
+        return PlanVersionView.model_construct(
+            plan="p", version=2, report=ImpactReport.model_construct(held_out=None, **report)
+        )
+
     with _client(handler) as api, pytest.raises(JobFailed, match="solver gave up"):
-        api.settle_draft(draft)
+        api.settle_draft(draft(status="pending", job="/v1/jobs/r1"))
     assert calls == ["/v1/jobs/r1"]
-    done = {"plan": "p", "version": 2, "report": {"status": "complete"}}
+    done = draft(status="complete", job=None)
     with _client(handler) as api:
         assert api.settle_draft(done) is done  # nothing pending: no request at all
     assert calls == ["/v1/jobs/r1"]
 
 
 def test_audit_follows_pages_to_the_end() -> None:
-    entries = [{"id": i, "action": f"a{i}"} for i in range(1, 6)]
+    entries = [{"id": i, "at": AT, "actor_name": "ana", "actor_role": "analyst",
+                "action": f"a{i}", "entity": "plan", "entity_id": "p", "reason": None,
+                "payload": {}, "prev_hash": "0" * 64, "hash": f"{i:064x}"}
+               for i in range(1, 6)]  # fmt: skip
 
     def handler(request: httpx.Request) -> httpx.Response:
         after, limit = int(request.url.params["after"]), int(request.url.params["limit"])
@@ -175,8 +200,8 @@ def test_audit_follows_pages_to_the_end() -> None:
                                          "next_after": page[-1]["id"] if more else None})  # fmt: skip
 
     with _client(handler) as api:
-        assert [e["id"] for e in api.audit(limit=2)] == [1, 2]
-        assert [e["id"] for e in api.audit(limit=2, all_pages=True)] == [1, 2, 3, 4, 5]
+        assert [e.id for e in api.audit(limit=2)] == [1, 2]
+        assert [e.id for e in api.audit(limit=2, all_pages=True)] == [1, 2, 3, 4, 5]
 
 
 def test_tabular_answers_become_dataframes() -> None:
@@ -187,10 +212,19 @@ def test_tabular_answers_become_dataframes() -> None:
         {"plan": "b", "live_version": None, "revision": 0, "versions": 1, "latest": 1,
          "latest_status": "draft"},
     ]  # fmt: skip
-    readout = {"arms": [
-        {"arm": "control", "n": 10, "metrics": {"spend": {"mean": 1.5, "se": 0.1}}},
-        {"arm": "bold", "n": 12, "metrics": {"spend": {"mean": 2.0, "se": 0.2}}},
-    ]}  # fmt: skip
+
+    def arm(name: str, n: int, mean: float, se: float) -> dict[str, Any]:
+        est = {"mean": mean, "se": se, "effect": None, "effect_se": None}
+        return {"arm": name, "n": n, "metrics": {"spend": est}}
+
+    readout = {
+        "experiment": "x", "version": 1, "content_hash": "ab", "content_type": "text/csv",
+        "created_at": AT, "created_by": "ana", "n_rows": 22, "control": "control",
+        "arm_counts": {"control": 10, "bold": 12},
+        "sample_ratio": {"statistic": 0.18, "df": 1, "p_value": 0.67, "flagged": False,
+                         "threshold": 0.001, "observed": [10, 12], "expected": [11, 11]},
+        "arms": [arm("control", 10, 1.5, 0.1), arm("bold", 12, 2.0, 0.2)],
+    }  # fmt: skip
 
     def handler(request: httpx.Request) -> httpx.Response:
         return httpx.Response(
