@@ -53,12 +53,12 @@ def check(conn: Conn) -> None:
 
 
 @audit.command("verify", help="verify the hash chain in the database (APPORTION_DATABASE_URL)")
-def verify(as_json: Annotated[bool, typer.Option("--json")] = False) -> None:
+def verify(json_out: Annotated[bool, typer.Option("--json")] = False) -> None:
     from apportion.cli.server import database
     from apportion.usecases.audit import verify as verify_chain
 
     result = verify_chain(database()).model_dump(mode="json")
-    if as_json:
+    if json_out:
         print(json.dumps(result))
     else:
         print(render.chain_line(result))
