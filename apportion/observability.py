@@ -8,6 +8,7 @@ import logging
 import sys
 import time
 import uuid
+from collections.abc import Iterable
 from typing import Any
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
@@ -22,7 +23,7 @@ REDACTED = "redacted"
 _shown_labels: set[str] = set(BUSINESS_LABELS)
 
 
-def show_labels(labels: list[str] | tuple[str, ...] | set[str]) -> None:
+def show_labels(labels: Iterable[str]) -> None:
     """Which business labels this process reports (set from the settings when the app is made;
     process-wide like the registry itself)."""
     unknown = set(labels) - set(BUSINESS_LABELS)
@@ -40,14 +41,14 @@ def _redact(names: tuple[str, ...], values: tuple[str, ...]) -> tuple[str, ...]:
 
 
 class _RedactingCounter(Counter):
-    def labels(self, *values: Any, **kw: Any) -> Any:  # type: ignore[override]
+    def labels(self, *values: Any, **kw: Any) -> Any:
         if kw:
             values = tuple(kw[n] for n in self._labelnames)
         return super().labels(*_redact(self._labelnames, tuple(str(v) for v in values)))
 
 
 class _RedactingGauge(Gauge):
-    def labels(self, *values: Any, **kw: Any) -> Any:  # type: ignore[override]
+    def labels(self, *values: Any, **kw: Any) -> Any:
         if kw:
             values = tuple(kw[n] for n in self._labelnames)
         return super().labels(*_redact(self._labelnames, tuple(str(v) for v in values)))

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import lru_cache
+from typing import Any
 
 import numpy as np
 from scipy.optimize import linprog
@@ -169,7 +170,7 @@ def truth(design: str, n_truth: int = 400_000, seed: int = 12345) -> Truth:
     return Truth(design, _feature_values(xt), tau, oracle, single, best)
 
 
-def plan_true_lifts(tr: Truth, partition, allocation: np.ndarray) -> np.ndarray:
+def plan_true_lifts(tr: Truth, partition: Any, allocation: np.ndarray) -> np.ndarray:
     """(3,) true lifts (y0, y1, y2) of serving `allocation` (C, J) on `partition` to the truth
     sample; a fractional row is valued by its expectation."""
     cohort, _ = partition.route(tr.feature_values, FEATURES)

@@ -275,7 +275,7 @@ def run_demo(
         f"Store: a fresh SQLite file {db_path} (each run makes a new one; delete {var}/ to clean "
         "up).\n\n"
     )
-    settings = Settings(  # type: ignore[call-arg]
+    settings = Settings(
         database_url=f"sqlite:///{db_path}", log_level="WARNING", held_out_folds=held_out_folds
     )
     app = create_app(settings)

@@ -281,7 +281,7 @@ def _metric_values_from(totals: np.ndarray) -> dict[str, float]:
     out: dict[str, Any] = {}
     for m in METRICS:
         if m.kind == "ratio":
-            out[m.key] = totals[..., pos[m.numerator]] / totals[..., pos[m.denominator]]
+            out[m.key] = totals[..., pos[m.ratio_columns[0]]] / totals[..., pos[m.ratio_columns[1]]]
         else:
             out[m.key] = totals[..., pos[m.key]]
     return out
@@ -382,7 +382,7 @@ def oracle_plan(feature_values: dict[str, np.ndarray]) -> dict[str, Any]:
     for g in GUARDRAILS:
         m = next(mm for mm in METRICS if mm.key == g["metric"])
         if m.kind == "ratio":
-            num, den = totals[..., pos[m.numerator]], totals[..., pos[m.denominator]]
+            num, den = totals[..., pos[m.ratio_columns[0]]], totals[..., pos[m.ratio_columns[1]]]
             a_ub.append((num - (base[m.key] + limits[m.key]) * den).ravel())
             b_ub.append(0.0)
         else:

@@ -14,6 +14,7 @@ from __future__ import annotations
 import glob
 import os
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -53,7 +54,7 @@ class ReadoutDataset:
         location: str,
         *,
         arm_keys: tuple[str, ...],
-        design_shares,
+        design_shares: Any,
         features: tuple[FeatureSpec, ...],
         metrics: tuple[MetricSpec, ...],
     ) -> ReadoutDataset:
@@ -70,7 +71,7 @@ class ReadoutDataset:
                               tuple(metrics))  # fmt: skip
 
     @staticmethod
-    def stored(paths, manifest) -> ReadoutDataset:
+    def stored(paths: Any, manifest: Any) -> ReadoutDataset:
         """A readout version in the blob store: its part files (local paths, in order) and its
         manifest (`apportion.ingest.dataset.Manifest`), whose spec carries the discovered levels."""
         spec = manifest.spec

@@ -16,6 +16,7 @@ import shutil
 import sys
 import tempfile
 import uuid
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -26,7 +27,7 @@ from .sql import SqlEngine
 _SESSIONS: dict[str, object] = {}
 
 
-def spark_session(master: str, conf: dict[str, str] | None = None):
+def spark_session(master: str, conf: dict[str, str] | None = None) -> Any:
     """One SparkSession per process and master (starting a JVM is slow; reuse it)."""
     if master not in _SESSIONS:
         from pyspark.sql import SparkSession
@@ -79,7 +80,7 @@ class SparkEngine(SqlEngine):
         self._view("src", src)
         super().__init__(dataset)
 
-    def _view(self, name: str, df) -> None:
+    def _view(self, name: str, df: Any) -> None:
         df.createOrReplaceTempView(name)
         self._views.append(name)
 
@@ -110,7 +111,7 @@ class SparkEngine(SqlEngine):
         rows = self.spark.sql(f"SELECT _pos, {select} FROM src")
         schema = StructType([*rows.schema.fields, StructField("r", ByteType(), False)])
 
-        def add_role(batches):
+        def add_role(batches: Any) -> Any:
             table = roles.value
             for b in batches:
                 pos = b.column(0).to_numpy(zero_copy_only=False)

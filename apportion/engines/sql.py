@@ -12,7 +12,8 @@ one SQL text both backends share into several files that must stay in step.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -21,7 +22,7 @@ from apportion.stats.binning import FeatureBins
 from apportion.stats.estimates import CellMoments
 from apportion.stats.partition import Partition
 from apportion.stats.table import FeatureSpec, MetricSpec
-from apportion.stats.tree import Tree
+from apportion.stats.tree import LevelHistogram, Tree
 
 from .dataset import ReadoutDataset
 
@@ -139,7 +140,8 @@ class SqlEngine:
         cols = ", ".join(f"{x} AS x{i}" for i, x in enumerate(xs))
         row = self.query(f"SELECT {head} FROM (SELECT {cols} FROM src) AS vals").to_pylist()[0]
         out: dict[str, tuple[np.ndarray, float] | None] = {k: None for k in keys}
-        few, many = [], []
+        few: list[int] = []
+        many: list[int] = []
         for i in range(len(keys)):
             if int(row[f"n{i}"] or 0) > 0:
                 (few if int(row[f"d{i}"]) <= DISTINCT_CAP else many).append(i)
@@ -159,7 +161,9 @@ class SqlEngine:
             f, bk, v, c = f[order], bk[order], v[order], c[order]
             return {int(i): (bk[f == i], v[f == i], c[f == i]) for i in np.unique(f)}
 
-        def pick(v: np.ndarray, c: np.ndarray, before: np.ndarray, k: np.ndarray) -> np.ndarray:
+        def pick(
+            v: np.ndarray, c: np.ndarray, before: np.ndarray | np.integer[Any], k: np.ndarray
+        ) -> np.ndarray:
             """The value at 1-based position k, given the count of values before `v`'s first."""
             return v[np.searchsorted(before + np.cumsum(c), k, side="left")]
 
@@ -251,12 +255,18 @@ class SqlEngine:
         ratio_parts = []
         for k, m in enumerate(self.metrics):
             if m.kind == "ratio":
-                a, b = self.components.index(m.numerator), self.components.index(m.denominator)  # type: ignore[arg-type]
+                a, b = (
+                    self.components.index(m.ratio_columns[0]),
+                    self.components.index(m.ratio_columns[1]),
+                )
                 ratio_parts.append(f"SUM(c{a}) AS sn{k}, SUM(c{b}) AS sd{k}, AVG(c{b}) AS md{k}")
         consts = self.query(f"SELECT {', '.join(ratio_parts)} FROM work WHERE {where}").to_pylist()[0] if ratio_parts else {}  # fmt: skip
         for k, m in enumerate(self.metrics):
             if m.kind == "ratio":
-                a, b = self.components.index(m.numerator), self.components.index(m.denominator)  # type: ignore[arg-type]
+                a, b = (
+                    self.components.index(m.ratio_columns[0]),
+                    self.components.index(m.ratio_columns[1]),
+                )
                 r_root = consts[f"sn{k}"] / consts[f"sd{k}"]
                 raw.append(f"((c{a} - {num(r_root)} * c{b}) / {num(consts[f'md{k}'])})")
             else:
@@ -269,7 +279,7 @@ class SqlEngine:
             self._y.append(f"(({e} - {num(row[f'm{k}'])}) / {num(sd if sd > 0 else 1.0)})")
 
     # ---- routing --------------------------------------------------------------------------------
-    def route_expr(self, tree: Tree, value_of_leaf) -> str:
+    def route_expr(self, tree: Tree, value_of_leaf: Callable[[int], object]) -> str:
         """SQL for `value_of_leaf(leaf)` of the leaf each row reaches in `tree` (over `b0..`);
         a branch whose leaves all give the same value is not expanded."""
 
@@ -295,7 +305,9 @@ class SqlEngine:
     def _sums(self) -> str:
         return ", ".join(f"SUM({y}) AS s{k}, SUM({y} * {y}) AS q{k}" for k, y in enumerate(self._y))
 
-    def leaf_stats(self, tree: Tree, roles: tuple[int, ...], n_arms: int):
+    def leaf_stats(
+        self, tree: Tree, roles: tuple[int, ...], n_arms: int
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         L, J, K = len(tree), n_arms, len(self._y)
         node = self.route_expr(tree, lambda leaf: leaf)
         t = self.query(f"SELECT {node} AS g, a, COUNT(*) AS n, {self._sums()} FROM work "
@@ -413,7 +425,7 @@ class _SqlLevels:
     def __init__(self, engine: SqlEngine, s_roles: tuple[int, ...], n_arms: int) -> None:
         self.e, self.s_roles, self.J = engine, s_roles, n_arms
 
-    def level(self, tree: Tree, frontier: list[int]) -> Iterator[tuple[int, ...]]:
+    def level(self, tree: Tree, frontier: list[int]) -> Iterator[LevelHistogram]:
         e, J = self.e, self.J
         bins = e._bins
         assert bins is not None

@@ -112,11 +112,9 @@ def parse_units(
     arm = _arms(cols.get(arm_column) if arm_column else None, arm_column, arm_keys, n, problems)
     specs, values = _features(features, cols, problems)
     columns = _components(metrics, components, cols, problems)
-    flags = {}
-    for c in flag_columns:
-        if c in cols:
-            flags[c] = to_flags(cols[c], c, problems)
-    problems.raise_if_any()
+    read_flags = {c: to_flags(cols[c], c, problems) for c in flag_columns if c in cols}
+    problems.raise_if_any()  # a flag column that could not be read (None) is one of the problems
+    flags = {c: f for c, f in read_flags.items() if f is not None}
 
     unit_table = UnitTable(
         unit_ids=unit_ids,

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 from scipy.stats import norm
@@ -144,19 +145,21 @@ def _coef_lin(lin: Linear, method: str, options: dict) -> tuple[Linear, str]:
     return lin, method
 
 
-def _solve(problem, lin, method, allocation, seed, options):
+def _solve(
+    problem: Any, lin: Any, method: str, allocation: str, seed: int, options: dict[str, Any]
+) -> tuple[Any, int, dict[str, Any]]:
     lin_m, meth = (lin, method) if allocation == "pure" else _coef_lin(lin, method, options)
     x, it, diag = solve_linear(problem, lin_m, meth, allocation, seed=seed, options=options)
     return x, it, diag
 
 
-def _draw_means(rng, mean, sd) -> np.ndarray:
+def _draw_means(rng: np.random.Generator, mean: np.ndarray, sd: np.ndarray) -> np.ndarray:
     return mean + rng.standard_normal(mean.shape) * sd
 
 
 def _warm_cuts(lin: Linear, x0: np.ndarray, coef: np.ndarray) -> tuple[list, list]:
-    cuts = [cut_row(lin, k, x0, float(coef[k])) for k in range(len(coef))] if coef.any() else []
-    cuts = [cu for cu in cuts if cu is not None]
+    found = [cut_row(lin, k, x0, float(coef[k])) for k in range(len(coef))] if coef.any() else []
+    cuts = [cu for cu in found if cu is not None]
     return [cu[0] for cu in cuts], [cu[1] for cu in cuts]
 
 

@@ -28,6 +28,7 @@ import math
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from scipy.stats import norm
@@ -116,7 +117,7 @@ def run_pipeline(
     model_params: dict | None = None,
     seed: int = 0,
     draws: int = FOLD_DRAWS,
-):
+) -> tuple[Any, np.ndarray, np.ndarray | None]:
     """The candidate's plan on `table`: (cohort model fit, allocation (C, J), calibrated
     probabilities or None when no plan met the guardrails and control is served)."""
     fit = fit_model(table, cand.model, success=success, guardrails=guardrails,
@@ -128,7 +129,7 @@ def run_pipeline(
 
 def fit_model(table: UnitTable, model: str, *, success: str,
               guardrails: tuple[Guardrail, ...] = (), model_params: dict | None = None,
-              seed: int = 0):  # fmt: skip
+              seed: int = 0) -> Any:  # fmt: skip
     """The cohort model of one fold: fitted once and shared by every optimizer that uses it (a
     decision-focused method prices the guardrails, `model_params_for`)."""
     params = model_params_for(Candidate(model, "deterministic"), guardrails,
@@ -138,14 +139,14 @@ def fit_model(table: UnitTable, model: str, *, success: str,
 
 def solve_on_fit(
     table: UnitTable,
-    fit,
+    fit: Any,
     cand: Candidate,
     *,
     success: str,
     guardrails: tuple[Guardrail, ...],
     seed: int = 0,
     draws: int = FOLD_DRAWS,
-):
+) -> tuple[np.ndarray, np.ndarray | None]:
     """The calibrated allocation (C, J) of `cand`'s optimizer on a fitted model, and its
     calibrated probabilities (None when no plan met the guardrails and control is served)."""
     problem = build_problem(shares=fit.shares, moments=fit.moments, metrics=table.metrics,
@@ -182,7 +183,7 @@ def check_folds(arm_counts: dict[str, int], folds: int) -> None:
         )
 
 
-def _scores(table: UnitTable, fit, x: np.ndarray, rows: np.ndarray) -> np.ndarray:
+def _scores(table: UnitTable, fit: Any, x: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """(len(rows), Q) per-unit AIPW lift scores psi of plan x against all-control, per
     component, with the fit's cohort x arm means (fitted on other rows) as outcome model."""
     sub = table.take(rows)
@@ -198,7 +199,7 @@ def _scores(table: UnitTable, fit, x: np.ndarray, rows: np.ndarray) -> np.ndarra
     return direct + (d[cohort, sub.arm] / e[sub.arm])[:, None] * resid
 
 
-def _control_scores(table: UnitTable, fit, rows: np.ndarray) -> np.ndarray:
+def _control_scores(table: UnitTable, fit: Any, rows: np.ndarray) -> np.ndarray:
     """(len(rows), Q) AIPW scores of every component's level under all-control."""
     sub = table.take(rows)
     cohort, _ = fit.partition.route(sub.feature_values, sub.features)
@@ -208,14 +209,16 @@ def _control_scores(table: UnitTable, fit, rows: np.ndarray) -> np.ndarray:
     return mu[cohort, 0] + w[:, None] * (y - mu[cohort, 0])
 
 
-def _metric_influence(table: UnitTable, key: str, psi: np.ndarray, base: np.ndarray):
+def _metric_influence(
+    table: UnitTable, key: str, psi: np.ndarray, base: np.ndarray
+) -> tuple[float, np.ndarray]:
     """Lift estimate of metric `key` and per-unit influence values (n,)."""
     m = table.metric(key)
     pos = {c: i for i, c in enumerate(table.component_names())}
     if m.kind != "ratio":
         v = psi[:, pos[key]]
         return float(v.mean()), v
-    a, dd = pos[m.numerator], pos[m.denominator]
+    a, dd = pos[m.ratio_columns[0]], pos[m.ratio_columns[1]]
     nb, db = base[:, a], base[:, dd]
     nx, dx = nb + psi[:, a], db + psi[:, dd]
     rb, rx = nb.mean() / db.mean(), nx.mean() / dx.mean()
@@ -247,7 +250,7 @@ def evaluate_candidates(
     psi = {c.name: np.zeros((n, len(table.component_names()))) for c in candidates}
     base = np.zeros((n, len(table.component_names())))
     infeasible = {c.name: 0 for c in candidates}
-    fold_vals = {c.name: [] for c in candidates}
+    fold_vals: dict[str, list[dict[str, float]]] = {c.name: [] for c in candidates}
     seconds = {c.name: 0.0 for c in candidates}
     by_model: dict[str, list[Candidate]] = {}
     for cand in candidates:  # each model is fitted once per fold; every optimizer reuses it
@@ -328,10 +331,10 @@ def evaluate_candidates(
         for k in keys:
             v, infl = _metric_influence(table, k, p, base)
             se_within = float(infl.std(ddof=1) / math.sqrt(n))
-            fv = np.array([d[k] for d in fold_vals[cand.name]])
-            se_nb = float(math.sqrt((1 / folds + 1 / (folds - 1)) * fv.var(ddof=1)))
+            per_fold = np.array([d[k] for d in fold_vals[cand.name]])
+            se_nb = float(math.sqrt((1 / folds + 1 / (folds - 1)) * per_fold.var(ddof=1)))
             metrics[k] = {"lift": v, "se": max(se_within, se_nb), "se_within": se_within,
-                          "se_folds": se_nb, "folds": fv.tolist()}  # fmt: skip
+                          "se_folds": se_nb, "folds": per_fold.tolist()}  # fmt: skip
         rows.append({"candidate": cand.name, "model": cand.model, "optimizer": cand.optimizer,
                      "metrics": metrics, "folds_without_plan": infeasible[cand.name],
                      "seconds": round(seconds[cand.name], 3)})  # fmt: skip
@@ -356,7 +359,15 @@ def _allowance(table: UnitTable, g: Guardrail, base_level: float) -> tuple[float
     return harm, float(t)
 
 
-def recommend(table, rows, psi, base, *, success, guardrails) -> dict:
+def recommend(
+    table: UnitTable,
+    rows: list[dict[str, Any]],
+    psi: dict[str, np.ndarray],
+    base: np.ndarray,
+    *,
+    success: str,
+    guardrails: tuple[Guardrail, ...],
+) -> dict[str, Any]:
     """Rule: refuse a candidate whose held-out estimate of some guardrail
     lies beyond its threshold; call it verified when estimate + z' se stays within for every
     guardrail (z' Bonferroni-adjusted for the number of candidates); among the rest take the
@@ -370,7 +381,7 @@ def recommend(table, rows, psi, base, *, success, guardrails) -> dict:
         m = table.metric(g.metric)
         if m.kind == "ratio":
             base_levels[g.metric] = float(
-                base[:, pos[m.numerator]].mean() / base[:, pos[m.denominator]].mean()
+                base[:, pos[m.ratio_columns[0]]].mean() / base[:, pos[m.ratio_columns[1]]].mean()
             )
         else:
             base_levels[g.metric] = float(base[:, pos[g.metric]].mean())

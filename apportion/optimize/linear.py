@@ -99,7 +99,7 @@ def linearize(
     def weights(m: MetricSpec, t_abs: float) -> np.ndarray:
         w = np.zeros(q)
         if m.kind == "ratio":
-            a, d = pos[m.numerator], pos[m.denominator]
+            a, d = pos[m.ratio_columns[0]], pos[m.ratio_columns[1]]
             r = base[m.key] + t_abs
             w[a], w[d] = 1.0 / tot_b[d], -r / tot_b[d]
         else:

@@ -10,6 +10,7 @@ are appended per call. Rows and objective are scaled to unit max coefficient for
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
@@ -64,7 +65,9 @@ class LPModel:
         self.cost = cost + tie_break * tie.ravel()
         self.upper = lin.avail.astype(np.float64).ravel()
 
-    def _rows(self, cuts_a: np.ndarray | None, cuts_b: np.ndarray | None):
+    def _rows(
+        self, cuts_a: np.ndarray | None, cuts_b: np.ndarray | None
+    ) -> tuple[np.ndarray, np.ndarray]:
         if cuts_a is None or len(cuts_a) == 0:
             return self.a_ub, self.b_ub
         s = np.maximum(np.abs(cuts_a).max(axis=1), 1e-300)
@@ -111,7 +114,7 @@ class LPModel:
         x = x / x.sum(axis=1, keepdims=True)
         return LPResult(x, 0, nit, str(res.message))
 
-    def _linprog(self, cost, a_ub, b_ub, a_eq, upper):
+    def _linprog(self, cost: np.ndarray, a_ub: Any, b_ub: np.ndarray, a_eq: Any, upper: Any) -> Any:
         return linprog(
             cost,
             A_ub=a_ub if a_ub.shape[0] else None,
@@ -123,7 +126,7 @@ class LPModel:
             options={"presolve": self.presolve},
         )
 
-    def _full(self, cost, a_ub, b_ub) -> LPResult:
+    def _full(self, cost: np.ndarray, a_ub: Any, b_ub: np.ndarray) -> LPResult:
         c, j = self.shape
         res = self._linprog(cost, a_ub, b_ub, self.a_eq, self.upper)
         if res.status != 0 or res.x is None:
@@ -133,7 +136,9 @@ class LPModel:
         duals = -res.ineqlin.marginals if a_ub.shape[0] else np.zeros(0)
         return LPResult(x, 0, int(res.nit), str(res.message), np.maximum(duals, 0.0))
 
-    def _restricted(self, cost, a_ub, b_ub, duals) -> LPResult | None:
+    def _restricted(
+        self, cost: np.ndarray, a_ub: Any, b_ub: np.ndarray, duals: np.ndarray
+    ) -> LPResult | None:
         """Exact LP solve by a restricted problem and a pricing check (LP duality; e.g.
         Bertsimas and Tsitsiklis 1997, ch. 4 and 6): with multipliers lambda of the R coupling
         rows, each cohort's best arm minimizes cost_cj + lambda . a_cj. Cohorts with a clear best
@@ -207,7 +212,7 @@ def cut_row(lin: Linear, k: int, x0: np.ndarray, coef: float) -> tuple[np.ndarra
     return row, float(lin.rhs[k] + row @ lin.b.ravel())
 
 
-def best_reachable(lin: Linear, problem, k: int) -> tuple[float, np.ndarray]:
+def best_reachable(lin: Linear, problem: Any, k: int) -> tuple[float, np.ndarray]:
     """The best (least harmful) exact lift of guardrail k that ANY allocation reaches, with that
     allocation. A single linear (or linear-fractional) objective over a product of simplices is
     minimized at a vertex, one arm per cohort, so this is the LP minimizing that guardrail alone
@@ -227,7 +232,7 @@ def best_reachable(lin: Linear, problem, k: int) -> tuple[float, np.ndarray]:
         return x
 
     if spec.kind == "ratio":
-        a, d = pos[spec.numerator], pos[spec.denominator]
+        a, d = pos[spec.ratio_columns[0]], pos[spec.ratio_columns[1]]
         r = base
         for _ in range(100):
             x = vertex(harm * (mu[..., a] - r * mu[..., d]))

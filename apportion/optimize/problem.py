@@ -71,7 +71,10 @@ def _bad(field: str, detail: str, **values: object) -> InvalidInput:
 
 
 def _check_metrics(
-    moments: CellMoments, metrics: tuple[MetricSpec, ...], success: str, guardrails
+    moments: CellMoments,
+    metrics: tuple[MetricSpec, ...],
+    success: str,
+    guardrails: tuple[Guardrail, ...],
 ) -> None:
     comps = set(moments.components)
     for m in metrics:
@@ -86,7 +89,9 @@ def _check_metrics(
     check_objective(metrics, success, guardrails)
 
 
-def check_objective(metrics: tuple[MetricSpec, ...], success: str, guardrails) -> None:
+def check_objective(
+    metrics: tuple[MetricSpec, ...], success: str, guardrails: tuple[Guardrail, ...]
+) -> None:
     """InvalidInput unless the success metric and every guardrail name a declared metric once,
     with a unit, confidence and threshold sign that fit it (needs no data: callers check a
     request with it before they store anything)."""
@@ -186,7 +191,7 @@ def validate_problem(problem: AllocationProblem) -> None:
     p = np.asarray(problem.shares, dtype=np.float64)
     for m in problem.metrics:
         if m.kind == "ratio":
-            den = float(np.einsum("c,cj,cj->", p, x, mu[..., pos[m.denominator]]))
+            den = float(np.einsum("c,cj,cj->", p, x, mu[..., pos[m.ratio_columns[1]]]))
             if not den > 0:
                 raise _bad(
                     "metrics",

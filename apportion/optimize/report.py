@@ -20,12 +20,13 @@ evaluation (apportion/stats/evaluation.py) is the honest number and is merged in
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 from scipy.stats import norm
 
 from apportion.optimize.chance import solve_cone
-from apportion.optimize.linear import cvar_multiplier, linearize
+from apportion.optimize.linear import Linear, cvar_multiplier, linearize
 from apportion.optimize.lp import LPModel, cut_row, simplex_rows
 from apportion.optimize.problem import AllocationProblem, available_cells, validate_problem
 from apportion.optimize.solve import Solution
@@ -38,7 +39,7 @@ Z95 = float(norm.ppf(0.975))
 REOPT_TOL = 1e-2
 
 
-def _num(v: float) -> float | None:
+def _num(v: float | np.floating[Any]) -> float | None:
     return float(v) if np.isfinite(v) else None
 
 
@@ -61,7 +62,7 @@ def _mean_chol(problem: AllocationProblem, avail: np.ndarray) -> np.ndarray:
         return vecs * np.sqrt(np.clip(vals, 0.0, None))[..., None, :]
 
 
-def _lifts(problem, x, mean, base_x) -> dict[str, float]:
+def _lifts(problem: Any, x: np.ndarray, mean: np.ndarray, base_x: np.ndarray) -> dict[str, float]:
     p = np.asarray(problem.shares, dtype=np.float64)
     comps = problem.moments.components
     vx = metric_values(x, p, mean, problem.metrics, comps)
@@ -120,8 +121,8 @@ def impact_report(
         duals0 = model0.solve().duals
     else:
         duals0 = solve_cone(model0, lin, coef, cuts_a=warm_cuts[0], cuts_b=warm_cuts[1]).duals
-    delta = {key: [] for key in keys}
-    reopt_values = {key: [] for key in keys}
+    delta: dict[str, list[float]] = {key: [] for key in keys}
+    reopt_values: dict[str, list[float]] = {key: [] for key in keys}
     skipped = 0
     for d in range(draws):
         mean_d = np.where(avail[..., None], _draw_means(rng, mean, chol), 0.0)
@@ -204,13 +205,13 @@ def impact_report(
     }
 
 
-def _cuts_at(lin, x, coef) -> tuple[list, list]:
-    cuts = [cut_row(lin, k, x, float(coef[k])) for k in range(len(coef))] if coef.any() else []
-    cuts = [cu for cu in cuts if cu is not None]
+def _cuts_at(lin: Linear, x: np.ndarray, coef: np.ndarray) -> tuple[list[Any], list[Any]]:
+    found = [cut_row(lin, k, x, float(coef[k])) for k in range(len(coef))] if coef.any() else []
+    cuts = [cu for cu in found if cu is not None]
     return [cu[0] for cu in cuts], [cu[1] for cu in cuts]
 
 
-def _holds(problem, lin, lifts_unit: dict[str, float]) -> dict[str, bool]:
+def _holds(problem: Any, lin: Linear, lifts_unit: dict[str, float]) -> dict[str, bool]:
     out = {}
     for k, g in enumerate(problem.guardrails):
         harm = lin.harm[k]
@@ -219,9 +220,17 @@ def _holds(problem, lin, lifts_unit: dict[str, float]) -> dict[str, bool]:
     return out
 
 
-def _comparison(problem, lin, x, mean, b, keys, unit) -> list[dict]:
+def _comparison(
+    problem: Any,
+    lin: Linear,
+    x: np.ndarray,
+    mean: np.ndarray,
+    b: np.ndarray,
+    keys: list[str],
+    unit: dict[str, float],
+) -> list[dict[str, Any]]:
     c, j, _ = lin.shape
-    arm_rows = []
+    arm_rows: list[dict[str, Any]] = []
     for arm in range(j):
         if not lin.avail[:, arm].all():
             arm_rows.append({"plan": f"arm {arm} for everyone", "arm": arm, "available": False})

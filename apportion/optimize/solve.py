@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, replace
-from typing import Literal
+from typing import Literal, NoReturn
 
 import numpy as np
 from scipy.stats import norm
@@ -52,7 +52,9 @@ def method_coefficients(lin: Linear, method: str, options: dict) -> np.ndarray:
     return cvar_multiplier(lin.conf, options.get("tail"))
 
 
-def _raise_infeasible(problem: AllocationProblem, lin: Linear, method: str, allocation: str):
+def _raise_infeasible(
+    problem: AllocationProblem, lin: Linear, method: str, allocation: str
+) -> NoReturn:
     errors = []
     for k, g in enumerate(problem.guardrails):
         v, _ = best_reachable(lin, problem, k)

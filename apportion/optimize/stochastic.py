@@ -32,6 +32,7 @@ al. 2008), eta onto its box. Output: the step-weighted average of the marked ite
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -40,7 +41,7 @@ from apportion.optimize.linear import Linear, cvar_multiplier
 from apportion.optimize.simplex import project_rows
 
 MAX_AUTO_BATCH = 4096
-DEFAULTS = {
+DEFAULTS: dict[str, Any] = {
     "iterations": 40000,
     "batch": None,  # None: ~32 draws in the thinnest tail, at least 16 (antithetic pairs)
     "noise_allowance": 2.0,  # the good-iterate test also allows this many standard errors of phi

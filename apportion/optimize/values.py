@@ -27,7 +27,7 @@ def metric_values(
     out: dict[str, float] = {}
     for m in metrics:
         if m.kind == "ratio":
-            out[m.key] = float(tot[pos[m.numerator]] / tot[pos[m.denominator]])
+            out[m.key] = float(tot[pos[m.ratio_columns[0]]] / tot[pos[m.ratio_columns[1]]])
         else:
             out[m.key] = float(tot[pos[m.key]])
     return out
@@ -49,7 +49,7 @@ def lift_sd(
     avail = n >= 2
     mu = np.where(avail[..., None], mean, 0.0)
     if metric.kind == "ratio":
-        a, d = pos[metric.numerator], pos[metric.denominator]
+        a, d = pos[metric.ratio_columns[0]], pos[metric.ratio_columns[1]]
         wx, wb = shares[:, None] * x, shares[:, None] * b
         nx, dx = (wx * mu[..., a]).sum(), (wx * mu[..., d]).sum()
         nb, db = (wb * mu[..., a]).sum(), (wb * mu[..., d]).sum()

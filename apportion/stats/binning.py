@@ -9,6 +9,7 @@ get the last code of their feature, `n_bins[f] - 1`.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -70,7 +71,9 @@ def bin_features(
             n_bins[i] = n_levels + 1
             thresholds.append(None)
         raw.append(code)
-    dtype = np.uint8 if (n_bins.size == 0 or n_bins.max() <= 256) else np.uint16
+    dtype: type[np.unsignedinteger[Any] | np.signedinteger[Any]] = (
+        np.uint8 if (n_bins.size == 0 or n_bins.max() <= 256) else np.uint16
+    )
     if n_bins.size and n_bins.max() > 65536:
         dtype = np.int32
     codes = np.empty((len(specs), table.n), dtype=dtype)

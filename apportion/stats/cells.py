@@ -143,7 +143,14 @@ def _neighbours(tuples: np.ndarray) -> list[set[int]]:
     return adj
 
 
-def _closest(g, cand, gn_s, gs, weights, size) -> int:
+def _closest(
+    g: int,
+    cand: np.ndarray,
+    gn_s: np.ndarray,
+    gs: np.ndarray,
+    weights: np.ndarray,
+    size: np.ndarray,
+) -> int:
     """The candidate group whose standardized lifts are closest to group g's (weighted squared
     distance); when no distance is defined, the largest candidate."""
     with np.errstate(divide="ignore", invalid="ignore"):

@@ -80,13 +80,15 @@ def targets(
 
     def value(m: MetricSpec) -> float:
         if m.kind == "ratio":
-            return float(control_means[pos[m.numerator]] / control_means[pos[m.denominator]])
+            return float(
+                control_means[pos[m.ratio_columns[0]]] / control_means[pos[m.ratio_columns[1]]]
+            )
         return float(control_means[pos[m.key]])
 
     def weights(m: MetricSpec, t_abs: float) -> np.ndarray:
         w = np.zeros(q)
         if m.kind == "ratio":
-            a, d = pos[m.numerator], pos[m.denominator]  # type: ignore[index]
+            a, d = pos[m.ratio_columns[0]], pos[m.ratio_columns[1]]
             den = control_means[d]
             w[a], w[d] = 1.0 / den, -(value(m) + t_abs) / den
         else:

@@ -113,7 +113,7 @@ def metric_gradients(
     pos = {name: i for i, name in enumerate(moments.components)}
     for m_i, m in enumerate(metrics):
         if m.kind == "ratio":
-            a, b = pos[m.numerator], pos[m.denominator]  # type: ignore[index]
+            a, b = pos[m.ratio_columns[0]], pos[m.ratio_columns[1]]
             mu_n, mu_d = moments.mean[..., a], moments.mean[..., b]
             with np.errstate(invalid="ignore", divide="ignore"):
                 r = mu_n / mu_d

@@ -42,8 +42,8 @@ def criterion_outcomes(table: UnitTable, rows: np.ndarray) -> np.ndarray:
     out = np.empty((table.n, len(table.metrics)))
     for k, m in enumerate(table.metrics):
         if m.kind == "ratio":
-            num = table.columns[m.numerator]  # type: ignore[index]
-            den = table.columns[m.denominator]  # type: ignore[index]
+            num = table.columns[m.ratio_columns[0]]
+            den = table.columns[m.ratio_columns[1]]
             mu_den = den[rows].mean()
             r_root = num[rows].sum() / den[rows].sum()
             y = (num - r_root * den) / mu_den

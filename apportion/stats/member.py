@@ -118,7 +118,7 @@ def boosted_outcomes(
     done = [0]
     lock = threading.Lock()
 
-    def run(task) -> list[int]:
+    def run(task: tuple[int, np.ndarray, int, np.ndarray]) -> list[int]:
         fi, test, j, train = task
         iters = []
         xt = x[train]
@@ -270,7 +270,7 @@ def fit_forest(
         nodes = len(tree)
         idx = leaf_e * n_arms + arm[e_rows]
         cnt = np.bincount(idx, minlength=nodes * n_arms).astype(np.float64)
-        lm = np.empty((nodes * n_arms, q))
+        lm: np.ndarray = np.empty((nodes * n_arms, q))
         for c in range(q):
             s = np.bincount(idx, weights=values[e_rows, c], minlength=nodes * n_arms)
             with np.errstate(invalid="ignore", divide="ignore"):

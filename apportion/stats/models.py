@@ -383,7 +383,9 @@ def _check_table(table: UnitTable) -> None:
             )
 
 
-def _fit_honest(table: UnitTable, method: str, p: dict, features, report):
+def _fit_honest(
+    table: UnitTable, method: str, p: dict[str, Any], features: Any, report: Any
+) -> tuple[Any, Any, Any, dict[str, Any]]:
     """causal_tree and intersect: honest split, root standardizers, growth, estimation half."""
     est = honest_split(table.arm, p["seed"], p["estimation_fraction"])
     s_rows, e_rows = np.flatnonzero(~est), np.flatnonzero(est)

@@ -111,7 +111,9 @@ class Partition:
         """A readable rule per leaf, e.g. `level in {beginner} and tenure_days < 30`."""
         out: dict[int, str] = {}
 
-        def walk(node: int, lo: dict[str, float], hi: dict[str, float], sets: dict[str, set[str]]):
+        def walk(
+            node: int, lo: dict[str, float], hi: dict[str, float], sets: dict[str, set[str]]
+        ) -> None:
             if self.is_leaf(node):
                 out[node] = _format_rule(self.features, lo, hi, sets)
                 return

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 
@@ -60,7 +61,7 @@ def grow_policy_tree(
         sl, sle = sl_all[act], sle_all[act_e]
         r_act, a_s, a_e = reward[act], arm_s[act], arm_e[act_e]
         parent = np.stack([np.bincount(sl, r_act[:, j], S) for j in range(J)], axis=1)  # (S, J)
-        best = {"gain": np.full(S, -np.inf), "f": [-1] * S, "lookup": [None] * S,
+        best: dict[str, Any] = {"gain": np.full(S, -np.inf), "f": [-1] * S, "lookup": [None] * S,
                 "thr": [math.nan] * S, "lv": [()] * S, "rv": [()] * S, "dl": [True] * S}  # fmt: skip
         for f in range(codes_s.shape[0]):
             nb = int(bins.n_bins[f])
@@ -79,7 +80,7 @@ def grow_policy_tree(
             gain, left_big = _gains(R, cnt, cnt_e, parent, min_units)
             arg = gain.argmax(axis=1)
             g = gain[np.arange(S), arg]
-            for s in np.flatnonzero(g > best["gain"]):
+            for s in np.flatnonzero(g > best["gain"]).tolist():
                 lk, thr, lv, rv = _rule(bins, f, int(arg[s]) + 1, bool(left_big[s, arg[s]]),
                                         None if perm is None else perm[s], cnt[s])  # fmt: skip
                 best["gain"][s], best["f"][s], best["lookup"][s] = g[s], f, lk
@@ -112,12 +113,14 @@ def grow_policy_tree(
     return tree, node_s, node_e
 
 
-def _gains(R, cnt, cnt_e, parent, m) -> tuple[np.ndarray, np.ndarray]:
+def _gains(
+    R: np.ndarray, cnt: np.ndarray, cnt_e: np.ndarray, parent: np.ndarray, m: int
+) -> tuple[np.ndarray, np.ndarray]:
     """(S, B-1) gain of `code < b`, b = 1..B-1 (the last code holds the missing rows, which go
     with the larger child), and whether the left child is the larger one."""
     B = R.shape[1] - 1
 
-    def parts(a):
+    def parts(a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         c = np.cumsum(a[:, :B], axis=1)
         return c[:, : B - 1], c[:, B - 1 :] - c[:, : B - 1], a[:, B:]
 
@@ -125,7 +128,7 @@ def _gains(R, cnt, cnt_e, parent, m) -> tuple[np.ndarray, np.ndarray]:
     left_big = nl.sum(-1) >= nr.sum(-1)
     lb = left_big[..., None]
 
-    def children(a):
+    def children(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         left, right, miss = parts(a)
         return left + np.where(lb, miss, 0), right + np.where(lb, 0, miss)
 
@@ -137,7 +140,9 @@ def _gains(R, cnt, cnt_e, parent, m) -> tuple[np.ndarray, np.ndarray]:
     return np.where(ok, gain, -np.inf), left_big
 
 
-def _order_levels(R, cnt, cnt_e, parent):
+def _order_levels(
+    R: np.ndarray, cnt: np.ndarray, cnt_e: np.ndarray, parent: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Order each node's levels by the per-unit reward margin of the node's best arm over its
     second best (a one-dimensional ordering; with two arms it is the exact optimal order), then
     treat them as ordered bins; levels without structure rows go last."""
@@ -151,14 +156,16 @@ def _order_levels(R, cnt, cnt_e, parent):
     key = np.where(n_lv > 0, key, np.inf)
     perm = np.argsort(key, axis=1, kind="stable")
 
-    def reorder(a):
+    def reorder(a: np.ndarray) -> np.ndarray:
         p = perm[..., None]
         return np.concatenate([np.take_along_axis(a[:, :B], p, axis=1), a[:, B:]], axis=1)
 
     return reorder(R), reorder(cnt), reorder(cnt_e), perm
 
 
-def _rule(bins: FeatureBins, f: int, b: int, dl: bool, perm, cnt_node):
+def _rule(
+    bins: FeatureBins, f: int, b: int, dl: bool, perm: np.ndarray | None, cnt_node: np.ndarray
+) -> tuple[np.ndarray, float, tuple[str, ...], tuple[str, ...]]:
     """Lookup over the feature's codes, numeric threshold and the levels sent each way."""
     nb = int(bins.n_bins[f])
     B = nb - 1
@@ -189,7 +196,16 @@ def _significant(r: np.ndarray, go_left: np.ndarray, gain: float, z: float) -> b
     return gain > z * se
 
 
-def _splittable(nodes, node_s, arm_s, node_e, arm_e, n_nodes, J, m) -> list[int]:
+def _splittable(
+    nodes: list[int],
+    node_s: np.ndarray,
+    arm_s: np.ndarray,
+    node_e: np.ndarray,
+    arm_e: np.ndarray,
+    n_nodes: int,
+    J: int,
+    m: int,
+) -> list[int]:
     cs = np.bincount(node_s * J + arm_s, minlength=n_nodes * J).reshape(n_nodes, J)
     ce = np.bincount(node_e * J + arm_e, minlength=n_nodes * J).reshape(n_nodes, J)
     ok = (cs.min(axis=1) >= 2 * m) & (ce.min(axis=1) >= 2 * m)

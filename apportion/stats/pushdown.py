@@ -199,7 +199,9 @@ def _roles(arm: np.ndarray, p: dict) -> tuple[np.ndarray, int]:
     return role, int(est.sum())
 
 
-def _fit_tree(engine: RowEngine, arm: np.ndarray, p: dict, report):
+def _fit_tree(
+    engine: RowEngine, arm: np.ndarray, p: dict[str, Any], report: Any
+) -> tuple[Any, Tree, np.ndarray, int, dict[str, Any]]:
     role, n_est = _roles(arm, p)
     n_tr = engine.n - n_est
     if n_tr == 0 or n_est == 0:
@@ -244,7 +246,7 @@ def _fit_tree(engine: RowEngine, arm: np.ndarray, p: dict, report):
 
 
 def _cv_prune(engine: RowEngine, tree: Tree, bins: FeatureBins, spec: GrowSpec, folds: int,
-              one_se: bool, progress: Callable[[float], None]):  # fmt: skip
+              one_se: bool, progress: Callable[[float], None]) -> tuple[Any, Any, list[float]]:  # fmt: skip
     """`prune.cv_prune` with the folds' rows held by the engine: each fold's tree grows on the
     other folds, and its held-out criterion comes from per-leaf statistics of the held-out fold
     summed into the pruned tree's leaves."""
@@ -267,7 +269,14 @@ def _cv_prune(engine: RowEngine, tree: Tree, bins: FeatureBins, spec: GrowSpec, 
     return grid[best], grid, scores.mean(axis=0).tolist()
 
 
-def _grouped_score(old_to_new, n, s, q, spec: GrowSpec, n_te: int) -> float:
+def _grouped_score(
+    old_to_new: np.ndarray,
+    n: np.ndarray,
+    s: np.ndarray,
+    q: np.ndarray,
+    spec: GrowSpec,
+    n_te: int,
+) -> float:
     """`prune._score` from per-leaf statistics: the leaves' sums added into the pruned groups."""
     G = int(old_to_new.max()) + 1
     ng = np.zeros((G,) + n.shape[1:])

@@ -27,6 +27,8 @@ def chain_tree(bins: FeatureBins, f: int) -> Tree:
         return tree
     largest = groups[int(np.argmax(counts[groups]))]
     spec = bins.features[f]
+    lv: tuple[str, ...]
+    rv: tuple[str, ...]
     for i, g in enumerate(groups[:-1]):
         rest = groups[i + 1 :]
         default_left = largest == g

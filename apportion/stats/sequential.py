@@ -23,9 +23,10 @@ over t = n_plan + n_holdout i.i.d. arrivals, which is what the asymptotic CS nee
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from apportion.errors import InvalidInput
 from apportion.stats.estimates import CellMoments, metric_estimates, pool_cohorts
@@ -75,7 +76,7 @@ def rho_squared(alpha: float, horizon: int) -> float:
     return float((2.0 * la + np.log1p(2.0 * la)) / horizon)
 
 
-def radius_factor(n_total, alpha: float, horizon: int):
+def radius_factor(n_total: ArrayLike, alpha: float, horizon: int) -> np.ndarray:
     """Radius / standard error of the CS after `n_total` units (scalar or array); grows like
     sqrt(log log t) relative to the fixed-horizon normal quantile."""
     r2 = rho_squared(alpha, horizon)
@@ -86,7 +87,9 @@ def radius_factor(n_total, alpha: float, horizon: int):
     return np.where(t > 0, f, np.inf)
 
 
-def confidence_sequence(diff, se, n_total, alpha: float, horizon: int) -> tuple[float, float]:
+def confidence_sequence(
+    diff: ArrayLike, se: ArrayLike, n_total: ArrayLike, alpha: float, horizon: int
+) -> tuple[Any, Any]:
     """(lower, upper) of the two-sided CS at level 1 - alpha around `diff` with standard error
     `se` after `n_total` units. Scalars or arrays broadcasting together (vectorised over streams);
     a NaN or infinite se gives (-inf, inf)."""
@@ -96,11 +99,11 @@ def confidence_sequence(diff, se, n_total, alpha: float, horizon: int) -> tuple[
     lo, hi = np.asarray(diff) - rad, np.asarray(diff) + rad
     if lo.ndim == 0:
         return float(lo), float(hi)
-    return lo, hi  # type: ignore[return-value]
+    return lo, hi
 
 
 def _interval(
-    diff, se, n_plan: int, n_holdout: int, alpha: float, horizon: int
+    diff: float, se: float, n_plan: int, n_holdout: int, alpha: float, horizon: int
 ) -> SequenceInterval:
     _check(alpha, horizon)
     if n_plan < 2 or n_holdout < 2 or not np.isfinite(se) or not np.isfinite(diff):

@@ -34,6 +34,13 @@ class MetricSpec:
             return (self.numerator, self.denominator)
         return (self.key,)
 
+    @property
+    def ratio_columns(self) -> tuple[str, str]:
+        """A ratio metric's (numerator, denominator) columns."""
+        if self.numerator is None or self.denominator is None:
+            raise ValueError(f"metric '{self.key}' is not a ratio of two columns")
+        return self.numerator, self.denominator
+
 
 @dataclass(frozen=True)
 class FeatureSpec:

@@ -23,6 +23,10 @@ from apportion.stats.honest import leaf_criterion
 from apportion.stats.partition import Partition
 from apportion.stats.table import FeatureSpec
 
+# one feature's histograms for a level: (feature, counts (S, B, J), sums (S, B, J, K), sums of
+# squares (S, B, J, K), estimation-half counts (S, B, J))
+LevelHistogram = tuple[int, np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+
 
 @dataclass
 class Tree:
@@ -85,8 +89,10 @@ class Tree:
 
     def copy_split(self, node: int, other: Tree, onode: int) -> tuple[int, int]:
         """Copy `other`'s split at `onode` onto leaf `node` (used for grafting)."""
+        lookup = other.lookup[onode]
+        assert lookup is not None, f"node {onode} is a leaf, not a split"
         return self.make_split(
-            node, other.feature[onode], other.lookup[onode], other.default_left[onode],
+            node, other.feature[onode], lookup, other.default_left[onode],
             other.threshold[onode], other.left_levels[onode], other.right_levels[onode],
             other.gain[onode],
         )  # fmt: skip
@@ -192,7 +198,7 @@ class LevelHistograms(Protocol):
     `RowHistograms` holds the rows in memory; `apportion.engines` pushes the same aggregation down
     to a SQL engine, so only these small arrays come back."""
 
-    def level(self, tree: Tree, frontier: list[int]) -> Iterator[tuple[int, ...]]: ...
+    def level(self, tree: Tree, frontier: list[int]) -> Iterator[LevelHistogram]: ...
 
 
 def grow_on(
@@ -244,7 +250,15 @@ class RowHistograms:
     """The in-memory histograms: rows as numpy arrays, one `np.bincount` per statistic for all
     nodes of a level at once. Keeps each row's node, moving rows down as the tree splits."""
 
-    def __init__(self, bins: FeatureBins, s_rows, e_rows, arm, y, n_arms: int) -> None:
+    def __init__(
+        self,
+        bins: FeatureBins,
+        s_rows: np.ndarray,
+        e_rows: np.ndarray,
+        arm: np.ndarray,
+        y: np.ndarray,
+        n_arms: int,
+    ) -> None:
         self.bins, self.J = bins, n_arms
         self.codes_s, self.codes_e = bins.codes[:, s_rows], bins.codes[:, e_rows]
         self.arm_s = arm[s_rows].astype(np.int64)
@@ -269,7 +283,7 @@ class RowHistograms:
                 go_left = lut[nd, codes[feat[nd], rows]]
                 node[rows] = np.where(go_left, left[nd], right[nd])
 
-    def level(self, tree: Tree, frontier: list[int]) -> Iterator[tuple[int, ...]]:
+    def level(self, tree: Tree, frontier: list[int]) -> Iterator[LevelHistogram]:
         self._advance(tree)
         bins, J, K = self.bins, self.J, self.ys.shape[1]
         S = len(frontier)
@@ -322,7 +336,14 @@ class _Best:
         self.perm: list[np.ndarray | None] = [None] * n_slots
         self.seen: list[np.ndarray | None] = [None] * n_slots
 
-    def offer(self, f: int, gain: np.ndarray, left_big: np.ndarray, perm, seen) -> None:
+    def offer(
+        self,
+        f: int,
+        gain: np.ndarray,
+        left_big: np.ndarray,
+        perm: np.ndarray | None,
+        seen: np.ndarray | None,
+    ) -> None:
         arg = gain.argmax(axis=1)
         g = gain[np.arange(gain.shape[0]), arg]
         for s in np.flatnonzero(g > self.gain):
@@ -332,7 +353,9 @@ class _Best:
             self.seen[s] = None if seen is None else seen[s]
 
 
-def _split_scores(cnt, sums, sqs, cnt_e, spec: GrowSpec) -> tuple[np.ndarray, np.ndarray]:
+def _split_scores(
+    cnt: np.ndarray, sums: np.ndarray, sqs: np.ndarray, cnt_e: np.ndarray, spec: GrowSpec
+) -> tuple[np.ndarray, np.ndarray]:
     """Gain (S, B-1) of the threshold `code < b`, b = 1..B-1, and whether the left child is the
     larger one (it then takes the missing rows). Inadmissible thresholds score -inf.
 
@@ -368,7 +391,9 @@ def _split_scores(cnt, sums, sqs, cnt_e, spec: GrowSpec) -> tuple[np.ndarray, np
     return np.where(ok & np.isfinite(gain), gain, -np.inf), left_big
 
 
-def _order_levels(cnt, sums, sqs, cnt_e, spec: GrowSpec):
+def _order_levels(
+    cnt: np.ndarray, sums: np.ndarray, sqs: np.ndarray, cnt_e: np.ndarray, spec: GrowSpec
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Order each node's levels by their standardized effect on the ordering metric (summed over
     treated arms), then treat them as ordered bins. Levels without structure rows at the node go
     last and their estimation rows are counted as missing (they will follow the default)."""
@@ -396,7 +421,9 @@ def _order_levels(cnt, sums, sqs, cnt_e, spec: GrowSpec):
     return reorder(cnt), reorder(sums), reorder(sqs), reorder(cnt_e), perm, seen
 
 
-def _rule(bins: FeatureBins, f: int, best: _Best, s: int):
+def _rule(
+    bins: FeatureBins, f: int, best: _Best, s: int
+) -> tuple[np.ndarray, float, tuple[str, ...], tuple[str, ...]]:
     """Lookup over the feature's codes, numeric threshold, and the levels sent each way."""
     nb = int(bins.n_bins[f])
     B, b, dl = nb - 1, best.pos[s], best.left_big[s]
@@ -407,6 +434,7 @@ def _rule(bins: FeatureBins, f: int, best: _Best, s: int):
         lk[:B] = np.arange(B) < b
         return lk, float(bins.thresholds[f][b - 1]), (), ()  # type: ignore[index]
     perm, seen = best.perm[s], best.seen[s]
+    assert perm is not None and seen is not None  # a categorical split keeps its level order
     rank = np.empty(B, dtype=np.int64)
     rank[perm] = np.arange(B)
     go_left = rank < b

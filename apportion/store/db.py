@@ -34,7 +34,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event, func, select
+from sqlalchemy import CursorResult, Engine, Result, create_engine, event, func, select
 from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session, sessionmaker
@@ -153,7 +153,14 @@ def insert_or_ignore(session: Session, table: Any, values: dict[str, Any]) -> bo
     dialect = session.get_bind().dialect.name
     make = pg_insert if dialect == "postgresql" else sqlite_insert
     stmt = make(table).values(**values).on_conflict_do_nothing()
-    return bool(session.execute(stmt).rowcount)
+    return bool(rowcount(session.execute(stmt)))
+
+
+def rowcount(result: Result[Any]) -> int:
+    """Rows an INSERT, UPDATE or DELETE touched: `Session.execute` types its answer as a plain
+    Result, while DML statements return a CursorResult, which carries the count."""
+    assert isinstance(result, CursorResult)
+    return result.rowcount
 
 
 def ping(db: Database) -> bool:

@@ -16,7 +16,7 @@ from sqlalchemy import select, update
 from sqlalchemy.orm import Session
 
 from apportion.errors import JobLost, NotFound
-from apportion.store.db import utcnow
+from apportion.store.db import rowcount, utcnow
 from apportion.store.tables import Job
 
 MAX_ATTEMPTS = 2
@@ -84,7 +84,7 @@ def set_progress(*, session: Session, job: Job, progress: float) -> bool:
         .where(_held(job))
         .values(progress=max(0.0, min(1.0, progress)), heartbeat_at=time.time())
     )
-    return bool(res.rowcount)
+    return bool(rowcount(res))
 
 
 def finish(*, session: Session, job: Job) -> None:
@@ -95,7 +95,7 @@ def finish(*, session: Session, job: Job) -> None:
         .where(_held(job))
         .values(status="done", progress=1.0, finished_at=utcnow(), error=None)
     )
-    if not res.rowcount:
+    if not rowcount(res):
         raise JobLost(job.id)
 
 
@@ -104,7 +104,7 @@ def fail(*, session: Session, job: Job, error: str) -> bool:
     res = session.execute(
         update(Job).where(_held(job)).values(status="failed", finished_at=utcnow(), error=error)
     )
-    return bool(res.rowcount)
+    return bool(rowcount(res))
 
 
 def reclaim_stale(*, session: Session, stale_seconds: float) -> list[Job]:

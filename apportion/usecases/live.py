@@ -56,10 +56,9 @@ def load_compiled(db: Database, plan: str) -> CompiledPlan | None:
         if ptr is None or ptr.active_version is None:
             return None
         row = repo.get_version(session=s, plan=plan, version=ptr.active_version)
-        model = model_repo.get_model(session=s, model_id=row.model_id)
-        return compile_version(
-            row, Partition.from_dict(model.result["partition"]), revision=ptr.revision
-        )
+        result = model_repo.get_model(session=s, model_id=row.model_id).result
+        assert result is not None, f"plan {plan} is live on model {row.model_id}, which has no fit"
+        return compile_version(row, Partition.from_dict(result["partition"]), revision=ptr.revision)
 
 
 def refresh_plan(services: Services, plan: str) -> None:

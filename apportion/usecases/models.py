@@ -120,7 +120,7 @@ def _run_fit(services: Services, job: Job, progress: Any) -> None:
     engine = engine_name(services, data.n_rows)
     progress(0.05)
     t0 = time.perf_counter()
-    kwargs = {"success_metric": params.get("success_metric"),
+    kwargs: dict[str, Any] = {"success_metric": params.get("success_metric"),
               "progress": lambda p: progress(0.05 + 0.9 * p)}  # fmt: skip
     if engine == "memory":
         table, _ = read_dataset(data.filesystem, list(data.paths), data.manifest)

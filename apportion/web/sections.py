@@ -75,7 +75,7 @@ def summary(v: dict[str, Any], plan: dict[str, Any], rows: list[MetricRow]) -> C
     spec = v.get("spec") or {}
     live = plan.get("live_version")
     holdout = spec.get("holdout") or {}
-    facts: list[tuple[str, str]] = [
+    facts: list[tuple[str, object]] = [
         ("Live version", f"version {live}" if live else "none"),
         ("Drafted by", f"{v.get('author')} on {when(v.get('created_at'))}"),
         ("Success metric", spec.get("success_metric")),
@@ -296,7 +296,7 @@ def watch(w: dict[str, Any] | None, rows: list[MetricRow]) -> Context | None:
     if not w:
         return None
     kinds = {r.metric: r for r in rows}
-    blocks = []
+    blocks: list[Context] = []
     for m in w.get("metrics") or []:
         if m.get("role") != "guardrail":
             continue

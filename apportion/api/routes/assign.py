@@ -85,7 +85,7 @@ def _openapi(adapter: TypeAdapter[Any]) -> dict[str, Any]:
     }
 
 
-_PROBLEM = {"content": {"application/problem+json": {}}}
+_PROBLEM: dict[str, Any] = {"content": {"application/problem+json": {}}}
 _RESPONSES: dict[int | str, dict[str, Any]] = {
     401: {"description": "no or unknown API key", **_PROBLEM},
     403: {"description": "the key's role may not read plans", **_PROBLEM},
