@@ -30,6 +30,8 @@ demo: $(STAMP)
 
 test: $(DEVSTAMP)
 	$(BIN)/ruff check apportion tests bench migrations
+	$(BIN)/ruff format --check apportion tests bench migrations
+	$(BIN)/mypy apportion
 	$(BIN)/python -m pytest -n 2 --dist loadscope
 	@command -v node >/dev/null || { echo "make test: the JavaScript evaluator's tests need Node.js >= 18 (Debian: apt-get install nodejs)"; exit 1; }
 	node --test js/test/
@@ -37,6 +39,7 @@ test: $(DEVSTAMP)
 lint: $(DEVSTAMP)
 	$(BIN)/ruff check apportion tests bench migrations
 	$(BIN)/ruff format --check apportion tests bench migrations
+	$(BIN)/mypy apportion
 
 format: $(DEVSTAMP)
 	$(BIN)/ruff format apportion tests bench migrations

@@ -7,7 +7,7 @@ its metric, model parameters, too few rows for the folds) is checked before anyt
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, cast
 
 from apportion.domain import Actor
 from apportion.errors import InvalidInput, NotFound
@@ -18,6 +18,7 @@ from apportion.optimize.crossfit import (
     parse_candidates,
 )
 from apportion.optimize.problem import Guardrail, check_objective
+from apportion.schemas.common import JobStatus
 from apportion.schemas.comparisons import (
     ComparisonIn,
     ComparisonList,
@@ -264,7 +265,7 @@ def list_all(services: Services, *, key: str) -> ComparisonList:
                 ComparisonListed(
                     number=r.number,
                     href=f"/v1/experiments/{key}/comparisons/{r.number}",
-                    status=r.status,
+                    status=cast(JobStatus, r.status),  # the store writes only these four
                     success_metric=r.spec.get("success_metric"),
                     candidates=len(r.spec.get("candidates") or []),
                     recommended=(r.result or {}).get("recommended"),

@@ -220,9 +220,9 @@ def _evidence_rows(
 
 def _partition(services: Services, model_id: int) -> Any:
     with services.db.read() as s:
-        return Partition.from_dict(
-            model_repo.get_model(session=s, model_id=model_id).result["partition"]
-        )
+        result = model_repo.get_model(session=s, model_id=model_id).result
+    assert result is not None, f"model {model_id} has no fit"
+    return Partition.from_dict(result["partition"])
 
 
 def get_watch(services: Services, *, plan: str, version: int | None = None) -> WatchView:

@@ -32,6 +32,7 @@ def model_context(services: Services, model_id: int) -> dict[str, Any]:
         exp = s.get(exp_repo.Experiment, row.experiment_id)
         assert exp is not None
         result, declaration, readout_id = row.result, exp.declaration, row.readout_id
+        assert result is not None  # a done model has its fit
         model_method, model_params = row.method, dict(row.params or {})
     return {
         "result": result,
