@@ -65,11 +65,11 @@ def _metrics(services: Services, key: str | None) -> dict[str, dict[str, Any]]:
 
 def review_page(services: Services, *, plan: str, version: int) -> dict[str, Any]:
     """Everything the version page draws: {version, plan, metrics, history, watch}."""
-    v = plans.get_version(services, plan=plan, version=version)
+    view = plans.get_version(services, plan=plan, version=version)
     return {
-        "version": v,
-        "plan": plans.get_plan(services, plan=plan),
-        "metrics": _metrics(services, (v.get("spec") or {}).get("experiment")),
+        "version": dump(view),
+        "plan": dump(plans.get_plan(services, plan=plan)),
+        "metrics": _metrics(services, view.spec.experiment),
         "history": _history(services, plan, version),
         "watch": _watch(services, plan, version),
     }
@@ -79,11 +79,11 @@ def plans_index(services: Services) -> list[dict[str, Any]]:
     """Every plan with its versions (newest first) for the index page:
     [{plan, live_version, revision, versions: [{version, status, author, created_at, method}]}]."""
     out = []
-    for p in plans.list_plans(services):
-        full = plans.get_plan(services, plan=p["plan"])
+    for p in plans.list_plans(services).plans:
+        full = dump(plans.get_plan(services, plan=p.plan))
         out.append(
             {
-                "plan": p["plan"],
+                "plan": p.plan,
                 "live_version": full["live_version"],
                 "revision": full["revision"],
                 "versions": list(reversed(full["versions"])),

@@ -18,6 +18,7 @@ from support import approve, draft_plan, scenario_model
 
 from apportion.domain import Actor
 from apportion.errors import Conflict
+from apportion.schemas.plans import ActivateIn, Switched
 from apportion.usecases import plans as uc
 
 POLL = 0.5  # seconds: the second process's poll interval (the in-process app swaps right after its commit)
@@ -49,9 +50,7 @@ def test_two_activations_with_the_same_revision_exactly_one_wins(client: TestCli
                 uc.activate(
                     services,
                     plan="lesson-length",
-                    version=version,
-                    reason="race",
-                    expected_revision=0,
+                    command=ActivateIn(version=version, reason="race", expected_revision=0),
                     actor=Actor(who, "approver"),
                 )
             )
@@ -66,11 +65,11 @@ def test_two_activations_with_the_same_revision_exactly_one_wins(client: TestCli
         t.start()
     for t in threads:
         t.join()
-    wins = [r for r in results if isinstance(r, dict)]
+    wins = [r for r in results if isinstance(r, Switched)]
     losses = [r for r in results if isinstance(r, Conflict)]
     assert len(wins) == 1 and len(losses) == 1
     plan = client.get("/v1/plans/lesson-length", headers=keys.h(keys.reader)).json()
-    assert plan["revision"] == 1 and plan["live_version"] == wins[0]["to_version"]  # type: ignore[index]
+    assert plan["revision"] == 1 and plan["live_version"] == wins[0].to_version
 
 
 def _free_port() -> int:

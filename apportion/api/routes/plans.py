@@ -27,7 +27,7 @@ router = APIRouter(prefix="/v1/plans", tags=["plans"], route_class=GuardedRoute)
 
 @router.get("", summary="All plans with their live version", response_model=PlanList)
 def list_plans(_: ReaderDep, services: ServicesDep) -> Any:
-    return {"plans": uc.list_plans(services)}
+    return uc.list_plans(services)
 
 
 @router.post(
@@ -39,10 +39,7 @@ def list_plans(_: ReaderDep, services: ServicesDep) -> Any:
     response_model_exclude_unset=True,
 )
 def draft(plan: PlanKey, body: DraftIn, actor: AnalystDep, services: ServicesDep) -> Any:
-    data = body.model_dump()
-    data["options"] = body.options.model_dump(exclude_none=True) if body.options else None
-    data["holdout"] = {k: v for k, v in data["holdout"].items() if v is not None}
-    return uc.draft_version(services, plan=plan, body=data, actor=actor)
+    return uc.draft_version(services, plan=plan, command=body, actor=actor)
 
 
 @router.get(
@@ -101,14 +98,7 @@ def reject(
     response_model_exclude_unset=True,
 )
 def activate(plan: PlanKey, body: ActivateIn, actor: ApproverDep, services: ServicesDep) -> Any:
-    return uc.activate(
-        services,
-        plan=plan,
-        version=body.version,
-        reason=body.reason,
-        expected_revision=body.expected_revision,
-        actor=actor,
-    )
+    return uc.activate(services, plan=plan, command=body, actor=actor)
 
 
 @router.post(
@@ -118,11 +108,4 @@ def activate(plan: PlanKey, body: ActivateIn, actor: ApproverDep, services: Serv
     response_model_exclude_unset=True,
 )
 def rollback(plan: PlanKey, body: RollbackIn, actor: ApproverDep, services: ServicesDep) -> Any:
-    return uc.rollback(
-        services,
-        plan=plan,
-        reason=body.reason,
-        to_version=body.to_version,
-        actor=actor,
-        expected_revision=body.expected_revision,
-    )
+    return uc.rollback(services, plan=plan, command=body, actor=actor)

@@ -11,6 +11,7 @@ import numpy as np
 from apportion.domain import Actor
 from apportion.errors import InvalidInput
 from apportion.optimize.solve import Solution
+from apportion.schemas.plans import DraftIn, GuardrailSpec, HoldoutIn, PlanVersionView
 from apportion.serving.index import new_salt
 from apportion.store import audit
 from apportion.store import jobs as job_repo
@@ -18,15 +19,16 @@ from apportion.store import plans as repo
 from apportion.store.audit import canonical_json
 from apportion.usecases import comparisons, jobs
 from apportion.usecases.context import Services
-from apportion.usecases.plans.solve import build, full_report, guardrails_of, solve
+from apportion.usecases.plans.solve import build, full_report, solve
 from apportion.usecases.plans.source import model_context
 from apportion.usecases.plans.views import get_version
 
 INLINE_MAX_DRAWS = 1000  # larger impact reports run as a job
 
 
-def _holdout(body: dict[str, Any], arm_keys: tuple[str, ...]) -> dict[str, Any]:
-    h = {"share": 0.05, "arm": arm_keys[0], **(body.get("holdout") or {})}
+def _holdout(holdout: HoldoutIn, arm_keys: tuple[str, ...]) -> dict[str, Any]:
+    """The holdout as stored: the request's share, its arm or else the control arm."""
+    h = {"share": holdout.share, "arm": holdout.arm if holdout.arm is not None else arm_keys[0]}
     if h["arm"] not in arm_keys:
         raise InvalidInput(
             f"holdout arm '{h['arm']}' is not an arm of the experiment {list(arm_keys)}",
@@ -66,55 +68,43 @@ def _solution_view(sol: Solution) -> dict[str, Any]:
 
 
 def draft_version(
-    services: Services, *, plan: str, body: dict[str, Any], actor: Actor
-) -> dict[str, Any]:
-    ctx = model_context(services, int(body["model_id"]))
+    services: Services, *, plan: str, command: DraftIn, actor: Actor
+) -> PlanVersionView:
+    """Draft a version from `command` (every default is the request model's own)."""
+    ctx = model_context(services, command.model_id)
     specs = ctx["specs"]
     result = ctx["result"]
     c = ctx["partition"].n_cohorts
     shares = np.array([co["share"] for co in result["cohorts"]], dtype=np.float64)
-    if body.get("traffic_mix") is not None:
-        mix = np.asarray(body["traffic_mix"], dtype=np.float64)
+    if command.traffic_mix is not None:
+        mix = np.asarray(command.traffic_mix, dtype=np.float64)
         if mix.shape != (c,) or (mix < 0).any() or abs(mix.sum() - 1) > 1e-6:
             raise InvalidInput(
                 f"traffic_mix must list {c} non-negative cohort shares summing to 1",
                 errors=[{"field": "traffic_mix", "problem": f"expected {c} shares summing to 1"}],
             )
         shares = mix
-    guardrails = guardrails_of(body)
-    method = body.get("method", "chance")
+    method = command.method
     spec: dict[str, Any] = {
-        k: body.get(k)
-        for k in (
-            "model_id",
-            "success_metric",
-            "method",
-            "allocation",
-            "baseline",
-            "traffic_mix",
-            "draws",
-            "seed",
-            "notes",
-            "options",
-        )
+        "model_id": command.model_id,
+        "success_metric": command.success_metric,
+        "method": method,
+        "allocation": command.allocation,
+        "baseline": command.baseline,
+        "traffic_mix": command.traffic_mix,
+        "draws": command.draws,
+        "seed": command.seed,
+        "notes": command.notes,
+        "options": command.set_options() if command.options is not None else None,
+        "guardrails": [GuardrailSpec(**g.model_dump()).model_dump() for g in command.guardrails],
+        "holdout": None,  # checked after the problem, below
+        "experiment": ctx["experiment"],
     }
-    spec.update(
-        {
-            "guardrails": [g.__dict__ for g in guardrails],
-            "holdout": None,  # checked after the problem, below
-            "method": method,
-            "allocation": body.get("allocation", "mixed"),
-            "baseline": body.get("baseline", "control"),
-            "draws": int(body.get("draws", 200)),
-            "seed": int(body.get("seed", 0)),
-            "experiment": ctx["experiment"],
-        }
-    )
     problem = build(services, plan=plan, ctx=ctx, spec=spec, shares=shares)
-    spec["holdout"] = _holdout(body, specs.arm_keys)
-    if body.get("comparison") is not None:  # checked before the solve: a bad link stores nothing
+    spec["holdout"] = _holdout(command.holdout, specs.arm_keys)
+    if command.comparison is not None:  # checked before the solve: a bad link stores nothing
         spec["comparison"] = comparisons.followed(
-            services, model_id=ctx["model_id"], number=int(body["comparison"]),
+            services, model_id=ctx["model_id"], number=command.comparison,
             candidate=f"{ctx['model_method']}/{method}",
         )  # fmt: skip
     solved = solve(problem, spec)
@@ -134,7 +124,7 @@ def draft_version(
     with services.db.write() as s:
         repo.ensure_pointer(session=s, plan=plan)  # level 2 (store/db.py): version numbers
         prev = repo.latest_version(session=s, plan=plan)
-        salt = prev.salt if (prev is not None and not body.get("new_salt")) else new_salt()
+        salt = prev.salt if (prev is not None and not command.new_salt) else new_salt()
         version = repo.next_version(session=s, plan=plan)
         content = {"spec": spec, "allocation": alloc_view, "salt": salt}
         row = repo.add_version(
@@ -179,7 +169,7 @@ def draft_version(
                 "objective": sol.objective,
                 "binding": sol.binding,
             },
-            reason=body.get("notes"),
+            reason=command.notes,
         )
     if job_id is not None:
         jobs.notify(services)

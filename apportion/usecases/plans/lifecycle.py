@@ -8,6 +8,7 @@ from typing import Any
 
 from apportion.domain import Actor
 from apportion.errors import Forbidden, InvalidTransition, NotFound
+from apportion.schemas.plans import ActivateIn, ImpactReport, PlanVersionView, RollbackIn, Switched
 from apportion.store import audit
 from apportion.store import plans as repo
 from apportion.store.db import utcnow
@@ -20,7 +21,7 @@ ACTIVATABLE = ("approved", "superseded")
 
 def decide(
     services: Services, *, plan: str, version: int, approve: bool, reason: str, actor: Actor
-) -> dict[str, Any]:
+) -> PlanVersionView:
     with services.db.write() as s:
         # The plan's lock (level 2, store/db.py) makes the status check and the change one step:
         # of two approvers deciding at once, the second sees the first's decision.
@@ -36,15 +37,16 @@ def decide(
                 f"'{actor.identity}' drafted {plan}/{version} (key '{row.author}'); another "
                 "approver must approve it"
             )
-        if approve and row.report.get("status") != "complete":
+        report = ImpactReport.model_validate(row.report)
+        if approve and report.status != "complete":
             raise InvalidTransition(
                 f"plan version {plan}/{version} has no complete impact report yet"
             )
-        held_out = row.report.get("held_out") or {}
-        if approve and held_out.get("status") == "pending":
+        held_out = report.held_out
+        if approve and held_out is not None and held_out.status == "pending":
             raise InvalidTransition(
                 f"plan version {plan}/{version}: its held-out evaluation is still running "
-                f"({held_out.get('job')}); approve once the reviewer can read it"
+                f"({held_out.job}); approve once the reviewer can read it"
             )
         row.status = "approved" if approve else "rejected"
         row.decided_by, row.decided_at, row.decision_reason = actor.name, utcnow(), reason
@@ -116,27 +118,19 @@ def _switch(
     return payload
 
 
-def activate(
-    services: Services,
-    *,
-    plan: str,
-    version: int,
-    reason: str,
-    expected_revision: int,
-    actor: Actor,
-) -> dict[str, Any]:
+def activate(services: Services, *, plan: str, command: ActivateIn, actor: Actor) -> Switched:
     with services.db.write() as s:
         out = _switch(
             s,
             plan=plan,
-            to_version=version,
-            expected_revision=expected_revision,
+            to_version=command.version,
+            expected_revision=command.expected_revision,
             kind="activate",
             actor=actor,
-            reason=reason,
+            reason=command.reason,
         )
     live.refresh_plan(services, plan)
-    return out
+    return Switched.model_validate(out)
 
 
 def rollback_target(s: Any, plan: str, current: int | None) -> int:
@@ -174,23 +168,15 @@ def rollback_in(
     )
 
 
-def rollback(
-    services: Services,
-    *,
-    plan: str,
-    reason: str,
-    to_version: int | None,
-    actor: Actor,
-    expected_revision: int | None = None,
-) -> dict[str, Any]:
+def rollback(services: Services, *, plan: str, command: RollbackIn, actor: Actor) -> Switched:
     with services.db.write() as s:
         out = rollback_in(
             s,
             plan=plan,
-            reason=reason,
-            to_version=to_version,
+            reason=command.reason,
+            to_version=command.to_version,
             actor=actor,
-            expected_revision=expected_revision,
+            expected_revision=command.expected_revision,
         )
     live.refresh_plan(services, plan)
-    return out
+    return Switched.model_validate(out)

@@ -14,20 +14,17 @@ from apportion.optimize.problem import AllocationProblem, Guardrail, build_probl
 from apportion.optimize.report import impact_report
 from apportion.optimize.sensitivity import guardrail_sensitivity
 from apportion.optimize.solve import Solution
+from apportion.schemas.plans import GuardrailSpec, ImpactReport, ReportMetric
 from apportion.usecases.context import Services
 from apportion.usecases.models import moments_of
 from apportion.usecases.plans.source import live_allocation_on
 
 
-def guardrails_of(body: dict[str, Any]) -> tuple[Guardrail, ...]:
+def guardrails_of(spec: dict[str, Any]) -> tuple[Guardrail, ...]:
+    """A stored spec's guardrails (every default already resolved), validated as read."""
     return tuple(
-        Guardrail(
-            metric=g["metric"],
-            threshold=float(g["threshold"]),
-            unit=g.get("unit", "absolute"),
-            confidence=float(g.get("confidence", 0.95)),
-        )
-        for g in body.get("guardrails", [])
+        Guardrail(**GuardrailSpec.model_validate(g).model_dump())
+        for g in spec.get("guardrails") or []
     )
 
 
@@ -76,26 +73,50 @@ def build_and_solve(
     return solve(build(services, plan=plan, ctx=ctx, spec=spec, shares=shares), spec)
 
 
-def _apply_calibration(report: dict[str, Any], sign: float, view: dict[str, Any], cal: Any) -> None:
-    """Make the report's headline figures the calibrated ones: each guardrail's probability, its
+def _calibrated_row(
+    row: ReportMetric, sign: float, by_metric: dict[str, Any], cal: Any
+) -> ReportMetric:
+    if row.role == "guardrail" and row.metric in by_metric:
+        g = by_metric[row.metric]
+        centre, sd = g["corrected_estimate"], g["sd"]
+        return row.model_copy(update={
+            "probability_holds_uncalibrated": row.probability_holds,
+            "probability_holds": g["probability_holds"],
+            "probability_holds_corrected": g["probability_holds"],
+            "corrected_lift": centre,
+            "interval": [centre - Z95 * sd, centre + Z95 * sd],
+        })  # fmt: skip
+    if row.role == "success" and row.lift is not None:
+        corrected = row.lift + sign * cal.success_optimism  # optimism is better-is-larger
+        sd = max(cal.success_sd, row.se or 0.0)
+        return row.model_copy(update={
+            "corrected_lift": corrected, "interval": [corrected - Z95 * sd, corrected + Z95 * sd],
+        })  # fmt: skip
+    return row
+
+
+def _apply_calibration(
+    report: ImpactReport, sign: float, view: dict[str, Any], cal: Any
+) -> ImpactReport:
+    """The report with the calibrated figures as its headline: each guardrail's probability, its
     corrected lift and interval, and the success metric's corrected lift and interval. The
-    earlier figures stay under *_uncalibrated keys."""
+    earlier guardrail probability stays under `probability_holds_uncalibrated`."""
     by_metric = {g["guardrail"]: g for g in view["guardrails"]}
-    for row in report.get("metrics", []):
-        if row.get("role") == "guardrail" and row["metric"] in by_metric:
-            g = by_metric[row["metric"]]
-            row["probability_holds_uncalibrated"] = row.get("probability_holds")
-            row["probability_holds"] = g["probability_holds"]
-            row["probability_holds_corrected"] = g["probability_holds"]
-            row["corrected_lift"] = g["corrected_estimate"]
-            row["interval"] = [g["corrected_estimate"] - Z95 * g["sd"],
-                               g["corrected_estimate"] + Z95 * g["sd"]]  # fmt: skip
-        elif row.get("role") == "success" and row.get("lift") is not None:
-            corrected = row["lift"] + sign * cal.success_optimism  # optimism is better-is-larger
-            sd = max(cal.success_sd, row.get("se") or 0.0)
-            row["corrected_lift"] = corrected
-            row["interval"] = [corrected - Z95 * sd, corrected + Z95 * sd]
-    report["calibration"] = view
+    rows = [_calibrated_row(r, sign, by_metric, cal) for r in report.metrics or []]
+    return report.model_copy(update={"metrics": rows, "calibration": view})
+
+
+def _with_arm_keys(report: ImpactReport, arm_keys: tuple[str, ...]) -> ImpactReport:
+    """The optimizer knows arms by index; readers want their keys."""
+    rows = []
+    for row in report.comparison or []:
+        if row.arm is not None:
+            update: dict[str, Any] = {"arm_key": arm_keys[row.arm]}
+            if row.plan.startswith("arm "):
+                update["plan"] = f"{arm_keys[row.arm]} for everyone"
+            row = row.model_copy(update=update)
+        rows.append(row)
+    return report.model_copy(update={"comparison": rows})
 
 
 def full_report(
@@ -106,19 +127,15 @@ def full_report(
     problem, sol = solved.shrunk, solved.solution
     draws, seed, options = int(spec["draws"]), int(spec["seed"]), spec.get("options") or {}
     on_draw = (lambda done, total: progress(done / max(total, 1))) if progress is not None else None
-    report = impact_report(problem, sol, draws=draws, seed=seed, progress=on_draw)
-    sign = 1.0 if problem.metric(problem.success).direction == "higher" else -1.0
-    _apply_calibration(report, sign, solved.calibration_view, solved.calibration)
-    arm_keys = ctx["specs"].arm_keys
-    for row in report.get("comparison", []):  # the optimizer knows arm indexes; readers want keys
-        if isinstance(row.get("arm"), int):
-            row["arm_key"] = arm_keys[row["arm"]]
-            if str(row.get("plan", "")).startswith("arm "):
-                row["plan"] = f"{arm_keys[row['arm']]} for everyone"
-    return {
-        **report,
+    figures = impact_report(problem, sol, draws=draws, seed=seed, progress=on_draw)
+    report = ImpactReport.model_validate({
+        **figures,
         "status": "complete",
         "guardrail_prices": guardrail_sensitivity(problem, sol, seed=seed, options=options),
         "method": spec["method"],
         "allocation": spec["allocation"],
-    }
+    })  # fmt: skip
+    sign = 1.0 if problem.metric(problem.success).direction == "higher" else -1.0
+    report = _apply_calibration(report, sign, solved.calibration_view, solved.calibration)
+    report = _with_arm_keys(report, ctx["specs"].arm_keys)
+    return report.model_dump(mode="json", exclude_unset=True)

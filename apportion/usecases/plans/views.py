@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 
 from apportion.errors import NotFound
+from apportion.schemas.plans import PlanList, PlanVersionView, PlanView, VersionDiff
 from apportion.stats.table import UnitTable
 from apportion.store import plans as repo
 from apportion.usecases import live
@@ -58,8 +59,9 @@ def _diff_against_live(services: Services, row: Any, ptr: Any) -> dict[str, Any]
     return out
 
 
-def version_view(row: Any, *, live_version: int | None) -> dict[str, Any]:
-    return {
+def version_view(row: Any, *, live_version: int | None) -> PlanVersionView:
+    """The version's row with its stored spec, allocation and report validated as they are read."""
+    return PlanVersionView.model_validate({
         "plan": row.plan,
         "version": row.version,
         "status": row.status,
@@ -76,7 +78,7 @@ def version_view(row: Any, *, live_version: int | None) -> dict[str, Any]:
         "spec": row.spec,
         "allocation": row.allocation,
         "report": _report_view(row),
-    }
+    })  # fmt: skip
 
 
 def _report_view(row: Any) -> dict[str, Any]:
@@ -94,29 +96,32 @@ def _report_view(row: Any) -> dict[str, Any]:
 
 def get_version(
     services: Services, *, plan: str, version: int, with_diff: bool = True
-) -> dict[str, Any]:
+) -> PlanVersionView:
     with services.db.read() as s:
         row = repo.get_version(session=s, plan=plan, version=version)
         ptr = repo.pointer(session=s, plan=plan)
         s.expunge_all()
     view = version_view(row, live_version=ptr.active_version if ptr else None)
     if with_diff:
-        view["diff"] = (
+        diff = (
             None
             if (ptr is None or ptr.active_version in (None, version))
             else _diff_against_live(services, row, ptr)
         )
+        view = view.model_copy(
+            update={"diff": None if diff is None else VersionDiff.model_validate(diff)}
+        )
     return view
 
 
-def get_plan(services: Services, *, plan: str) -> dict[str, Any]:
+def get_plan(services: Services, *, plan: str) -> PlanView:
     with services.db.read() as s:
         ptr = repo.pointer(session=s, plan=plan)
         if ptr is None:
             raise NotFound(f"no plan '{plan}'")
         versions = repo.list_versions(session=s, plan=plan)
         acts = repo.activations(session=s, plan=plan)
-        return {
+        return PlanView.model_validate({
             "plan": plan,
             "live_version": ptr.active_version,
             "revision": ptr.revision,
@@ -144,10 +149,10 @@ def get_plan(services: Services, *, plan: str) -> dict[str, Any]:
                 }
                 for a in acts
             ],
-        }
+        })  # fmt: skip
 
 
-def list_plans(services: Services) -> list[dict[str, Any]]:
+def list_plans(services: Services) -> PlanList:
     with services.db.read() as s:
         out = []
         for p in repo.list_plans(session=s):
@@ -162,4 +167,4 @@ def list_plans(services: Services) -> list[dict[str, Any]]:
                     "latest_status": versions[-1].status if versions else None,
                 }
             )
-        return out
+        return PlanList.model_validate({"plans": out})
