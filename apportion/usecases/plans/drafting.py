@@ -28,13 +28,13 @@ INLINE_MAX_DRAWS = 1000  # larger impact reports run as a job
 
 def _holdout(holdout: HoldoutIn, arm_keys: tuple[str, ...]) -> dict[str, Any]:
     """The holdout as stored: the request's share, its arm or else the control arm."""
-    h = {"share": holdout.share, "arm": holdout.arm if holdout.arm is not None else arm_keys[0]}
-    if h["arm"] not in arm_keys:
+    arm = holdout.arm if holdout.arm is not None else arm_keys[0]
+    if arm not in arm_keys:
         raise InvalidInput(
-            f"holdout arm '{h['arm']}' is not an arm of the experiment {list(arm_keys)}",
+            f"holdout arm '{arm}' is not an arm of the experiment {list(arm_keys)}",
             errors=[{"field": "holdout.arm", "problem": "unknown arm"}],
         )
-    return {"share": float(h["share"]), "arm": h["arm"]}
+    return {"share": float(holdout.share), "arm": arm}
 
 
 def _allocation_view(x: np.ndarray, ctx: dict[str, Any], shares: np.ndarray) -> dict[str, Any]:
