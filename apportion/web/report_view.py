@@ -1,14 +1,15 @@
-"""Reads a plan version's impact report into the rows the page draws. The report's layout belongs to
-apportion/optimize/report.py; this module is the one place that knows it, so the page survives a
-report that lacks a part (an old version, a pending job) by leaving that part out.
+"""Reads a plan version's impact report into the rows the page draws. The report is read through
+its answer model (apportion.schemas.plans.ImpactReport, the one the JSON API documents), so the
+page and the API agree on its layout; a part that is absent or not in that shape (an old
+version, a pending job) is left out, and the rest still shows.
 
-Report layout read here: report["metrics"] = [{metric, role, lift, se, corrected_lift, interval
-[lo, hi] around the corrected lift, threshold, unit, confidence, probability_holds,
-probability_holds_corrected}], every number in the guardrail's
-threshold unit (absolute: the metric's units; relative: per cent of the baseline's value; the
-success metric absolute), and report["comparison"] = [{plan, arm (index, absent for the plan),
-available, lifts {metric: value}, holds {guardrail: bool}}]. `display` and `scaled_fmt` turn row
-units into what the page writes (percentage points for absolute lifts of proportions and ratios)."""
+What is read: `metrics` (ReportMetric: lift, se, corrected_lift, interval [lo, hi] around the
+corrected lift, threshold, unit, confidence, probability_holds, probability_holds_corrected), every
+number in the guardrail's threshold unit (absolute: the metric's units; relative: per cent of the
+baseline's value; the success metric absolute), and `comparison` (ReportComparisonRow: plan, arm
+index (absent for the plan), available, lifts {metric: value}, holds {guardrail: bool}).
+`display` and `scaled_fmt` turn row units into what the page writes (percentage points for
+absolute lifts of proportions and ratios)."""
 
 from __future__ import annotations
 
@@ -16,6 +17,7 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from apportion.schemas.plans import ImpactReport, ReportComparisonRow, ReportMetric
 from apportion.web.charts import Fmt, signed
 
 PROB_TOL = 1e-3  # probability shortfall treated as solver tolerance (see MetricRow.meets)
@@ -76,6 +78,32 @@ def _num(x: Any) -> float | None:
     return v if math.isfinite(v) else None
 
 
+def _part(version: dict[str, Any], key: str) -> list[Any]:
+    """The raw list `key` of the version's report ([] when the report or the part is absent)."""
+    raw = version.get("report")
+    if isinstance(raw, ImpactReport):
+        raw = raw.model_dump()
+    part = raw.get(key) if isinstance(raw, dict) else None
+    return part if isinstance(part, list) else []
+
+
+def report_metrics(version: dict[str, Any]) -> list[ReportMetric]:
+    """The report's metric rows through their answer model (ImpactReport.metrics); none when a
+    row is not in that shape (pydantic's ValidationError is a ValueError), so the rest shows."""
+    try:
+        return [ReportMetric.model_validate(m) for m in _part(version, "metrics")]
+    except ValueError:
+        return []
+
+
+def report_comparison(version: dict[str, Any]) -> list[ReportComparisonRow]:
+    """The report's comparison rows through their answer model (ImpactReport.comparison)."""
+    try:
+        return [ReportComparisonRow.model_validate(r) for r in _part(version, "comparison")]
+    except ValueError:
+        return []
+
+
 def _limit_text(g: dict[str, Any]) -> str:
     t = float(g["threshold"])
     return f"{signed(t)}% of baseline" if g.get("unit") == "relative" else f"{signed(t)} (absolute)"
@@ -85,8 +113,7 @@ def metric_rows(version: dict[str, Any], metrics: dict[str, dict[str, Any]]) -> 
     """The success metric first, then every guardrail in the order declared. A metric the report
     lacks (pending report) comes back with None numbers, so the page can say so."""
     spec = version.get("spec") or {}
-    report = version.get("report") or {}
-    entries = {m.get("metric"): m for m in report.get("metrics") or [] if isinstance(m, dict)}
+    entries = {m.metric: m for m in report_metrics(version)}
     wanted = [(spec.get("success_metric"), None)] + [
         (g["metric"], g) for g in spec.get("guardrails") or []
     ]
@@ -94,26 +121,30 @@ def metric_rows(version: dict[str, Any], metrics: dict[str, dict[str, Any]]) -> 
     for key, g in wanted:
         if key is None:
             continue
-        e = entries.get(key, {})
+        e = entries.get(key)
         decl = metrics.get(key, {})
-        interval = e.get("interval") or [None, None]
+        interval = (e.interval if e is not None else None) or [None, None]
+        # a report row's own threshold when it states one (even as null), else the declared one
+        threshold = e.threshold if e is not None and "threshold" in e.model_fields_set else None
+        if g is not None and (e is None or "threshold" not in e.model_fields_set):
+            threshold = g["threshold"]
         rows.append(
             MetricRow(
                 metric=key,
                 role="guardrail" if g is not None else "success",
                 direction=decl.get("direction") or ("higher" if g is None else "lower"),
                 kind=decl.get("kind") or "mean",
-                estimate=_num(e.get("lift")),
-                se=_num(e.get("se")),
-                corrected=_num(e.get("corrected_lift")),
+                estimate=_num(e.lift) if e else None,
+                se=_num(e.se) if e else None,
+                corrected=_num(e.corrected_lift) if e else None,
                 lower=_num(interval[0]),
                 upper=_num(interval[1]),
-                threshold=_num(e.get("threshold", g["threshold"])) if g else None,
-                p_holds=_num(e.get("probability_holds")) if g else None,
+                threshold=_num(threshold) if g else None,
+                p_holds=_num(e.probability_holds) if g and e else None,
                 confidence=float(g.get("confidence", 0.95)) if g else None,
                 limit_text=_limit_text(g) if g else None,
                 unit=(g.get("unit") or "absolute") if g else "absolute",
-                p_holds_corrected=_num(e.get("probability_holds_corrected")) if g else None,
+                p_holds_corrected=_num(e.probability_holds_corrected) if g and e else None,
             )
         )
     return rows
@@ -130,23 +161,19 @@ class ComparisonRow:
 def comparison_rows(version: dict[str, Any]) -> list[ComparisonRow]:
     """Every single arm for everyone, the best single arm meeting the guardrails, and this plan,
     in the report's order; arms are named by the allocation's arm keys."""
-    report = version.get("report") or {}
     arms = list((version.get("allocation") or {}).get("arms") or [])
     rows: list[ComparisonRow] = []
-    for r in report.get("comparison") or []:
-        if not isinstance(r, dict):
-            continue
-        arm = r.get("arm")
-        name = arms[arm] if isinstance(arm, int) and 0 <= arm < len(arms) else str(r.get("plan"))
+    for r in report_comparison(version):
+        arm = r.arm
+        name = arms[arm] if arm is not None and 0 <= arm < len(arms) else r.plan
         if arm is None:
             kind = "plan"
-        elif str(r.get("plan", "")).startswith("best"):
+        elif r.plan.startswith("best"):
             kind = "best_safe"
         else:
             kind = "arm"
-        holds = r.get("holds")
-        safe = all(holds.values()) if isinstance(holds, dict) and r.get("available", True) else None
-        lifts = {k: _num(v) for k, v in (r.get("lifts") or {}).items()}
+        safe = all(r.holds.values()) if r.holds is not None and r.available else None
+        lifts = {k: _num(v) for k, v in (r.lifts or {}).items()}
         rows.append(ComparisonRow(label=name, kind=kind, lifts=lifts, safe=safe))
     return rows
 

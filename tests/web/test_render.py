@@ -354,3 +354,14 @@ def test_a_binding_chance_guardrail_counts_as_met_within_tolerance(
     ]
     assert want in _text(block)
     assert f"{held} of 3 guardrails hold" in _text(root)
+
+
+def test_a_report_part_in_the_wrong_shape_is_left_out_and_the_rest_shows() -> None:
+    """The report is read through its answer model (apportion.schemas.plans): comparison rows
+    without their required fields are dropped, the metrics still show."""
+    data = page()
+    data["version"]["report"]["comparison"] = [{"plan": "arm 0 for everyone"}]  # no 'available'
+    root = _tree(pages.version_fragment(data, APPROVER))
+    (section,) = _by_attr(root, "id", "comparison")
+    assert "no single-arm comparison" in _text(section)
+    assert "99.7% probability it holds" in _text(root)
