@@ -301,4 +301,5 @@ def expand(distinct: list[Assignment], index: np.ndarray) -> list[Assignment]:
     """[distinct[i] for i in index], gathered by numpy on an object array."""
     table = np.empty(len(distinct), dtype=object)
     table[:] = distinct
-    return table.take(index).tolist()
+    out: list[Assignment] = table.take(index).tolist()  # object array: the Assignments themselves
+    return out

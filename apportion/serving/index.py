@@ -109,7 +109,7 @@ class CompiledPlan:
     arm_state: Any
     _kernel: PortablePlan
     _cum_lists: tuple[tuple[float, ...], ...]
-    _portable: list[Any]
+    _portable: list[tuple[bytes, str]]
 
     def __init__(
         self,
