@@ -38,6 +38,7 @@ from apportion.optimize.calibrate import calibrated_solve
 from apportion.optimize.problem import Guardrail, build_problem
 from apportion.optimize.solve import METHODS as OPTIMIZERS
 from apportion.stats import models as cohort_models
+from apportion.stats.decision import DECISION_METHODS
 from apportion.stats.table import UnitTable
 
 FOLDS = 5
@@ -101,7 +102,7 @@ def model_params_for(cand: Candidate, guardrails: tuple[Guardrail, ...], params:
     """The cohort model's parameters for a candidate: a decision-focused method (policy tree,
     distilled member-level models) prices the plan's guardrails while it splits, so it gets them
     unless the caller set its own; other methods take no guardrails."""
-    if cand.model in cohort_models.DECISION_METHODS and params.get("guardrails") is None:
+    if cand.model in DECISION_METHODS and params.get("guardrails") is None:
         return {**params, "guardrails": [
             {"metric": g.metric, "threshold": float(g.threshold), "unit": g.unit}
             for g in guardrails]}  # fmt: skip

@@ -154,7 +154,7 @@ def _leaf_codes(tree: Tree, node: np.ndarray) -> tuple[np.ndarray, np.ndarray, i
     return cnode, cnode[node], len(leaves)
 
 
-def _signature(tree: Tree) -> tuple:
+def _signature(tree: Tree) -> tuple[Any, ...]:
     return tuple(
         (f, None if lk is None else lk.tobytes())
         for f, lk in zip(tree.feature, tree.lookup, strict=True)
@@ -228,7 +228,10 @@ def fit_decision(
         if not p["price_z"] or not tg.rhs.size:
             return tg.rhs
         psi = np.einsum("nj,njk->nk", x[leaf], delta[..., 1:])
-        return np.maximum(tg.rhs - p["price_z"] * psi.std(axis=0) / np.sqrt(n_e), 0.0)
+        lowered: np.ndarray = np.maximum(
+            tg.rhs - p["price_z"] * psi.std(axis=0) / np.sqrt(n_e), 0.0
+        )
+        return lowered
 
     root = np.zeros(delta.shape[0], dtype=np.int64)
     x0, lam, _ = lagrange_lp(np.ones(1), delta.mean(axis=0)[None], tg.rhs)
@@ -237,8 +240,8 @@ def fit_decision(
         _, lam, _ = lagrange_lp(np.ones(1), delta.mean(axis=0)[None], rhs)
     rounds_out = []
     n_rounds = p["rounds"] if tg.rhs.size else 1
-    seen: set[tuple] = set()
-    kept: tuple | None = None  # (value, round, tree, node_s, node_e)
+    seen: set[tuple[Any, ...]] = set()
+    kept: tuple[Any, ...] | None = None  # (value, round, tree, node_s, node_e)
     for r in range(n_rounds):
         reward = delta[..., 0] - delta[..., 1:] @ lam
 

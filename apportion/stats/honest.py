@@ -58,7 +58,8 @@ def root_pair_variance(y: np.ndarray, arm: np.ndarray, n_arms: int) -> np.ndarra
     """(J-1, K) v_jk: the pooled within-arm variance of arms j and 0 at the root (the mean of the
     two unbiased variances), computed once."""
     var = np.stack([y[arm == j].var(axis=0, ddof=1) for j in range(n_arms)])  # (J, K)
-    return 0.5 * (var[1:] + var[:1])
+    half: np.ndarray = 0.5 * (var[1:] + var[:1])
+    return half
 
 
 def pair_weights(v: np.ndarray, metric_weights: np.ndarray) -> np.ndarray:
@@ -85,4 +86,5 @@ def leaf_criterion(
         v = var[..., 1:, :] / nn[..., 1:, :] + var[..., :1, :] / nn[..., :1, :]
         g = tau * tau - (1.0 + n_tr / n_est) * v
         share = n.sum(axis=-1) / n_tr
-        return share * np.einsum("...jk,jk->...", g, weights)
+        weighted: np.ndarray = share * np.einsum("...jk,jk->...", g, weights)
+        return weighted

@@ -22,6 +22,7 @@ import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -94,7 +95,7 @@ def boosted_outcomes(
     settings: BoostSettings,
     seed: int,
     progress: Progress = _quiet,
-) -> tuple[np.ndarray, dict]:
+) -> tuple[np.ndarray, dict[str, Any]]:
     """Cross-fitted predictions (n, J, Q): rows of fold f get the models fitted on arm j's rows
     outside f (at most `max_train_rows` of them, drawn at random). Early stopping on a 10 %
     validation split; random_state is fixed per (fold, arm, component), so a seed reproduces
@@ -297,7 +298,7 @@ def forest_outcomes(
     settings: ForestSettings,
     seed: int,
     progress: Progress = _quiet,
-) -> tuple[np.ndarray, dict]:
+) -> tuple[np.ndarray, dict[str, Any]]:
     """Out-of-bag forest predictions (len(rows), J, Q) for `rows`, and diagnostics."""
     forest = fit_forest(bins, rows, arm, y, values, n_arms, settings, seed,
                         lambda f: progress(0.8 * f))  # fmt: skip

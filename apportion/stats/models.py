@@ -47,13 +47,13 @@ _HONEST = ("causal_tree", "intersect", *DECISION_METHODS)
 @dataclass(frozen=True)
 class CohortModelFit:
     method: str
-    params: dict
+    params: dict[str, Any]
     partition: Partition
     shares: np.ndarray  # (C,) share of all rows in each cohort
     moments: CellMoments  # per cohort x arm, on the estimation rows
     estimates: MetricEstimates
     estimation_mask: np.ndarray  # (n,) bool
-    diagnostics: dict
+    diagnostics: dict[str, Any]
 
 
 # ---- parameters: one declarative table per method ------------------------------------------
@@ -150,7 +150,9 @@ def _bad(name: str, msg: str, value: Any) -> InvalidInput:
     )
 
 
-def validate_params(method: str, params: dict | None, table_or_specs: Any) -> dict:
+def validate_params(
+    method: str, params: dict[str, Any] | None, table_or_specs: Any
+) -> dict[str, Any]:
     """Resolved parameters (defaults filled, JSON-serializable) or InvalidInput naming the first
     bad parameter. `table_or_specs`: a UnitTable or (features, metrics) specs."""
     if method not in METHODS:
@@ -188,7 +190,9 @@ def validate_params(method: str, params: dict | None, table_or_specs: Any) -> di
     return out
 
 
-def _guardrail_list(v: Any, success: str | None, metrics: tuple[MetricSpec, ...]) -> list[dict]:
+def _guardrail_list(
+    v: Any, success: str | None, metrics: tuple[MetricSpec, ...]
+) -> list[dict[str, Any]]:
     """The guardrails whose prices shape a decision-focused partition, in the plan's shape:
     [{metric, threshold, unit}] with the plan's sign rule (a lower-is-better metric's threshold
     is an allowed rise >= 0, a higher-is-better one's an allowed drop <= 0)."""
@@ -198,7 +202,7 @@ def _guardrail_list(v: Any, success: str | None, metrics: tuple[MetricSpec, ...]
     if not isinstance(v, list):
         raise _bad(name, "must be a list of {metric, threshold, unit}", v)
     spec = {m.key: m for m in metrics}
-    out: list[dict] = []
+    out: list[dict[str, Any]] = []
     for i, g in enumerate(v):
         if not isinstance(g, dict) or "metric" not in g or "threshold" not in g:
             raise _bad(name, f"item {i} must be an object with 'metric' and 'threshold'", g)
@@ -284,7 +288,7 @@ def _check(name: str, p: _Param, v: Any, fkeys: list[str], mkeys: list[str]) -> 
     raise AssertionError(p.kind)
 
 
-def _segment_bins(out: dict, features: tuple[FeatureSpec, ...]) -> dict[str, int]:
+def _segment_bins(out: dict[str, Any], features: tuple[FeatureSpec, ...]) -> dict[str, int]:
     spec = {f.key: f for f in features}
     given = out["bins"] or {}
     for k in given:
@@ -306,7 +310,7 @@ def _segment_bins(out: dict, features: tuple[FeatureSpec, ...]) -> dict[str, int
 def fit_cohort_model(
     table: UnitTable,
     method: str,
-    params: dict | None = None,
+    params: dict[str, Any] | None = None,
     *,
     success_metric: str | None = None,
     progress: Callable[[float], None] | None = None,

@@ -132,7 +132,7 @@ def choose_penalty(scores: np.ndarray, one_se: bool) -> int:
     """Index of the chosen penalty from held-out scores (folds, grid): the best mean, ties going to
     the larger penalty; with `one_se` the largest penalty within one standard error of it."""
     mean = scores.mean(axis=0)
-    best = scores.shape[1] - 1 - int(np.argmax(mean[::-1]))
+    best: int = scores.shape[1] - 1 - int(np.argmax(mean[::-1]))
     if one_se:
         se = scores[:, best].std(ddof=1) / np.sqrt(scores.shape[0])
         best = int(np.flatnonzero(mean >= mean[best] - se).max())

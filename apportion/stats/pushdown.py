@@ -92,7 +92,7 @@ class RowEngine(Protocol):
 def fit_on_engine(
     engine: RowEngine,
     method: str,
-    params: dict | None = None,
+    params: dict[str, Any] | None = None,
     *,
     success_metric: str | None = None,
     progress: Callable[[float], None] | None = None,
@@ -181,7 +181,7 @@ def _bins(engine: RowEngine, keys: list[str], max_bins: int) -> FeatureBins:
     return FeatureBins(features=specs, codes=codes, n_bins=n_bins, thresholds=tuple(thresholds))
 
 
-def _roles(arm: np.ndarray, p: dict) -> tuple[np.ndarray, int]:
+def _roles(arm: np.ndarray, p: dict[str, Any]) -> tuple[np.ndarray, int]:
     """Role per row: 0 estimation, 1 + fold for structure rows; the split of
     `honest.honest_split` and the folds of `prune.cv_prune`, drawn the same way."""
     est = honest_split(arm, p["seed"], p["estimation_fraction"])
