@@ -4,6 +4,8 @@ row-reading steps run on a uniform sample and say so."""
 
 from __future__ import annotations
 
+import html
+
 import numpy as np
 import pytest
 from fastapi.testclient import TestClient
@@ -70,7 +72,8 @@ def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
     page = c.get(f"/ui/fragments/plans/lesson-length/versions/{v['version']}",
                  headers=keys.h(keys.reader))  # fmt: skip
     assert page.status_code == 200
-    assert f"a uniform sample of {LIMIT:,} of the readout's {N:,} rows" in page.text
+    text = html.unescape(page.text)  # the page escapes the apostrophe as &#39;
+    assert f"a uniform sample of {LIMIT:,} of the readout's {N:,} rows" in text
     section = page.text[page.text.index('id="held-out"') :]
     from apportion.demo.scenario import SUCCESS
 
