@@ -100,7 +100,12 @@ def list_(conn: Conn) -> None:
 
 @client_command(plan_app, "show", "a plan's versions and activations, or one version")
 def show(
-    conn: Conn, plan: str, version: Annotated[int | None, typer.Option("--version")] = None
+    conn: Conn,
+    plan: str,
+    version: Annotated[
+        int | None,
+        typer.Option("--version", help="one version in full (report, cohorts, held-out figures)"),
+    ] = None,
 ) -> None:
     with conn.client() as api:
         if version is not None:

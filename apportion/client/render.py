@@ -444,10 +444,9 @@ def plan_view(plan: dict[str, Any]) -> Group:
 
 @_from_answer
 def switch_line(got: dict[str, Any], plan: str, verb: str) -> str:
-    return (
-        f"{verb} {plan}: version {got['from_version'] or 'none'} -> {got['to_version']} "
-        f"(revision {got['revision']})"
-    )
+    before = got["from_version"]
+    was = f"version {before}" if before else "no live version"
+    return f"{verb} {plan}: {was} -> version {got['to_version']} (revision {got['revision']})"
 
 
 @_from_answer

@@ -142,7 +142,7 @@ def test_activate_reads_revision_and_stale_revision_is_409(cli, plan, model, spe
         assert cli("approver", "plan", "approve", plan, v, "--reason", "reviewed").code == 0
     r = cli("approver", "plan", "activate", plan, "1", "--reason", "launch")
     assert r.code == 0, r.err
-    assert r.out.strip() == f"activated {plan}: version none -> 1 (revision 1)"
+    assert r.out.strip() == f"activated {plan}: no live version -> version 1 (revision 1)"
     stale = cli("approver", "plan", "activate", plan, "2", "--reason", "x" * 5,
                 "--expected-revision", "0")  # fmt: skip
     assert stale.code == 1 and "(HTTP 409)" in stale.err
@@ -166,7 +166,7 @@ def test_rollback_to_previous_and_named(cli, plan, model, spec) -> None:  # type
     assert back.code == 0 and back.json() == {"from_version": 3, "to_version": 2, "revision": 4}
     named = cli("approver", "plan", "rollback", plan, "--reason", "further back", "--to", "1")
     assert named.code == 0 and named.out.strip() == (
-        f"rolled back {plan}: version 2 -> 1 (revision 5)"
+        f"rolled back {plan}: version 2 -> version 1 (revision 5)"
     )
     shown = cli("reader", "plan", "show", plan)
     rows = [line.split() for line in shown.out.splitlines()]
