@@ -65,7 +65,9 @@ def test_kill9_during_uploads_a_fit_and_activations(backend: str, tmp_path) -> N
 
 
 def _start_slow_fit(c: httpx.Client, keys: Keys) -> dict[str, Any]:
-    """A fit that runs for a couple of seconds: 40,000 learners, a depth-4 tree."""
+    """A fit that outlasts a storm on a quiet machine too: 40,000 learners, a deep tree with small
+    leaves and 20-fold pruning (about 7 s on an idle core; a depth-4 tree took 0.5 s, so a re-run
+    attempt could finish before the test saw it running)."""
     from apportion.demo.scenario import EXPERIMENT_KEY, simulate, to_csv_bytes
 
     r = c.post(
@@ -77,7 +79,7 @@ def _start_slow_fit(c: httpx.Client, keys: Keys) -> dict[str, Any]:
     body = {
         "readout_version": r.json()["version"],
         "method": "causal_tree",
-        "params": {"max_depth": 4, "min_units_per_arm": 50},
+        "params": {"max_depth": 12, "min_units_per_arm": 5, "cv_folds": 20},
     }
     r = c.post(f"/v1/experiments/{EXPERIMENT_KEY}/models", json=body, headers=keys.h(keys.analyst))
     assert r.status_code == 202, r.text
