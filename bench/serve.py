@@ -375,6 +375,8 @@ def main() -> None:
         **os.environ,
         "APPORTION_DATABASE_URL": f"sqlite:///{tmp}/apportion.db",
         "APPORTION_LOG_LEVEL": "WARNING",
+        # lookups are measured, not drafting: no per-draft held-out job (approval would wait for it)
+        "APPORTION_HELD_OUT_FOLDS": "0",
     }
     secrets = {
         role: _cli(env, "keys", "create", "--name", f"b-{role}", "--role", role)
