@@ -9,6 +9,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from apportion.config import Settings
+from apportion.stats.table import FeatureSpec, MetricSpec, UnitTable
 
 EXPERIMENT = {
     "key": "checkout-copy",
@@ -275,3 +276,38 @@ def make_keys(services, prefix: str = "t") -> Keys:  # type: ignore[no-untyped-d
         )
     services.keys.refresh()
     return Keys(**made)
+
+
+# ---- a readout whose effect varies only by a feature declared not for personalization ---------
+# (tests/stats/test_not_personalized.py and tests/engines/test_not_personalized.py)
+
+AGE_BANDS = ("18-29", "30-49", "50+")
+REASON = "protected attribute; legal review pending"
+
+
+def effect_by_band_only(n: int = 8000, seed: int = 5, *, flagged: bool) -> UnitTable:
+    """Two arms; treatment adds 1 sd of `score` in the band 50+ and takes 0.5 sd in the others
+    (the best arm differs by band); `x` and `device` are noise. With `flagged`, `age_band` is
+    declared not for personalization."""
+    rng = np.random.default_rng(seed)
+    arm = rng.integers(0, 2, n)
+    band = rng.integers(0, 3, n).astype(np.int32)
+    x = rng.normal(size=n)
+    device = rng.integers(0, 2, n).astype(np.int32)
+    score = rng.normal(size=n) + arm * np.where(band == 2, 1.0, -0.5)
+    cost = rng.normal(size=n)
+    features = (
+        FeatureSpec("age_band", "categorical", AGE_BANDS, personalize=not flagged),
+        FeatureSpec("x", "numeric"),
+        FeatureSpec("device", "categorical", ("web", "app")),
+    )
+    return UnitTable(
+        unit_ids=np.array([f"u{i}" for i in range(n)], dtype=object),
+        arm=arm.astype(np.int64),
+        arm_keys=("control", "treat"),
+        design_shares=np.array([0.5, 0.5]),
+        features=features,
+        feature_values={"age_band": band, "x": x, "device": device},
+        metrics=(MetricSpec("score", "mean"), MetricSpec("cost", "mean", "lower")),
+        columns={"score": score, "cost": cost},
+    )

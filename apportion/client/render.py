@@ -143,8 +143,16 @@ def experiment_view(e: dict[str, Any]) -> Group:
           r["content_hash"][:12], r["created_at"]] for r in e["readouts"]],
         ["readout", "rows", "sample ratio", "hash", "created"],
     )  # fmt: skip
+    feats = e.get("features") or []
+    features = table(
+        [[f["key"], f["kind"], "yes" if f.get("personalize", True) else "no"] for f in feats],
+        ["feature", "kind", "personalize"],
+    )
+    unused = [f"{f['key']} ({f.get('reason') or 'no reason given'})"
+              for f in feats if not f.get("personalize", True)]  # fmt: skip
+    note = ["not used for personalization: " + "; ".join(unused), ""] if unused else []
     return lines(f"experiment {e['key']} ({e.get('name') or ''})", "", arms, "", metrics, "",
-                  readouts)  # fmt: skip
+                 features, "", *note, readouts)  # fmt: skip
 
 
 @_from_answer

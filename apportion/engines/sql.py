@@ -13,6 +13,7 @@ one SQL text both backends share into several files that must stay in step.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -100,7 +101,7 @@ class SqlEngine:
                 col = self.col(f.key)
                 t = self.query(f"SELECT DISTINCT CAST({col} AS STRING) AS v FROM src "
                                f"WHERE {col} IS NOT NULL AND CAST({col} AS STRING) <> ''")  # fmt: skip
-                f = FeatureSpec(f.key, f.kind, tuple(sorted(t.column("v").to_pylist())))
+                f = replace(f, levels=tuple(sorted(t.column("v").to_pylist())))
             out.append(f)
         return tuple(out)
 

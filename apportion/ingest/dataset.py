@@ -81,7 +81,9 @@ class DatasetSpec:
             "arm_keys": list(self.arm_keys),
             "design_shares": [float(s) for s in self.design_shares],
             "features": [
-                {"key": f.key, "kind": f.kind, "levels": list(f.levels)} for f in self.features
+                {"key": f.key, "kind": f.kind, "levels": list(f.levels)}
+                | ({} if f.personalize else {"personalize": False})
+                for f in self.features
             ],
             "metrics": [
                 {
@@ -103,7 +105,12 @@ class DatasetSpec:
             arm_keys=tuple(d["arm_keys"]),
             design_shares=tuple(float(s) for s in d["design_shares"]),
             features=tuple(
-                FeatureSpec(key=f["key"], kind=f["kind"], levels=tuple(f["levels"]))
+                FeatureSpec(
+                    key=f["key"],
+                    kind=f["kind"],
+                    levels=tuple(f["levels"]),
+                    personalize=bool(f.get("personalize", True)),
+                )
                 for f in d["features"]
             ),
             metrics=tuple(MetricSpec(**m) for m in d["metrics"]),

@@ -14,7 +14,7 @@ Columns that are not declared are ignored and named in `warnings`.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pyarrow as pa
@@ -218,7 +218,7 @@ def _features(
                 mask=unknown,
                 source=arr,
             )
-        specs.append(FeatureSpec(key=f.key, kind="categorical", levels=levels))
+        specs.append(replace(f, levels=levels))
         values[f.key] = codes.astype(np.int32)
     return tuple(specs), values
 

@@ -20,7 +20,7 @@ import re
 import tempfile
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -432,7 +432,7 @@ def _ingest_once(
         arm_keys=arm_keys,
         design_shares=draft.design_shares,
         features=tuple(
-            FeatureSpec(f.key, f.kind, tuple(sorted(discovered[f.key])))
+            replace(f, levels=tuple(sorted(discovered[f.key])))
             if f.key in discovered and f.kind == "categorical"
             else f
             for f in features

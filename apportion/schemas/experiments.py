@@ -42,6 +42,15 @@ class FeatureIn(BaseModel):
     levels: list[ShortText] | None = Field(
         None, max_length=10000, description="categorical: the allowed levels (optional)"
     )
+    personalize: bool = Field(
+        True,
+        description="false: the feature never drives personalization (no cohort model splits on "
+        "it or uses it, so no plan refers to it); `reason` then says why",
+    )
+    reason: ShortText | None = Field(
+        None,
+        description="why the feature is not used for personalization (with personalize: false)",
+    )
 
 
 class ExperimentIn(BaseModel):

@@ -164,7 +164,10 @@ def validate_params(
         raise _bad(unknown[0], f"is not a parameter of method '{method}' (known: {sorted(table)})",
                    params[unknown[0]])  # fmt: skip
     features, metrics = _specs(table_or_specs)
-    fkeys, mkeys = [f.key for f in features], [m.key for m in metrics]
+    # a feature declared `personalize: false` is never a split variable nor a model input: it is
+    # left out of the default and refused when named
+    fkeys, mkeys = [f.key for f in features if f.personalize], [m.key for m in metrics]
+    excluded = [f.key for f in features if not f.personalize]
     out: dict[str, Any] = {}
     for name, p in table.items():
         if name not in params or params[name] is None:
@@ -172,6 +175,11 @@ def validate_params(
                 raise _bad(name, "is required", None)
             out[name] = p.default
             continue
+        if p.kind == "features" and isinstance(params[name], list | tuple):
+            barred = [x for x in params[name] if x in excluded]
+            if barred:
+                raise _bad(name, f"names {barred}, declared not for personalization "
+                           "(personalize: false)", params[name])  # fmt: skip
         out[name] = _check(name, p, params[name], fkeys, mkeys)
     if out["features"] is None:
         out["features"] = fkeys

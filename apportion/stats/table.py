@@ -47,6 +47,8 @@ class FeatureSpec:
     key: str
     kind: FeatureKind
     levels: tuple[str, ...] = ()  # categorical: the levels known so far (codes index into this)
+    # False: declared as not for personalization; no cohort model splits on it (models.py)
+    personalize: bool = True
 
 
 @dataclass(frozen=True)

@@ -75,7 +75,9 @@ def specs_of(declaration: dict[str, Any]) -> ExperimentSpecs:
             for m in declaration["metrics"]
         ),
         features=tuple(
-            FeatureSpec(f["key"], f["kind"], tuple(f.get("levels") or ()))
+            FeatureSpec(
+                f["key"], f["kind"], tuple(f.get("levels") or ()), bool(f.get("personalize", True))
+            )
             for f in declaration["features"]
         ),
     )
@@ -145,6 +147,21 @@ def validate_declaration(decl: dict[str, Any]) -> None:
             )
         names[f["key"]] = f"feature '{f['key']}'"
         errs.extend(_level_problems(f))
+        if f.get("personalize", True) is False and not (f.get("reason") or "").strip():
+            errs.append(
+                {
+                    "field": f"features.{f['key']}.reason",
+                    "problem": f"feature '{f['key']}' is declared not for personalization; "
+                    "say why in 'reason'",
+                }
+            )
+        if f.get("personalize", True) and f.get("reason") is not None:
+            errs.append(
+                {
+                    "field": f"features.{f['key']}.reason",
+                    "problem": "a reason goes with personalize: false only",
+                }
+            )
         if f["kind"] == "numeric" and f.get("levels"):
             errs.append(
                 {

@@ -52,24 +52,32 @@ def _history(services: Services, plan: str, version: int) -> list[dict[str, Any]
     return [{k: e.get(k) for k in keep} for e in sorted(own + related, key=lambda e: e["id"])]
 
 
-def _metrics(services: Services, key: str | None) -> dict[str, dict[str, Any]]:
-    """Metric key -> its declaration {key, kind, direction, ...}; empty when the experiment is gone."""
+def _declared(
+    services: Services, key: str | None
+) -> tuple[dict[str, dict[str, Any]], list[dict[str, Any]]]:
+    """(metric key -> its declaration {key, kind, direction, ...}, the features declared not for
+    personalization [{key, reason}]); both empty when the experiment is gone."""
     if not key:
-        return {}
+        return {}, []
     try:
         decl = experiments.get(services.db, key=key)
     except NotFound:
-        return {}
-    return {m.key: m.model_dump(exclude_unset=True) for m in decl.metrics}
+        return {}, []
+    metrics = {m.key: m.model_dump(exclude_unset=True) for m in decl.metrics}
+    excluded = [{"key": f.key, "reason": f.reason} for f in decl.features if not f.personalize]
+    return metrics, excluded
 
 
 def review_page(services: Services, *, plan: str, version: int) -> dict[str, Any]:
-    """Everything the version page draws: {version, plan, metrics, history, watch}."""
+    """Everything the version page draws: {version, plan, metrics, not_personalized, history,
+    watch}."""
     view = plans.get_version(services, plan=plan, version=version)
+    metrics, excluded = _declared(services, view.spec.experiment)
     return {
         "version": dump(view),
         "plan": dump(plans.get_plan(services, plan=plan)),
-        "metrics": _metrics(services, view.spec.experiment),
+        "metrics": metrics,
+        "not_personalized": excluded,
         "history": _history(services, plan, version),
         "watch": _watch(services, plan, version),
     }

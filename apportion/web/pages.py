@@ -95,7 +95,7 @@ def version_context(data: dict[str, Any], viewer: dict[str, str]) -> Context:
     return {
         "viewer": viewer,
         "v": v,
-        "summary": sections.summary(v, plan, rows),
+        "summary": sections.summary(v, plan, rows, data.get("not_personalized") or []),
         "success": [sections.metric_block(r) for r in rows if r.role == "success"],
         "guardrails": [sections.metric_block(r) for r in rows if r.role == "guardrail"],
         "cohorts": sections.cohorts(v),

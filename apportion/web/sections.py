@@ -71,7 +71,22 @@ def status(s: str) -> str:
     return STATUS_TEXT.get(s, s)
 
 
-def summary(v: dict[str, Any], plan: dict[str, Any], rows: list[MetricRow]) -> Context:
+def not_personalized(excluded: list[dict[str, Any]]) -> str | None:
+    """'age_band (reason); region (reason)': the experiment's features declared not for
+    personalization, which no cohort model splits on; None when there are none."""
+    if not excluded:
+        return None
+    return "; ".join(
+        f"{f['key']} ({f['reason']})" if f.get("reason") else str(f["key"]) for f in excluded
+    )
+
+
+def summary(
+    v: dict[str, Any],
+    plan: dict[str, Any],
+    rows: list[MetricRow],
+    excluded: list[dict[str, Any]] | None = None,
+) -> Context:
     spec = v.get("spec") or {}
     live = plan.get("live_version")
     holdout = spec.get("holdout") or {}
@@ -84,6 +99,9 @@ def summary(v: dict[str, Any], plan: dict[str, Any], rows: list[MetricRow]) -> C
         ("Holdout", f"{pct(holdout.get('share'), 1)} on {holdout.get('arm')}"),
         ("Cohort model", f"model {v.get('model_id')} on experiment {spec.get('experiment')}"),
     ]
+    unused = not_personalized(excluded or [])
+    if unused:
+        facts.append(("Not used for personalization", unused))
     decided = None
     if v.get("decided_by"):
         decided = (

@@ -39,6 +39,19 @@ def test_experiment_create_and_show(cli, files) -> None:  # type: ignore[no-unty
     assert [a["key"] for a in body["arms"]] == ["control", "bold", "calm"]
 
 
+def test_experiment_show_names_the_features_not_used_for_personalization(cli, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    decl = {**EXPERIMENT, "features": [
+        {"key": "age_days", "kind": "numeric"},
+        {"key": "plan", "kind": "categorical", "personalize": False, "reason": "pricing tier"},
+    ]}  # fmt: skip
+    (tmp_path / "flagged.json").write_text(json.dumps(decl))
+    assert cli("analyst", "experiment", "create", str(tmp_path / "flagged.json")).code == 0
+    shown = cli("reader", "experiment", "show", "checkout-copy")
+    assert shown.code == 0, shown.err
+    assert "not used for personalization: plan (pricing tier)" in shown.out
+    assert "age_days" in shown.out and "age_days (" not in shown.out
+
+
 def test_duplicate_experiment_prints_problem_and_fails(cli, files) -> None:  # type: ignore[no-untyped-def]
     assert cli("analyst", "experiment", "create", str(files["decl"])).code == 0
     r = cli("analyst", "experiment", "create", str(files["decl"]))

@@ -365,3 +365,14 @@ def test_a_report_part_in_the_wrong_shape_is_left_out_and_the_rest_shows() -> No
     (section,) = _by_attr(root, "id", "comparison")
     assert "no single-arm comparison" in _text(section)
     assert "99.7% probability it holds" in _text(root)
+
+
+def test_the_summary_names_the_features_not_used_for_personalization() -> None:
+    data = {**page(), "not_personalized": [{"key": "age_band", "reason": "legal review <pending>"}]}
+    root = _tree(pages.version_fragment(data, READER))
+    (facts,) = [el for el in root.iter("dl") if el.get("class") == "facts"]
+    pairs = dict(zip([_text(d) for d in facts.iter("dt")], [_text(d) for d in facts.iter("dd")],
+                     strict=True))  # fmt: skip
+    assert pairs["Not used for personalization"] == "age_band (legal review <pending>)"
+    plain = _tree(pages.version_fragment(page(), READER))
+    assert "Not used for personalization" not in _text(plain)
