@@ -367,12 +367,18 @@ def held_out_view(held: Any) -> list[RenderableType | str]:
          "" if m.get("probability_holds") is None else f"{m['probability_holds']:.3f}"]
         for k, m in (held.get("metrics") or {}).items()
     ]  # fmt: skip
-    return [
+    reading = held.get("reading") or {}
+    out: list[RenderableType | str] = [
         "",
         f"held-out evaluation ({held.get('folds')} folds the model and optimizer never saw; "
         f"against all-control): {held.get('verdict')}",
-        table(rows, ["metric", "lift", "se", "allowed", "P(holds)"]),
     ]
+    if reading.get("warning"):
+        out.append(f"WARNING: {reading['warning']}")
+    out.append(table(rows, ["metric", "lift", "se", "allowed", "P(holds)"]))
+    if reading.get("measures"):
+        out.append(reading["measures"])
+    return out
 
 
 @_from_answer

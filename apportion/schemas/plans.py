@@ -284,6 +284,30 @@ class ReportComparisonRow(OpenAnswer):
     holds: dict[str, bool] | None = None
 
 
+class HeldOutReading(Answer):
+    """How the held-out figure relates to the projection (worked out when the version is read):
+    what the held-out figure measures, both success-lift intervals at 95 %, and whether the
+    held-out one lies entirely on the worse side of the projected one."""
+
+    measures: str = Field(description="what the held-out figure measures, in one sentence")
+    success_metric: str
+    held_out_interval: list[float] = Field(
+        description="held-out success lift +/- 1.96 se (normal), against all-control"
+    )
+    projected_interval: list[float] | None = Field(
+        None, description="the report's corrected success lift interval; null while pending"
+    )
+    comparable: bool = Field(
+        description="the projection is against all-control too (baseline 'control'), so the "
+        "two intervals are on one scale"
+    )
+    short_of_projection: bool = Field(
+        description="the held-out interval lies entirely below the projected one (above it "
+        "for a lower-is-better success metric)"
+    )
+    warning: str | None = Field(None, description="set when short_of_projection")
+
+
 class HeldOutPart(OpenAnswer):
     """The draft's cross-fitted held-out evaluation (a job of its own)."""
 
@@ -292,6 +316,9 @@ class HeldOutPart(OpenAnswer):
     job: str | None = None
     reason: str | None = None
     error: str | None = None
+    reading: HeldOutReading | None = Field(
+        None, description="when complete: how it relates to the projection"
+    )
 
 
 class SolutionPart(OpenAnswer):

@@ -273,8 +273,11 @@ def held_out(v: dict[str, Any], rows: list[MetricRow]) -> Context | None:
             }
         )
     verdict = ho.get("verdict")
+    reading = ho.get("reading") or {}
     return {
         "complete": True,
+        "measures": reading.get("measures"),
+        "warning": reading.get("warning"),
         "folds": ho.get("folds"),
         "sample": _sample_note(ho),
         "verdict": HELD_OUT_VERDICT.get(str(verdict), str(verdict)),

@@ -39,6 +39,15 @@ def test_draft_queues_the_evaluation_and_the_job_attaches_it(ho_client: TestClie
     assert set(held["metrics"]) == {SUCCESS, *(g["metric"] for g in GUARDRAILS)}
     assert all(m["se"] > 0 for m in held["metrics"].values())
     assert held["verdict"] in ("verified", "unverified", "refused")
+    # read beside the projection: what it measures, and the warning exactly when it falls short
+    reading = held["reading"]
+    assert (
+        reading["success_metric"] == SUCCESS and "1/2 of the readout's rows" in reading["measures"]
+    )
+    (projected,) = [m["interval"] for m in got["report"]["metrics"] if m["metric"] == SUCCESS]
+    assert reading["projected_interval"] == projected
+    assert reading["short_of_projection"] is (reading["held_out_interval"][1] < projected[0])
+    assert (reading["warning"] is not None) is reading["short_of_projection"]
     # the calibrated report the draft made is untouched by the job
     assert got["report"]["status"] == "complete" and got["report"]["calibration"]
 
@@ -51,8 +60,11 @@ def test_draft_queues_the_evaluation_and_the_job_attaches_it(ho_client: TestClie
         "/ui/fragments/plans/lesson-length/versions/1", headers=keys.h(keys.reader)
     ).text
     assert 'id="held-out"' in page and "2 folds" in page and "Verdict:" in page
+    assert 'id="held-out-measures"' in page
+    assert ('id="held-out-warning"' in page) is reading["short_of_projection"]
     text = to_text(version_view(got))
     assert "held-out evaluation (2 folds" in text and SUCCESS in text
+    assert "scores the procedure, not this version" in text
 
 
 def test_a_failed_evaluation_ends_failed_with_its_error(

@@ -292,3 +292,20 @@ def test_plan_rendering_lists_guardrail_prices_and_the_five_thresholds():
     assert "cancelled" in text and "+12.5000" in text
     assert "infeasible +0.1000 +0.1100 +0.1200 +0.1250" in text
     assert render.prices_view([]) == []
+
+
+@pytest.mark.parametrize("lift,se,warns", [(0.015, 0.012, True), (0.2, 0.04, False)])
+def test_plan_report_says_what_held_out_measures_and_warns_only_when_short(
+    lift: float, se: float, warns: bool
+) -> None:
+    # the review fixture projects active_days at [0.127, 0.249] against all-control
+    from web.review_fixtures import version
+
+    from apportion.usecases.plans.views import held_out_reading
+
+    v = version()
+    v["report"]["held_out"]["metrics"]["active_days"] = {"lift": lift, "se": se}
+    v["report"]["held_out"]["reading"] = held_out_reading(v["report"], "active_days")
+    text = render.to_text(render.version_view(v))
+    assert "scores the procedure, not this version" in text
+    assert ("WARNING: The held-out active_days lift" in text) is warns

@@ -376,3 +376,25 @@ def test_the_summary_names_the_features_not_used_for_personalization() -> None:
     assert pairs["Not used for personalization"] == "age_band (legal review <pending>)"
     plain = _tree(pages.version_fragment(page(), READER))
     assert "Not used for personalization" not in _text(plain)
+
+
+def _with_reading(lift: float, se: float) -> dict[str, Any]:
+    from apportion.usecases.plans.views import held_out_reading
+
+    data = page()
+    report = data["version"]["report"]
+    report["held_out"]["metrics"]["active_days"] = {"lift": lift, "se": se}
+    report["held_out"]["reading"] = held_out_reading(report, "active_days")
+    return data
+
+
+def test_the_held_out_section_says_what_it_measures_and_warns_only_when_short() -> None:
+    # the fixture projects active_days at [0.127, 0.249]; 0.015 +/- 0.012 lies entirely below it
+    short = _tree(pages.version_fragment(_with_reading(0.015, 0.012), READER))
+    (warning,) = _by_attr(short, "id", "held-out-warning")
+    assert warning.get("role") == "alert" and "entirely below" in _text(warning)
+    (measures,) = _by_attr(short, "id", "held-out-measures")
+    assert "scores the procedure, not this version" in _text(measures)
+    fine = _tree(pages.version_fragment(_with_reading(0.2, 0.04), READER))
+    assert not _by_attr(fine, "id", "held-out-warning")
+    assert _by_attr(fine, "id", "held-out-measures")

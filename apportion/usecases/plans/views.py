@@ -11,6 +11,7 @@ import numpy as np
 from apportion.errors import NotFound
 from apportion.schemas.plans import PlanList, PlanVersionView, PlanView, VersionDiff
 from apportion.stats.table import UnitTable
+from apportion.store import experiments as exp_repo
 from apportion.store import plans as repo
 from apportion.usecases import live
 from apportion.usecases.context import Services
@@ -59,7 +60,68 @@ def _diff_against_live(services: Services, row: Any, ptr: Any) -> dict[str, Any]
     return out
 
 
-def version_view(row: Any, *, live_version: int | None) -> PlanVersionView:
+Z95 = 1.959963984540054  # the normal 97.5 % quantile (scipy.stats.norm.ppf(0.975))
+
+
+def held_out_reading(
+    report: dict[str, Any], success: str | None, direction: str = "higher"
+) -> dict[str, Any] | None:
+    """How a complete held-out evaluation relates to the projection: one sentence on what it
+    measures, the two success-lift intervals at 95 % (the projection's is the report's, corrected
+    lift +/- 1.96 sd; the held-out one is lift +/- 1.96 se, the same normal level), and a
+    warning when the held-out interval lies entirely on the worse side of the projected one.
+    The two are on one scale only when the projection's baseline is all-control, as the held-out
+    figure's always is; otherwise the sentence says so and there is no warning."""
+    ho = report.get("held_out")
+    if not isinstance(ho, dict) or ho.get("status") != "complete" or not success:
+        return None
+    entry = (ho.get("metrics") or {}).get(success) or {}
+    lift, se = entry.get("lift"), entry.get("se")
+    if not isinstance(lift, int | float) or not isinstance(se, int | float):
+        return None
+    folds = ho.get("folds")
+    share = f"{folds - 1}/{folds}" if isinstance(folds, int) and folds > 1 else "part"
+    comparable = (report.get("baseline") or "control") == "control"
+    measures = (
+        f"The held-out figure scores the procedure, not this version: the model's method and the "
+        f"optimizer re-run on {share} of the readout's rows, each re-run's plan scored on the rows "
+        "it never saw, against all-control. A re-run on fewer rows may back off (near a "
+        "guardrail, say), so it can fall short of the projection without a defect"
+        + ("." if comparable else f"; this version's projection is against "
+           f"'{report.get('baseline')}', so the two are not on one scale.")
+    )  # fmt: skip
+    held = [float(lift) - Z95 * float(se), float(lift) + Z95 * float(se)]
+    projected = None
+    for m in report.get("metrics") or []:
+        iv = m.get("interval") if isinstance(m, dict) and m.get("metric") == success else None
+        if isinstance(iv, list) and len(iv) == 2 and all(isinstance(x, int | float) for x in iv):
+            projected = [float(iv[0]), float(iv[1])]
+    short = False
+    if comparable and projected is not None:
+        short = held[1] < projected[0] if direction == "higher" else held[0] > projected[1]
+    side = "below" if direction == "higher" else "above"
+    warning = None
+    if short and projected is not None:
+        warning = (
+            f"The held-out {success} lift (95% interval {held[0]:+.4g} to {held[1]:+.4g}) lies "
+            f"entirely {side} the projected interval ({projected[0]:+.4g} to "
+            f"{projected[1]:+.4g}): expect less than the projection; check the guardrails and "
+            "the readout's size before approving."
+        )
+    return {
+        "measures": measures,
+        "success_metric": success,
+        "held_out_interval": held,
+        "projected_interval": projected,
+        "comparable": comparable,
+        "short_of_projection": short,
+        "warning": warning,
+    }
+
+
+def version_view(
+    row: Any, *, live_version: int | None, success_direction: str = "higher"
+) -> PlanVersionView:
     """The version's row with its stored spec, allocation and report validated as they are read."""
     return PlanVersionView.model_validate({
         "plan": row.plan,
@@ -77,11 +139,11 @@ def version_view(row: Any, *, live_version: int | None) -> PlanVersionView:
         "salt_fingerprint": hashlib.sha256(row.salt.encode()).hexdigest()[:12],
         "spec": row.spec,
         "allocation": row.allocation,
-        "report": _report_view(row),
+        "report": _report_view(row, success_direction),
     })  # fmt: skip
 
 
-def _report_view(row: Any) -> dict[str, Any]:
+def _report_view(row: Any, success_direction: str = "higher") -> dict[str, Any]:
     """The stored report; a version rejected while its jobs were pending keeps them pending in
     storage (it is immutable), so say here that they will not run."""
     report = row.report or {}
@@ -91,6 +153,9 @@ def _report_view(row: Any) -> dict[str, Any]:
             if isinstance(part, dict) and part.get("status") == "pending":
                 report = {**report, key: {**part, "status": "not run",
                                           "error": "the version was rejected first"}}  # fmt: skip
+    reading = held_out_reading(report, (row.spec or {}).get("success_metric"), success_direction)
+    if reading is not None:
+        report = {**report, "held_out": {**report["held_out"], "reading": reading}}
     return report
 
 
@@ -100,8 +165,10 @@ def get_version(
     with services.db.read() as s:
         row = repo.get_version(session=s, plan=plan, version=version)
         ptr = repo.pointer(session=s, plan=plan)
+        direction = _success_direction(s, row.spec or {})
         s.expunge_all()
-    view = version_view(row, live_version=ptr.active_version if ptr else None)
+    view = version_view(row, live_version=ptr.active_version if ptr else None,
+                        success_direction=direction)  # fmt: skip
     if with_diff:
         diff = (
             None
@@ -112,6 +179,18 @@ def get_version(
             update={"diff": None if diff is None else VersionDiff.model_validate(diff)}
         )
     return view
+
+
+def _success_direction(session: Any, spec: dict[str, Any]) -> str:
+    """The declared direction of the version's success metric ('higher' when unknown)."""
+    try:
+        exp = exp_repo.get_experiment(session=session, key=str(spec.get("experiment")))
+    except NotFound:
+        return "higher"
+    for m in exp.declaration.get("metrics") or []:
+        if m.get("key") == spec.get("success_metric"):
+            return str(m.get("direction") or "higher")
+    return "higher"
 
 
 def get_plan(services: Services, *, plan: str) -> PlanView:
