@@ -6,7 +6,7 @@ bytes without building model objects); the answers are what the lookup path send
 
 from __future__ import annotations
 
-from typing import Annotated, Any, NotRequired
+from typing import Annotated, Any, Literal, NotRequired
 
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, TypeAdapter
 from typing_extensions import TypedDict
@@ -50,19 +50,71 @@ class BatchOut(BaseModel):
     assignments: list[AssignOut]
 
 
-class CompiledPlanOut(BaseModel):
-    """The portable compiled plan (format version 1, docs/compiled-plan.md)."""
+# ---- the portable compiled plan: docs/compiled-plan.md, field for field ------------------------
 
+
+class _Doc(BaseModel):
     model_config = ConfigDict(extra="forbid")
-    format: str
-    format_version: int
+
+
+class HashPersons(_Doc):
+    holdout: str = Field(description="BLAKE2b `personal` of the holdout draw (UTF-8, 0-padded)")
+    arm: str = Field(description="BLAKE2b `personal` of the arm draw")
+
+
+class Hashing(_Doc):
+    function: Literal["blake2b"]
+    digest_bytes: Literal[8]
+    salt_hex: str = Field(description="16 bytes, hex: BLAKE2b's `salt` for every draw")
+    person: HashPersons
+
+
+class CompiledHoldout(_Doc):
+    share: float = Field(description="the share of members in the holdout (0 when off)")
+    arm: str = Field(description="the arm holdout members get")
+
+
+class CompiledFeature(_Doc):
+    key: str
+    kind: Literal["numeric", "categorical"]
+
+
+class LeafNode(_Doc):
+    cohort: int
+
+
+class _Split(_Doc):
+    feature: int = Field(description="index into `features`")
+    left: int = Field(description="index into `nodes`")
+    right: int = Field(description="index into `nodes`")
+    default: Literal["left", "right"] = Field(description="where missing or unlisted values go")
+
+
+class NumericSplit(_Split):
+    threshold: float = Field(description="a present value x goes left when x < threshold")
+
+
+class CategoricalSplit(_Split):
+    left_levels: list[str] = Field(description="levels that go left (listed on both: left)")
+    right_levels: list[str]
+
+
+class CompiledPlanOut(_Doc):
+    """The portable compiled plan (format version 1, docs/compiled-plan.md). A node is a leaf
+    (`cohort` only), a numeric split (`threshold`) or a categorical split (`left_levels` and
+    `right_levels`); their keys tell them apart, as the document's readers do."""
+
+    format: Literal["apportion-compiled-plan"]
+    format_version: Literal[1]
     plan: str
     plan_version: int
-    revision: int
-    hashing: dict[str, Any]
-    arms: list[str]
-    holdout: dict[str, Any]
-    features: list[dict[str, str]]
-    nodes: list[dict[str, Any]]
-    cumulative: list[list[float]]
-    content_hash: str
+    revision: int = Field(description="the plan pointer's revision")
+    hashing: Hashing
+    arms: list[str] = Field(description="arm keys; the columns of `cumulative`")
+    holdout: CompiledHoldout
+    features: list[CompiledFeature]
+    nodes: list[LeafNode | NumericSplit | CategoricalSplit] = Field(
+        description="the decision tree in pre-order; node 0 is the root"
+    )
+    cumulative: list[list[float]] = Field(description="per cohort, cumulative arm shares")
+    content_hash: str = Field(description="'sha256:' and the hex digest; the ETag")

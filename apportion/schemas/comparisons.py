@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any, Literal
 
-from pydantic import BaseModel, Field
+from pydantic import BaseModel, Field, ValidationInfo, field_validator
 
 from apportion.schemas.common import (
     INT64_MAX,
@@ -15,6 +15,7 @@ from apportion.schemas.common import (
     Text,
     Timestamp,
 )
+from apportion.schemas.fitparams import MethodParams, params_for
 from apportion.schemas.plans import GuardrailIn, GuardrailSpec
 
 # ---- requests ----------------------------------------------------------------------------------
@@ -81,7 +82,17 @@ class ComparisonSpec(Answer):
     guardrails: list[GuardrailSpec]
     folds: int
     seed: int
-    params: dict[str, dict[str, Any]]
+    params: dict[str, MethodParams] = Field(
+        description="per cohort model method, its resolved parameters (without seed and "
+        "success metric: each fold's fit takes the comparison's)"
+    )
+
+    @field_validator("params", mode="before")
+    @classmethod
+    def _params_of_method(cls, value: Any, info: ValidationInfo) -> Any:
+        if not isinstance(value, dict):
+            return value
+        return {m: params_for(m, p, info.context) for m, p in value.items()}
 
 
 class HeldOutMetric(Answer):
@@ -147,15 +158,3 @@ class ComparisonListed(Answer):
 class ComparisonList(Answer):
     experiment: str
     comparisons: list[ComparisonListed]
-
-
-class FollowedComparison(Answer):
-    """The comparison a plan draft follows, as the draft's spec keeps it."""
-
-    number: int
-    href: str
-    candidate: str
-    recommended: str | None
-    follows_recommendation: bool
-    rank: int | None
-    status: str | None

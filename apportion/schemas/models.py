@@ -2,20 +2,20 @@
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, Field
+from pydantic import BaseModel, Field, ValidationInfo, model_validator
 
 from apportion.schemas.common import (
     INT64_MAX,
     Answer,
     JobStatus,
-    OpenAnswer,
     Override,
     ShortText,
     Timestamp,
 )
 from apportion.schemas.experiments import Estimate
+from apportion.schemas.fitparams import MethodParams, params_for
 
 ModelMethod = Literal[
     "global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree"
@@ -60,15 +60,160 @@ class Cohort(Answer):
     estimates: dict[str, dict[str, Estimate]] = Field(description="per metric, per arm")
 
 
+# ---- the partition (apportion/stats/partition.py, `Partition.to_dict`) -------------------------
+
+
+class PartitionFeature(Answer):
+    key: str
+    kind: Literal["numeric", "categorical"]
+    levels: list[str] = Field(description="a categorical feature's levels at fit time")
+
+
+class PartitionNode(Answer):
+    """A node of the partition tree: a leaf (`feature` -1) names its cohort; a split sends
+    `x < threshold` (numeric) or `left_levels` (categorical) left, and missing or unseen values
+    to the default side."""
+
+    feature: int = Field(description="index into `features`; -1 for a leaf")
+    threshold: float | None = Field(description="a numeric split's threshold, else null")
+    left_levels: list[str]
+    right_levels: list[str]
+    left: int = Field(description="left child's index; -1 for a leaf")
+    right: int = Field(description="right child's index; -1 for a leaf")
+    default_left: bool = Field(description="where missing and unseen values go")
+    cohort: int = Field(description="a leaf's cohort; -1 for a split")
+
+
+class PartitionView(Answer):
+    """The feature-space partition the cohorts are made of (several leaves may share a cohort)."""
+
+    features: list[PartitionFeature]
+    nodes: list[PartitionNode] = Field(description="node 0 is the root")
+    n_cohorts: int
+
+
+# ---- fit diagnostics (apportion/stats/models.py, decision.py, pushdown.py) ---------------------
+
+
+class TreeSplit(Answer):
+    node: int
+    feature: str
+    gain: float | None = Field(description="the split's criterion gain (null when not scored)")
+    depth: int
+
+
+class _FitDiagnostics(Answer):
+    n_cohorts: int
+    n_leaves: int
+    depth: int
+    features_used: list[str]
+    n_estimation: int = Field(description="units the estimates come from")
+    n_structure: int = Field(description="units the partition was chosen on")
+    seconds: float = Field(description="the fit's own time")
+    job_seconds: float = Field(description="the fit job's time")
+    engine: str | None = Field(
+        None, description="the fit engine of a readout above the in-memory limit"
+    )
+
+
+class GlobalDiagnostics(_FitDiagnostics):
+    method: Literal["global"]
+
+
+class SegmentsDiagnostics(_FitDiagnostics):
+    method: Literal["segments"]
+    splits: list[TreeSplit]
+
+
+class CausalTreeDiagnostics(_FitDiagnostics):
+    method: Literal["causal_tree"]
+    splits: list[TreeSplit]
+    root_pair_variance: list[list[float]] = Field(
+        description="the criterion's standardizers at the root (arm pairs x metrics)"
+    )
+    cv_penalty: float | None = Field(None, description="the chosen pruning penalty (with cv)")
+    cv_grid: list[float] | None = Field(None, description="the penalties cross-validated")
+    cv_scores: list[float | None] | None = Field(None, description="mean score per penalty")
+
+
+class IntersectDiagnostics(_FitDiagnostics):
+    method: Literal["intersect"]
+    splits: list[TreeSplit]
+    root_pair_variance: list[list[float]]
+    pair_tree_leaves: list[int] = Field(description="leaves of each arm pair x metric tree")
+
+
+class ArmMeansOutcomes(Answer):
+    kind: Literal["arm_means"]
+    folds: int
+
+
+class BoostedOutcomes(Answer):
+    kind: Literal["boosted"]
+    folds: int
+    out_of_fold_r2: list[float] = Field(description="per metric component")
+    boosting_iterations: list[int] = Field(description="fewest and most iterations")
+
+
+class ForestOutcomes(Answer):
+    kind: Literal["forest"]
+    folds: int
+    trees: int
+    tree_units: int
+    leaves_per_tree: list[int] = Field(description="fewest and most leaves")
+    splits_per_feature: dict[str, int]
+
+
+OutcomeModel = Annotated[
+    ArmMeansOutcomes | BoostedOutcomes | ForestOutcomes, Field(discriminator="kind")
+]
+
+
+class PricingRound(Answer):
+    prices_used: dict[str, float] = Field(description="per guardrail, the price split on")
+    thresholds_priced: dict[str, float]
+    leaves: int
+    structure_value: float
+    prices_after: dict[str, float] = Field(description="the prices the round's partition gives")
+
+
+class DecisionDiagnostics(_FitDiagnostics):
+    method: Literal["two_model", "forest", "policy_tree"]
+    splits: list[TreeSplit]
+    outcome_model: OutcomeModel
+    rounds: list[PricingRound]
+    chosen_round: int
+    guardrail_prices: dict[str, float]
+    price_units: str
+
+
+FitDiagnostics = Annotated[
+    GlobalDiagnostics
+    | SegmentsDiagnostics
+    | CausalTreeDiagnostics
+    | IntersectDiagnostics
+    | DecisionDiagnostics,
+    Field(discriminator="method"),
+]
+
+
+class FitParams(Answer):
+    """The parameters a fit was started with, as stored."""
+
+    method_params: MethodParams = Field(description="the method's parameters, resolved")
+    success_metric: str | None
+
+
 class ModelView(Answer):
     """A cohort model. Once fitted (status done) it has cohorts, arms, diagnostics, the resolved
-    parameters and the partition; when the fit failed it has an error."""
+    parameters and the partition; when the fit failed it has an error. The parameter models
+    are picked by `method`."""
 
     id: int
     experiment: str
     version: int
     method: str
-    params: dict[str, Any]
+    params: FitParams
     status: JobStatus
     job: str
     created_at: Timestamp
@@ -76,9 +221,23 @@ class ModelView(Answer):
     progress: float = Field(ge=0, le=1)
     cohorts: list[Cohort] | None = None
     arms: list[str] | None = None
-    diagnostics: OpenAnswer | None = Field(None, description="method-specific fit diagnostics")
-    resolved_params: dict[str, Any] | None = None
-    partition: dict[str, Any] | None = Field(
+    diagnostics: FitDiagnostics | None = Field(None, description="method-specific diagnostics")
+    resolved_params: MethodParams | None = None
+    partition: PartitionView | None = Field(
         None, description="the feature-space partition the cohorts are made of"
     )
     error: str | None = None
+
+    @model_validator(mode="before")
+    @classmethod
+    def _params_of_method(cls, data: Any, info: ValidationInfo) -> Any:
+        if not isinstance(data, dict):
+            return data
+        method, out = data.get("method"), dict(data)
+        if "resolved_params" in out:
+            out["resolved_params"] = params_for(method, out["resolved_params"], info.context)
+        params = out.get("params")
+        if isinstance(params, dict) and "method_params" in params:
+            mp = params_for(method, params["method_params"], info.context)
+            out["params"] = {**params, "method_params": mp}
+        return out

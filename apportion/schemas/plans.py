@@ -11,11 +11,11 @@ from typing import Annotated, Any, Literal
 
 from pydantic import (
     BaseModel,
+    BeforeValidator,
     ConfigDict,
     Field,
     ValidationError,
     ValidationInfo,
-    field_validator,
 )
 
 from apportion.schemas.common import (
@@ -26,6 +26,13 @@ from apportion.schemas.common import (
     ShortText,
     Text,
     Timestamp,
+)
+from apportion.schemas.reportparts import (
+    BootstrapPart,
+    CalibrationPart,
+    GuardrailPrice,
+    SolutionGuardrail,
+    SolverDiagnostics,
 )
 
 PlanMethod = Literal["deterministic", "chance", "stochastic"]
@@ -109,6 +116,14 @@ def options_for(method: str, options: Any) -> _Options | None:
         raise ValueError("; ".join(parts)) from None
 
 
+def _options_of_method(value: Any, info: ValidationInfo) -> Any:
+    return options_for(info.data.get("method", "chance"), value)
+
+
+# a model's `options` field, checked against the model's `method` (declared before it)
+MethodOptions = Annotated[SolverOptions | None, BeforeValidator(_options_of_method)]
+
+
 # ---- requests ----------------------------------------------------------------------------------
 
 
@@ -162,14 +177,9 @@ class DraftIn(BaseModel):
         description="the number of the experiment's comparison this draft's method follows; "
         "it must be done and have compared this model's method with this optimizer",
     )
-    options: SolverOptions | None = Field(
+    options: MethodOptions = Field(
         None, description="solver options; which ones depends on the method (422 otherwise)"
     )
-
-    @field_validator("options", mode="before")
-    @classmethod
-    def _options_of_method(cls, value: Any, info: ValidationInfo) -> Any:
-        return options_for(info.data.get("method", "chance"), value)
 
     def set_options(self) -> dict[str, Any]:
         """The solver options the caller set (none unset), as the solvers take them."""
@@ -213,6 +223,18 @@ class Holdout(Answer):
     arm: str
 
 
+class FollowedComparison(Answer):
+    """The comparison a plan draft follows, as the draft's spec keeps it."""
+
+    number: int
+    href: str
+    candidate: str
+    recommended: str | None
+    follows_recommendation: bool
+    rank: int | None
+    status: str | None
+
+
 class PlanSpec(OpenAnswer):
     """What a version was drafted from, as stored (defaults resolved)."""
 
@@ -225,12 +247,14 @@ class PlanSpec(OpenAnswer):
     draws: int
     seed: int
     notes: str | None
-    options: dict[str, Any] | None
+    options: MethodOptions = Field(
+        description="the solver options the caller set; which ones depends on the method"
+    )
     guardrails: list[GuardrailSpec]
     holdout: Holdout
     experiment: str
-    comparison: dict[str, Any] | None = Field(
-        None, description="the comparison the draft follows (number, candidate, rank, ...)"
+    comparison: FollowedComparison | None = Field(
+        None, description="the comparison the draft follows"
     )
 
 
@@ -323,12 +347,12 @@ class HeldOutPart(OpenAnswer):
 
 class SolutionPart(OpenAnswer):
     objective: float | None
-    guardrails: dict[str, Any] | list[Any] | None
+    guardrails: list[SolutionGuardrail] | None
     fractional_cohorts: int | list[int] | None
     binding: list[str] | None
     iterations: int | None
     seconds: float
-    diagnostics: dict[str, Any] | None
+    diagnostics: SolverDiagnostics | None
 
 
 class ImpactReport(OpenAnswer):
@@ -342,9 +366,9 @@ class ImpactReport(OpenAnswer):
     baseline: str | None = None
     metrics: list[ReportMetric] | None = None
     comparison: list[ReportComparisonRow] | None = None
-    bootstrap: dict[str, Any] | None = None
-    calibration: dict[str, Any] | None = None
-    guardrail_prices: list[dict[str, Any]] | None = None
+    bootstrap: BootstrapPart | None = None
+    calibration: CalibrationPart | None = None
+    guardrail_prices: list[GuardrailPrice] | None = None
     held_out: HeldOutPart | None = None
     solution: SolutionPart | None = None
     job: str | None = Field(None, description="the report job's URL while pending")
@@ -444,10 +468,31 @@ class PlanList(Answer):
     plans: list[PlanListed]
 
 
+class GroupUnits(Answer):
+    plan: int = Field(description="plan-exposed members")
+    holdout: int = Field(description="holdout members")
+
+
+class RollbackEvidence(Answer):
+    """Why the guardrail watch rolled a plan back: the worst breached guardrail's always-valid
+    interval of plan minus holdout, and the upload that showed it (apportion/usecases/watch.py)."""
+
+    guardrail: str
+    interval: list[float | None] = Field(description="lower and upper bound")
+    estimate: float | None
+    threshold: float | None = Field(description="the absolute threshold")
+    units: GroupUnits
+    alpha: float
+    upload: int = Field(description="the upload's number for the version")
+    uploaded_by: str = Field(description="the uploading key's owner")
+    uploaded_with_key: str = Field(description="the uploading key's name")
+    breached: list[str] = Field(description="every guardrail breached with enough units")
+
+
 class Switched(Answer):
     """An activation or rollback: the versions it moved between and the plan's new revision."""
 
     from_version: int | None
     to_version: int
     revision: int
-    evidence: dict[str, Any] | None = None
+    evidence: RollbackEvidence | None = Field(None, description="an automatic rollback's evidence")

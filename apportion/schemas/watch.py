@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Literal
 
 from pydantic import BaseModel, Field
 
 from apportion.schemas.common import INT64_MAX, Answer, Reason, Timestamp
-from apportion.schemas.plans import AutoRollback
+from apportion.schemas.plans import AutoRollback, RollbackEvidence
 
 GuardrailStatus = Literal["holding", "breached", "inconclusive"]
 
@@ -55,7 +55,7 @@ class RolledBack(Answer):
 
     to_version: int | None = None
     error: str | None = None
-    evidence: dict[str, Any]
+    evidence: RollbackEvidence
 
 
 class MonitorResult(Answer):

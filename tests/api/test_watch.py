@@ -14,6 +14,8 @@ from snapshots import module_snapshot
 from support import draft_plan, launch, scenario_model
 
 from apportion.demo.postlaunch import harm_to_beginners, post_launch_csv
+from apportion.schemas.common import STRICT, dump
+from apportion.schemas.watch import MonitorResult
 
 CSV = {"content-type": "text/csv"}
 
@@ -166,6 +168,8 @@ def test_confirmed_harm_rolls_back_once_with_evidence(client: TestClient, keys, 
         ).json()
         if out["rolled_back"]:
             rolled.append(batch)
+            # the answer as its schema declares it, undeclared keys refused (the evidence too)
+            assert dump(MonitorResult.model_validate(out, context=STRICT)) == out
     assert len(rolled) >= 1
     plan = client.get("/v1/plans/lesson-length", headers=keys.h(keys.reader)).json()
     assert plan["live_version"] == 1

@@ -15,6 +15,7 @@ from apportion.optimize.report import impact_report
 from apportion.optimize.sensitivity import guardrail_sensitivity
 from apportion.optimize.solve import Solution
 from apportion.schemas.plans import GuardrailSpec, ImpactReport, ReportMetric
+from apportion.schemas.reportparts import CalibrationPart
 from apportion.usecases.context import Services
 from apportion.usecases.models import moments_of
 from apportion.usecases.plans.source import live_allocation_on
@@ -103,7 +104,8 @@ def _apply_calibration(
     earlier guardrail probability stays under `probability_holds_uncalibrated`."""
     by_metric = {g["guardrail"]: g for g in view["guardrails"]}
     rows = [_calibrated_row(r, sign, by_metric, cal) for r in report.metrics or []]
-    return report.model_copy(update={"metrics": rows, "calibration": view})
+    calibration = CalibrationPart.model_validate(view)
+    return report.model_copy(update={"metrics": rows, "calibration": calibration})
 
 
 def _with_arm_keys(report: ImpactReport, arm_keys: tuple[str, ...]) -> ImpactReport:
