@@ -118,7 +118,9 @@ def upload(
             version=row.version,
             blob_sha256=sha,
             n_rows=int(new_table.n),
-            result=result,
+            # a copy: `result` changes below when the watch rolls back, and the row must then
+            # see a new value (a JSON column compares by value, so an aliased dict never updates)
+            result=dict(result),
             created_by=actor.name,
         )
         audit.append(

@@ -15,7 +15,7 @@ from support import draft_plan, launch, scenario_model
 
 from apportion.demo.postlaunch import harm_to_beginners, post_launch_csv
 from apportion.schemas.common import STRICT, dump
-from apportion.schemas.watch import MonitorResult
+from apportion.schemas.watch import MonitorResult, WatchView
 
 CSV = {"content-type": "text/csv"}
 
@@ -173,6 +173,11 @@ def test_confirmed_harm_rolls_back_once_with_evidence(client: TestClient, keys, 
     assert len(rolled) >= 1
     plan = client.get("/v1/plans/lesson-length", headers=keys.h(keys.reader)).json()
     assert plan["live_version"] == 1
+    # the watch of the rolled-back version says so (the upload's stored result records it)
+    watch = client.get("/v1/plans/lesson-length/watch", params={"version": 2},
+                       headers=keys.h(keys.reader)).json()  # fmt: skip
+    assert watch["rolled_back"] is not None
+    assert dump(WatchView.model_validate(watch, context=STRICT)) == watch
     assert [a["kind"] for a in plan["activations"]].count(
         "rollback"
     ) == 1  # exactly once, although later uploads still breach
