@@ -50,7 +50,13 @@ class ComparisonIn(BaseModel):
     confidence: float = Field(
         0.95, gt=0.5, lt=1, description="for every guardrail that states none"
     )
-    folds: int = Field(5, ge=2, le=20, description="cross-fitting folds (stratified by arm)")
+    folds: int | None = Field(
+        None,
+        ge=2,
+        le=20,
+        description="cross-fitting folds (stratified by arm); default 5, the cross-fitting's "
+        "own (apportion/optimize/crossfit.py FOLDS), which the service fills in",
+    )
     seed: int = Field(0, ge=0, le=INT64_MAX)
     params: dict[ShortText, dict[str, Any]] | None = Field(
         None, description="cohort model parameters per method, e.g. {'causal_tree': {...}}"

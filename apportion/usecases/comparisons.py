@@ -13,6 +13,7 @@ from apportion.domain import Actor
 from apportion.errors import InvalidInput, NotFound
 from apportion.optimize.crossfit import (
     COMPARISON_DRAWS,
+    FOLDS,
     check_folds,
     evaluate_candidates,
     parse_candidates,
@@ -98,7 +99,8 @@ def _model_params(
 
 def start(services: Services, *, key: str, command: ComparisonIn, actor: Actor) -> ComparisonQueued:
     candidates = parse_candidates(command.candidates)
-    folds, seed, success = command.folds, command.seed, command.success_metric
+    folds = command.folds if command.folds is not None else FOLDS  # the one default
+    seed, success = command.seed, command.success_metric
     guardrails = _resolve_guardrails(command)
     if any(g["metric"] == success for g in guardrails):
         raise InvalidInput(

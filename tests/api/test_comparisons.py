@@ -136,6 +136,26 @@ def test_too_few_rows_for_the_folds_is_422_naming_the_short_arms(
     assert _count(client, keys) == (0, 0)
 
 
+def test_the_default_fold_count_is_the_cross_fittings_own(
+    client: TestClient, keys, readout
+) -> None:  # type: ignore[no-untyped-def]
+    """The request leaves `folds` to the service, which takes optimize/crossfit.py's FOLDS (the
+    one default); the schema's description states the same number. Shown on a readout too small
+    for it: the refusal names FOLDS folds."""
+    from apportion.schemas.comparisons import ComparisonIn
+
+    assert f"default {crossfit.FOLDS}," in str(ComparisonIn.model_fields["folds"].description)
+    small = client.post(
+        "/v1/experiments/checkout-copy/readouts",
+        content=rows_csv(150, seed=5),
+        headers={**keys.h(keys.analyst), **CSV},
+    ).json()["version"]
+    body = {k: v for k, v in BODY.items() if k != "folds"}
+    r = client.post(URL, json={**body, "readout_version": small}, headers=keys.h(keys.analyst))
+    assert r.status_code == 422, r.text
+    assert f"too few rows for {crossfit.FOLDS} folds" in r.json()["detail"]
+
+
 def test_unknown_readout_and_experiment_are_404(client: TestClient, keys, readout) -> None:  # type: ignore[no-untyped-def]
     r = client.post(URL, json={**BODY, "readout_version": 9}, headers=keys.h(keys.analyst))
     assert r.status_code == 404 and "readout version 9" in r.json()["detail"]
