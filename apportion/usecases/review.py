@@ -1,7 +1,7 @@
 """What the review pages show, gathered in one place: a plan version with its report and diff, the
 plan's pointer (revision, live version, activations), the experiment's metric declarations (kind and
-direction, for units and the harmful side), the version's audit history, and the guardrail watch
-when that module is present. Read-only; the pages' actions go through the JSON lifecycle API."""
+direction, for units and the harmful side), the version's audit history, and the version's
+guardrail watch once it has uploads. Read-only; the pages' actions go through the JSON lifecycle API."""
 
 from __future__ import annotations
 
@@ -10,18 +10,14 @@ from typing import Any
 from apportion.errors import NotFound
 from apportion.schemas.common import dump
 from apportion.store import audit
-from apportion.usecases import experiments, plans
+from apportion.usecases import experiments, plans, watch
 from apportion.usecases.context import Services
 
 HISTORY_LIMIT = 1000
 
 
 def _watch(services: Services, plan: str, version: int) -> dict[str, Any] | None:
-    """The guardrail watch of this version, or None when the watch is absent or has no uploads."""
-    try:
-        from apportion.usecases import watch
-    except ImportError:  # the page works without the watch
-        return None
+    """The guardrail watch of this version, or None when it has no uploads."""
     try:
         w = dump(watch.get_watch(services, plan=plan, version=version))
     except NotFound:
