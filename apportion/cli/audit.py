@@ -57,7 +57,8 @@ def verify(json_out: Annotated[bool, typer.Option("--json")] = False) -> None:
     from apportion.cli.server import database
     from apportion.usecases.audit import verify as verify_chain
 
-    result = verify_chain(database()).model_dump(mode="json")
+    with database() as db:
+        result = verify_chain(db).model_dump(mode="json")
     if json_out:
         print(json.dumps(result))
     else:
@@ -78,9 +79,10 @@ def create(
     from apportion.usecases.auth import SYSTEM, create_key
     from apportion.usecases.operations import upgrade_database
 
-    db = database()
-    upgrade_database(db)
-    rec, secret = create_key(db, name=name, owner=owner or name, role=role.value, actor=SYSTEM)
+    with database() as db:
+        upgrade_database(db)
+        rec, secret = create_key(db, name=name, owner=owner or name, role=role.value,
+                                 actor=SYSTEM)  # fmt: skip
     console(stderr=True).print(
         f"created key {rec.id} '{rec.name}' with role {rec.role}; the secret is shown once:"
     )

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from enum import StrEnum
 from pathlib import Path
 from typing import Annotated, Any
@@ -20,11 +22,17 @@ KEEP_ALIVE_SECONDS = 75
 BACKLOG = 2048
 
 
-def database() -> Any:
-    """The database the settings name (APPORTION_DATABASE_URL, APPORTION_BLOB_URI)."""
+@contextmanager
+def database() -> Iterator[Any]:
+    """The database the settings name (APPORTION_DATABASE_URL, APPORTION_BLOB_URI), its
+    connections closed when the block ends (a command run in-process leaves none open)."""
     from apportion.usecases.operations import open_database
 
-    return open_database(get_settings())
+    db = open_database(get_settings())
+    try:
+        yield db
+    finally:
+        db.dispose()
 
 
 def serve(
@@ -106,12 +114,12 @@ def db(action: DbAction) -> None:
     """Bring the schema to the newest revision (upgrade), or compare it with it (status)."""
     from apportion.usecases.operations import migration_state, upgrade_database
 
-    d = database()
-    if action is DbAction.upgrade:
-        upgrade_database(d)
-        print(f"database at revision {migration_state(d)[0]}")
-        return
-    cur, head = migration_state(d)
+    with database() as d:
+        if action is DbAction.upgrade:
+            upgrade_database(d)
+            print(f"database at revision {migration_state(d)[0]}")
+            return
+        cur, head = migration_state(d)
     print(f"current {cur}, head {head}: {'up to date' if cur == head else 'behind'}")
     if cur != head:
         raise typer.Exit(1)

@@ -309,3 +309,30 @@ def test_plan_report_says_what_held_out_measures_and_warns_only_when_short(
     text = render.to_text(render.version_view(v))
     assert "scores the procedure, not this version" in text
     assert ("WARNING: The held-out active_days lift" in text) is warns
+
+
+def test_database_commands_close_their_connections(
+    db_url: str, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # `keys create`, `audit verify` and `db` open the store themselves; run in-process (a test,
+    # a script) they must leave no connection open (on PostgreSQL an open one outlives them)
+    from apportion.config import get_settings
+    from apportion.store.db import Database
+
+    disposed: list[Database] = []
+    real = Database.dispose
+
+    def spy(self: Database) -> None:
+        disposed.append(self)
+        real(self)
+
+    monkeypatch.setattr(Database, "dispose", spy)
+    monkeypatch.setenv("APPORTION_DATABASE_URL", db_url)
+    get_settings.cache_clear()
+    try:
+        assert main(["keys", "create", "--name", "k", "--role", "reader"]) == 0
+        assert main(["audit", "verify"]) == 0
+        assert main(["db", "status"]) == 0
+    finally:
+        get_settings.cache_clear()
+    assert len(disposed) == 3, capsys.readouterr()
