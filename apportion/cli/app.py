@@ -10,7 +10,7 @@ import sys
 
 import typer
 
-from apportion.cli import audit, comparisons, experiments, models, plans, server, watch
+from apportion.cli import audit, comparisons, demo, experiments, models, plans, server, watch
 from apportion.cli.common import LocalError, console
 from apportion.client import ClientError, JobFailed, JobTimeout, ProblemError, Unreachable
 
@@ -34,6 +34,7 @@ app.add_typer(models.job, name="job")
 app.add_typer(comparisons.comparison, name="comparison")
 app.add_typer(plans.plan_app, name="plan")
 app.add_typer(watch.watch, name="watch")
+app.add_typer(demo.demo, name="demo")
 for command in plans.top.registered_commands:
     app.registered_commands.append(command)
 
