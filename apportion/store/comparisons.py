@@ -8,7 +8,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from apportion.errors import NotFound
-from apportion.store.db import next_number, utcnow
+from apportion.store.jobrows import add_job_row
 from apportion.store.tables import Comparison
 
 
@@ -23,21 +23,17 @@ def add_comparison(
     created_by: str,
 ) -> Comparison:
     """The experiment's next comparison; the caller holds the experiment's lock (level 1)."""
-    row = Comparison(
+    return add_job_row(
+        session,
+        Comparison,
+        "number",
         experiment_id=experiment_id,
-        number=next_number(session, Comparison.number, Comparison.experiment_id == experiment_id),
+        job_id=job_id,
+        created_by=created_by,
         readout_id=readout_id,
         model_id=model_id,
         spec=spec,
-        status="queued",
-        job_id=job_id,
-        result=None,
-        created_at=utcnow(),
-        created_by=created_by,
     )
-    session.add(row)
-    session.flush()
-    return row
 
 
 def get_comparison(*, session: Session, experiment_id: int, number: int) -> Comparison:

@@ -8,7 +8,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from apportion.errors import NotFound
-from apportion.store.db import next_number, utcnow
+from apportion.store.jobrows import add_job_row
 from apportion.store.tables import CohortModel
 
 
@@ -23,23 +23,17 @@ def add_model(
     created_by: str,
 ) -> CohortModel:
     """The next model version of the experiment; the caller holds the experiment's lock."""
-    row = CohortModel(
+    return add_job_row(
+        session,
+        CohortModel,
+        "version",
         experiment_id=experiment_id,
-        version=next_number(
-            session, CohortModel.version, CohortModel.experiment_id == experiment_id
-        ),
+        job_id=job_id,
+        created_by=created_by,
         readout_id=readout_id,
         method=method,
         params=params,
-        status="queued",
-        job_id=job_id,
-        result=None,
-        created_at=utcnow(),
-        created_by=created_by,
     )
-    session.add(row)
-    session.flush()
-    return row
 
 
 def get_model(*, session: Session, model_id: int) -> CohortModel:
