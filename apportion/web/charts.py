@@ -134,6 +134,56 @@ def _clamp_anchor(x: float, left: float, right: float, margin: float = 60) -> st
     return "middle"
 
 
+def _chart_open(kind: str, *, width: int, height: float, uid: str, title: str) -> list[Markup]:
+    """The opening tag of a scalable chart (its title labels it) and its fill patterns."""
+    return [
+        _m(
+            '<svg xmlns="http://www.w3.org/2000/svg" class="chart {kind}" role="img" '
+            'viewBox="0 0 {width} {height}" width="100%" preserveAspectRatio="xMinYMin meet" '
+            'aria-labelledby="t-{uid}"><title id="t-{uid}">{title}</title>',
+            kind=kind,
+            width=width,
+            height=height,
+            uid=uid,
+            title=title,
+        ),
+        _defs(uid),
+    ]
+
+
+def _harm_zone(uid: str, x0: float, y0: float, x1: float, y1: float, opacity: str) -> list[Markup]:
+    """The hatched harmful side of a guardrail's limit, the box (x0, y0)-(x1, y1); none if empty."""
+    if not (x1 > x0 and y1 > y0):
+        return []
+    return [
+        _m(
+            '<rect x="{x}" y="{y}" width="{w}" height="{h}" fill="url(#harm-{uid})" '
+            'opacity="{opacity}"/>',
+            x=_n(x0),
+            y=_n(y0),
+            w=_n(x1 - x0),
+            h=_n(y1 - y0),
+            uid=uid,
+            opacity=opacity,
+        )
+    ]
+
+
+def _limit_line(x1: float, y1: float, x2: float, y2: float, threshold: float) -> Markup:
+    """A guardrail's limit: a dashed line carrying the exact threshold as data."""
+    return _line(
+        x1,
+        y1,
+        x2,
+        y2,
+        INK,
+        _m(
+            ' stroke-width="2" stroke-dasharray="5 3" class="limit" data-value="{v}"',
+            v=repr(threshold),
+        ),
+    )
+
+
 def interval_chart(
     *,
     uid: str,
@@ -155,32 +205,12 @@ def interval_chart(
     values = [v for v in values if math.isfinite(v)]
     sx = Scale(min(values), max(values), left, right)
     y_bar, top, bottom = 52.0, 26.0, 78.0
-    parts = [
-        _m(
-            '<svg xmlns="http://www.w3.org/2000/svg" class="chart interval" role="img" '
-            'viewBox="0 0 {width} 112" width="100%" preserveAspectRatio="xMinYMin meet" '
-            'aria-labelledby="t-{uid}"><title id="t-{uid}">{title}</title>',
-            width=width,
-            uid=uid,
-            title=_interval_title(estimate, lower, upper, corrected, threshold, fmt),
-        ),
-        _defs(uid),
-    ]
+    title = _interval_title(estimate, lower, upper, corrected, threshold, fmt)
+    parts = _chart_open("interval", width=width, height=112, uid=uid, title=title)
     if threshold is not None and harmful in ("above", "below"):
         xt = sx(threshold)
         x0, x1 = (xt, right) if harmful == "above" else (left, xt)
-        if x1 > x0:
-            parts.append(
-                _m(
-                    '<rect x="{x}" y="{y}" width="{w}" height="{h}" fill="url(#harm-{uid})" '
-                    'opacity="0.55"/>',
-                    x=_n(x0),
-                    y=_n(top),
-                    w=_n(x1 - x0),
-                    h=_n(bottom - top),
-                    uid=uid,
-                )
-            )
+        parts += _harm_zone(uid, x0, top, x1, bottom, "0.55")
     # axis with ticks at zero and the interval's ends
     parts.append(_line(left, bottom, right, bottom, RULE))
     x_zero = sx(0.0)
@@ -197,19 +227,7 @@ def interval_chart(
     )
     if threshold is not None:
         xt = sx(threshold)
-        parts.append(
-            _line(
-                xt,
-                top - 8,
-                xt,
-                bottom + 4,
-                INK,
-                _m(
-                    ' stroke-width="2" stroke-dasharray="5 3" class="limit" data-value="{v}"',
-                    v=repr(threshold),
-                ),
-            )
-        )
+        parts.append(_limit_line(xt, top - 8, xt, bottom + 4, threshold))
         parts.append(
             _text(
                 xt,
@@ -426,53 +444,22 @@ def watch_chart(
     sy = Scale(min(ys), max(ys), bottom, top)
     n = len(pts)
     step = (right - left) / max(n, 1)
-    parts = [
-        _m(
-            '<svg xmlns="http://www.w3.org/2000/svg" class="chart watch" role="img" '
-            'viewBox="0 0 {width} {height}" width="100%" preserveAspectRatio="xMinYMin meet" '
-            'aria-labelledby="t-{uid}"><title id="t-{uid}">{title}</title>',
-            width=width,
-            height=height,
-            uid=uid,
-            title=f"interval after each of {n} uploads; last {fmt(float(pts[-1]['lower']))} to "
-            f"{fmt(float(pts[-1]['upper']))}",
-        ),
-        _defs(uid),
-    ]
+    title = (
+        f"interval after each of {n} uploads; last {fmt(float(pts[-1]['lower']))} to "
+        f"{fmt(float(pts[-1]['upper']))}"
+    )
+    parts = _chart_open("watch", width=width, height=height, uid=uid, title=title)
     if threshold is not None and harmful in ("above", "below"):
         yt = sy(threshold)
         y0, y1 = (top, yt) if harmful == "above" else (yt, bottom)
-        if y1 > y0:
-            parts.append(
-                _m(
-                    '<rect x="{x}" y="{y}" width="{w}" height="{h}" fill="url(#harm-{uid})" '
-                    'opacity="0.45"/>',
-                    x=_n(left),
-                    y=_n(y0),
-                    w=_n(right - left),
-                    h=_n(y1 - y0),
-                    uid=uid,
-                )
-            )
+        parts += _harm_zone(uid, left, y0, right, y1, "0.45")
     y0 = sy(0.0)
     parts.append(_line(left, y0, right, y0, MUTED))
     parts.append(_text(left - 6, y0 + 4, "0", anchor="end", size=11, fill=MUTED))
     parts.append(_line(left, bottom, right, bottom, RULE))
     if threshold is not None:
         yt = sy(threshold)
-        parts.append(
-            _line(
-                left,
-                yt,
-                right,
-                yt,
-                INK,
-                _m(
-                    ' stroke-width="2" stroke-dasharray="5 3" class="limit" data-value="{v}"',
-                    v=repr(threshold),
-                ),
-            )
-        )
+        parts.append(_limit_line(left, yt, right, yt, threshold))
         parts.append(
             _text(
                 right + 6, yt + 4, f"limit {fmt(threshold)}", anchor="start", size=11, weight="bold"
