@@ -42,6 +42,9 @@ __all__ = ["METHODS", "CohortModelFit", "fit_cohort_model", "honest_split", "val
 METHODS = ("global", "segments", "causal_tree", "intersect", *DECISION_METHODS)
 MAX_SEGMENT_CELLS = 4096
 _HONEST = ("causal_tree", "intersect", *DECISION_METHODS)
+# methods that cannot run without a feature (their outcome models need at least one input);
+# the others fit one cohort when no feature is left
+_NEEDS_FEATURES = ("two_model", "forest")
 
 
 @dataclass(frozen=True)
@@ -183,6 +186,10 @@ def validate_params(
         out[name] = _check(name, p, params[name], fkeys, mkeys)
     if out["features"] is None:
         out["features"] = fkeys
+    if not out["features"] and method in _NEEDS_FEATURES:
+        why = "every declared feature is personalize: false" if excluded else "none is declared"
+        raise _bad("features", f"must name at least one feature for method '{method}', whose "
+                   f"outcome models take them as inputs ({why})", out["features"])  # fmt: skip
     if out.get("cv_folds") == 1:
         raise _bad("cv_folds", "must be 0 (off) or 2..20", 1)
     if "metric_weights" in out:

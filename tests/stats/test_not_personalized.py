@@ -73,10 +73,16 @@ def test_naming_the_feature_is_refused_and_the_default_leaves_it_out(method: str
         assert validate_params(method, {}, table)["features"] == ["x", "device"]
 
 
-def test_every_feature_excluded_leaves_one_cohort() -> None:
+@pytest.mark.parametrize("method", ["global", *sorted(CASES)])
+def test_every_feature_excluded_leaves_one_cohort_or_a_clear_refusal(method: str) -> None:
     table = effect_by_band_only(flagged=True)
     only = replace(table, features=(table.features[0],))
-    fit = fit_cohort_model(only, "causal_tree", CASES["causal_tree"])
+    params = CASES.get(method, {})
+    if method in ("two_model", "forest"):  # their outcome models need an input
+        with pytest.raises(InvalidInput, match="every declared feature is personalize: false"):
+            fit_cohort_model(only, method, params, success_metric="score")
+        return
+    fit = fit_cohort_model(only, method, params, success_metric="score")
     assert fit.partition.n_cohorts == 1 and not fit.partition.features
 
 
