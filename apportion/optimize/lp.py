@@ -5,6 +5,12 @@ mixed as guardrails bind); pure plans (one arm per cohort) by `milp` with binary
 
 The matrices are built once per problem and reused; extra rows (the chance method's tangent cuts)
 are appended per call. Rows and objective are scaled to unit max coefficient for HiGHS.
+
+The LPs go to HiGHS through its official Python bindings (`highspy`): the calibration re-solves a
+few hundred small LPs per plan, and `linprog`'s input checks and conversions took about 90 % of
+each call (bench/RESULTS.md, "Method comparison"). `linprog(method="highs-ds")` runs the same
+solver with the same options and is the fallback where highspy is not installed (an environment
+set up before it joined the dependencies); tests/optimize/test_lp.py checks both agree.
 """
 
 from __future__ import annotations
@@ -18,6 +24,13 @@ from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 
 from apportion.optimize.linear import Linear
 from apportion.optimize.values import metric_values
+
+try:  # the official HiGHS bindings (DEVELOPERS.md, "Dependencies")
+    import highspy as _highspy
+
+    HAVE_HIGHSPY = True
+except ImportError:  # pragma: no cover - an environment installed before highspy was added
+    HAVE_HIGHSPY = False
 
 TIE_BREAK = 1e-6  # relative weight of the secondary objective that prefers control, so ties keep members where they are
 
@@ -114,17 +127,10 @@ class LPModel:
         x = x / x.sum(axis=1, keepdims=True)
         return LPResult(x, 0, nit, str(res.message))
 
-    def _linprog(self, cost: np.ndarray, a_ub: Any, b_ub: np.ndarray, a_eq: Any, upper: Any) -> Any:
-        return linprog(
-            cost,
-            A_ub=a_ub if a_ub.shape[0] else None,
-            b_ub=b_ub if a_ub.shape[0] else None,
-            A_eq=a_eq,
-            b_eq=np.ones(a_eq.shape[0]),
-            bounds=np.column_stack([np.zeros(cost.size), upper]),
-            method="highs-ds",
-            options={"presolve": self.presolve},
-        )
+    def _linprog(
+        self, cost: np.ndarray, a_ub: Any, b_ub: np.ndarray, a_eq: Any, upper: Any
+    ) -> LPOut:
+        return solve_lp(cost, a_ub, b_ub, a_eq, upper, presolve=self.presolve)
 
     def _full(self, cost: np.ndarray, a_ub: Any, b_ub: np.ndarray) -> LPResult:
         c, j = self.shape
@@ -133,7 +139,7 @@ class LPModel:
             return LPResult(None, int(res.status), int(res.nit), str(res.message))
         x = np.clip(res.x.reshape(c, j), 0.0, None)
         x = x / x.sum(axis=1, keepdims=True)
-        duals = -res.ineqlin.marginals if a_ub.shape[0] else np.zeros(0)
+        duals = -res.ineq_marginals if a_ub.shape[0] else np.zeros(0)
         return LPResult(x, 0, int(res.nit), str(res.message), np.maximum(duals, 0.0))
 
     def _restricted(
@@ -175,7 +181,7 @@ class LPModel:
                     return None
                 free |= margin <= np.sort(margin)[min(c - 1, 2 * free.sum())]
                 continue
-            lam = np.maximum(-res.ineqlin.marginals, 0.0)
+            lam = np.maximum(-res.ineq_marginals, 0.0)
             score = cost2 + np.einsum("r,rcj->cj", lam, a3) + big
             best = score.min(axis=1)
             chosen = score[fx, fixed_arm[fx]]
@@ -194,7 +200,98 @@ class LPModel:
 
 def simplex_rows(c: int, j: int) -> sp.csr_matrix:
     """(C, C J) sparse rows sum_j x[c, j] = 1."""
-    return sp.kron(sp.eye(c, format="csr"), np.ones((1, j)), format="csr")
+    return sp.csr_matrix(
+        (np.ones(c * j), np.arange(c * j), np.arange(0, c * j + 1, j)), shape=(c, c * j)
+    )
+
+
+@dataclass
+class LPOut:
+    """What the LP solve returns, in `linprog`'s terms."""
+
+    status: int  # 0 optimal, 2 infeasible, 3 unbounded, 4 solver trouble
+    x: np.ndarray | None
+    nit: int
+    message: str
+    ineq_marginals: np.ndarray  # (R,) duals of the A_ub rows (<= 0 for a minimization)
+
+
+def solve_lp(
+    cost: np.ndarray,
+    a_ub: np.ndarray,
+    b_ub: np.ndarray,
+    a_eq: sp.csr_matrix,
+    upper: np.ndarray,
+    *,
+    presolve: bool = False,
+    force_linprog: bool = False,
+) -> LPOut:
+    """min cost . x subject to a_ub x <= b_ub, a_eq x = 1, 0 <= x <= upper, by the HiGHS dual
+    simplex: through highspy (one column-wise model handed to the solver as it is) or, without
+    it or when `force_linprog`, `scipy.optimize.linprog(method="highs-ds")`."""
+    if HAVE_HIGHSPY and not force_linprog:
+        return _solve_highspy(cost, a_ub, b_ub, a_eq, upper, presolve)
+    k = a_ub.shape[0]
+    res = linprog(
+        cost,
+        A_ub=a_ub if k else None,
+        b_ub=b_ub if k else None,
+        A_eq=a_eq,
+        b_eq=np.ones(a_eq.shape[0]),
+        bounds=np.column_stack([np.zeros(cost.size), upper]),
+        method="highs-ds",
+        options={"presolve": presolve},
+    )
+    marg = np.asarray(res.ineqlin.marginals) if k and res.x is not None else np.zeros(k)
+    return LPOut(int(res.status), res.x, int(res.nit), str(res.message), marg)
+
+
+def _solve_highspy(
+    cost: np.ndarray,
+    a_ub: np.ndarray,
+    b_ub: np.ndarray,
+    a_eq: sp.csr_matrix,
+    upper: np.ndarray,
+    presolve: bool,
+) -> LPOut:
+    n, k, m = cost.size, a_ub.shape[0], a_eq.shape[0]
+    a = sp.vstack([sp.csr_matrix(a_ub), a_eq], format="csc") if k else a_eq.tocsc()
+    lp = _highspy.HighsLp()
+    lp.num_col_, lp.num_row_ = n, k + m
+    lp.col_cost_ = np.ascontiguousarray(cost, dtype=np.float64)
+    lp.col_lower_ = np.zeros(n)
+    lp.col_upper_ = np.ascontiguousarray(upper, dtype=np.float64)
+    lp.row_lower_ = np.concatenate([np.full(k, -np.inf), np.ones(m)])
+    lp.row_upper_ = np.concatenate([np.asarray(b_ub, dtype=np.float64), np.ones(m)])
+    lp.a_matrix_.format_ = _highspy.MatrixFormat.kColwise
+    lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = n, k + m
+    lp.a_matrix_.start_ = a.indptr.astype(np.int32)
+    lp.a_matrix_.index_ = a.indices.astype(np.int32)
+    lp.a_matrix_.value_ = a.data.astype(np.float64)
+    h = _highspy.Highs()
+    # linprog(method="highs-ds")'s settings: the dual simplex, presolve as asked, no output
+    h.setOptionValue("output_flag", False)
+    h.setOptionValue("solver", "simplex")
+    h.setOptionValue("simplex_strategy", 1)
+    h.setOptionValue("presolve", "on" if presolve else "off")
+    h.passModel(lp)
+    h.run()
+    ms = h.getModelStatus()
+    nit = int(h.getInfo().simplex_iteration_count)
+    message = h.modelStatusToString(ms)
+    status_of = {
+        _highspy.HighsModelStatus.kOptimal: 0,
+        _highspy.HighsModelStatus.kInfeasible: 2,
+        _highspy.HighsModelStatus.kUnboundedOrInfeasible: 2,
+        _highspy.HighsModelStatus.kUnbounded: 3,
+    }
+    status = status_of.get(ms, 4)
+    if status != 0:
+        return LPOut(status, None, nit, message, np.zeros(k))
+    sol = h.getSolution()
+    x = np.asarray(sol.col_value, dtype=np.float64)
+    duals = np.asarray(sol.row_dual, dtype=np.float64)[:k]
+    return LPOut(0, x, nit, message, duals)
 
 
 def cut_row(lin: Linear, k: int, x0: np.ndarray, coef: float) -> tuple[np.ndarray, float] | None:
