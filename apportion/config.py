@@ -72,6 +72,13 @@ class Settings(BaseSettings):
         description="folds of the cross-fitted held-out evaluation each plan draft queues as a "
         "job (0 turns it off; the method comparison sets its own folds)",
     )
+    comparison_workers: int = Field(
+        0,
+        ge=0,
+        le=64,
+        description="processes that run a method comparison's folds at once (0: min(2, cores); "
+        "1: one fold after the other in the job's own process)",
+    )
     job_stale_seconds: float = Field(
         600.0, gt=0, description="a running job without a heartbeat this long is reclaimed"
     )

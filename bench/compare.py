@@ -9,7 +9,9 @@ per tenth); the figures go to stdout as one JSON line: total seconds, its ratio 
 fit seconds per model method summed over the folds, seconds per candidate (its share of its model's
 fits plus its optimizer), the recommendation, and the 1-minute load average at the start and end
 (the box is shared, so read the seconds beside the load).
-Run: .venv/bin/python bench/compare.py [n] [folds] [candidates, comma separated]
+Run: .venv/bin/python bench/compare.py [n] [folds] [candidates, comma separated] [workers]
+(workers: processes that run folds at once, default min(2, cores) as the comparison job; the JSON
+line says whether the LPs went through highspy or linprog).
 """
 
 from __future__ import annotations
@@ -28,9 +30,11 @@ from member import GUARDRAILS  # noqa: E402
 
 from apportion.optimize.crossfit import (  # noqa: E402
     COMPARISON_DRAWS,
+    default_workers,
     evaluate_candidates,
     parse_candidates,
 )
+from apportion.optimize.lp import HAVE_HIGHSPY  # noqa: E402
 from apportion.optimize.problem import Guardrail  # noqa: E402
 from apportion.stats.models import fit_cohort_model  # noqa: E402
 
@@ -40,6 +44,7 @@ def main() -> None:
     folds = int(sys.argv[2]) if len(sys.argv) > 2 else 5
     names = [c for c in sys.argv[3].split(",") if c] if len(sys.argv) > 3 else None
     candidates = parse_candidates(names)
+    workers = int(sys.argv[4]) if len(sys.argv) > 4 else default_workers()
     load_start = os.getloadavg()[0]
     table = readout(n)
     guardrails = tuple(
@@ -66,6 +71,7 @@ def main() -> None:
               for m in ("two_model", "forest", "policy_tree")}  # fmt: skip
     out = evaluate_candidates(table, candidates, success="active", guardrails=guardrails,
                               folds=folds, seed=0, progress=progress, draws=COMPARISON_DRAWS,
+                              workers=workers,
                               model_params={m: p for m, p in params.items()
                                             if any(c.model == m for c in candidates)})  # fmt: skip
     total = time.perf_counter() - t1
@@ -73,7 +79,8 @@ def main() -> None:
         "bench": "comparison",
         "n": n, "features": len(table.features), "arms": table.n_arms,
         "metrics": len(table.metrics), "folds": folds, "candidates": len(candidates),
-        "calibration_draws_per_fold_plan": COMPARISON_DRAWS,
+        "calibration_draws_per_fold_plan": COMPARISON_DRAWS, "workers": workers,
+        "lp": "highspy" if HAVE_HIGHSPY else "linprog",
         "seconds": round(total, 1), "reference_seconds": round(ref_s, 2),
         "ratio": round(total / ref_s, 2), "target_seconds": 600,
         "fit_seconds": out["fit_seconds"],

@@ -25,9 +25,13 @@ recommendation rule share the fold bookkeeping, and splitting them would pass it
 from __future__ import annotations
 
 import math
+import multiprocessing as mp
+import os
+import queue
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -227,6 +231,145 @@ def _metric_influence(
     return float(rx - rb), infl
 
 
+@dataclass
+class _FoldPlan:
+    """What every fold of a comparison shares (sent once to each worker process)."""
+
+    by_model: dict[str, list[Candidate]]
+    success: str
+    guardrails: tuple[Guardrail, ...]
+    seed: int
+    draws: int
+    model_params: dict[str, dict]
+
+
+@dataclass
+class _FoldOut:
+    """One fold's results: held-out scores of the test rows, per candidate."""
+
+    base: np.ndarray | None  # (n_test, Q) control scores; None when every model failed
+    psi: dict[str, np.ndarray] = field(default_factory=dict)  # candidate -> (n_test, Q)
+    no_plan: dict[str, bool] = field(default_factory=dict)
+    seconds: dict[str, float] = field(default_factory=dict)
+    fit_seconds: dict[str, float] = field(default_factory=dict)
+    failed: dict[str, str] = field(default_factory=dict)  # candidate -> why (a domain error)
+
+
+def _run_fold(
+    table: UnitTable, fold: np.ndarray, f: int, plan: _FoldPlan, tick: Callable[[int], None]
+) -> _FoldOut:
+    """Fit every model on the other folds, solve every candidate on its model's fit and score
+    the plans on fold f. A fold depends on nothing another fold computed, so the folds run in
+    any order or at once and give the same numbers."""
+    train, test = np.flatnonzero(fold != f), np.flatnonzero(fold == f)
+    tr = table.take(train)
+    out = _FoldOut(base=None)
+    for model, group in plan.by_model.items():
+        t0 = time.perf_counter()
+        try:
+            fit = fit_model(tr, model, success=plan.success, guardrails=plan.guardrails,
+                            seed=plan.seed + f, model_params=plan.model_params.get(model))  # fmt: skip
+        except InvalidInput as exc:  # a domain refusal; a defect still fails the job
+            for cand in group:
+                out.failed[cand.name] = f"fold {f + 1}: the {model} fit failed: {exc.detail}"
+            tick(1 + len(group))
+            continue
+        out.fit_seconds[model] = time.perf_counter() - t0
+        fit_share = out.fit_seconds[model] / len(group)
+        tick(1)
+        if out.base is None:  # control scores from the first model that fitted in this fold
+            out.base = _control_scores(table, fit, test)
+        for cand in group:
+            t0 = time.perf_counter()
+            try:
+                x, prob = solve_on_fit(tr, fit, cand, success=plan.success,
+                                       guardrails=plan.guardrails, seed=plan.seed + f,
+                                       draws=plan.draws)  # fmt: skip
+            except InvalidInput as exc:  # a domain refusal; a defect still fails the job
+                out.failed[cand.name] = (
+                    f"fold {f + 1}: the {cand.optimizer} plan failed: {exc.detail}"
+                )
+                tick(1)
+                continue
+            out.psi[cand.name] = _scores(table, fit, x, test)
+            out.no_plan[cand.name] = prob is None
+            out.seconds[cand.name] = fit_share + time.perf_counter() - t0
+            tick(1)
+    return out
+
+
+# ---- the folds in worker processes ---------------------------------------------------------------
+# Spawned, not forked: the parent may be a server with threads and OpenMP already running
+# (scikit-learn's boosting), and neither survives a fork safely. Each worker gets the table, the
+# fold ids and the plan once (initializer); progress comes back through a queue as step counts, and
+# a cancel event stops a worker at its next step when the job is abandoned.
+
+_WORKER: dict[str, Any] = {}
+
+
+class _Cancelled(Exception):
+    """The comparison was abandoned (its job was reclaimed or failed in the parent)."""
+
+
+def _init_worker(table: UnitTable, fold: np.ndarray, plan: _FoldPlan, steps: Any,
+                 cancel: Any) -> None:  # fmt: skip
+    _WORKER.update(table=table, fold=fold, plan=plan, steps=steps, cancel=cancel)
+
+
+def _worker_fold(f: int) -> _FoldOut:
+    w = _WORKER
+
+    def tick(k: int) -> None:
+        if w["cancel"].is_set():
+            raise _Cancelled
+        w["steps"].put(k)
+
+    return _run_fold(w["table"], w["fold"], f, w["plan"], tick)
+
+
+def _folds_in_processes(
+    table: UnitTable,
+    fold: np.ndarray,
+    folds: int,
+    plan: _FoldPlan,
+    workers: int,
+    tick: Callable[[int], None],
+) -> list[_FoldOut]:
+    ctx = mp.get_context("spawn")
+    steps, cancel = ctx.Queue(), ctx.Event()
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
+                               initargs=(table, fold, plan, steps, cancel))  # fmt: skip
+    try:
+        futures = [pool.submit(_worker_fold, f) for f in range(folds)]
+        pending = set(futures)
+        while pending:
+            try:
+                tick(steps.get(timeout=0.2))
+            except queue.Empty:
+                pass
+            pending = {fu for fu in pending if not fu.done()}
+            for fu in futures:
+                if fu.done() and fu.exception() is not None:
+                    raise fu.exception()  # type: ignore[misc]
+        while True:  # the last steps may still be in the queue
+            try:
+                tick(steps.get(timeout=0.05))
+            except queue.Empty:
+                break
+        return [fu.result() for fu in futures]
+    except BaseException:
+        cancel.set()  # running folds stop at their next step; queued ones never start
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    finally:
+        pool.shutdown(wait=False)
+
+
+def default_workers() -> int:
+    """Worker processes for a comparison's folds: min(2, cores)."""
+    return max(1, min(2, os.cpu_count() or 1))
+
+
 def evaluate_candidates(
     table: UnitTable,
     candidates: list[Candidate],
@@ -238,9 +381,11 @@ def evaluate_candidates(
     model_params: dict[str, dict] | None = None,
     progress: Callable[[float], None] | None = None,
     draws: int = FOLD_DRAWS,
+    workers: int = 1,
 ) -> dict:
     """Cross-fit every candidate and rank them (see the module docstring and `recommend`);
-    `draws`: calibration draws per fold plan."""
+    `draws`: calibration draws per fold plan; `workers`: processes that run folds at once (1: in
+    this process, one fold after the other; the result is the same either way)."""
     check_folds({str(k): int(v) for k, v in
                  zip(table.arm_keys, np.bincount(table.arm, minlength=table.n_arms), strict=True)},
                 folds)  # fmt: skip
@@ -248,69 +393,45 @@ def evaluate_candidates(
     fold = fold_ids(table.arm, folds, seed)
     n = table.n
     keys = [success] + [g.metric for g in guardrails]
-    psi = {c.name: np.zeros((n, len(table.component_names()))) for c in candidates}
-    base = np.zeros((n, len(table.component_names())))
-    infeasible = {c.name: 0 for c in candidates}
-    fold_vals: dict[str, list[dict[str, float]]] = {c.name: [] for c in candidates}
-    seconds = {c.name: 0.0 for c in candidates}
     by_model: dict[str, list[Candidate]] = {}
     for cand in candidates:  # each model is fitted once per fold; every optimizer reuses it
         by_model.setdefault(cand.model, []).append(cand)
+    plan = _FoldPlan(by_model, success, guardrails, seed, draws, dict(model_params or {}))
     steps, done = folds * (len(by_model) + len(candidates)), 0
-    fit_seconds = dict.fromkeys(by_model, 0.0)
 
-    def tick(steps_done: int = 1) -> None:
+    def tick(steps_done: int) -> None:
         nonlocal done
         done += steps_done
         if progress is not None:
             progress(done / steps)
 
-    failed: dict[str, str] = {}  # candidate -> why it left the comparison (a domain error)
-    for f in range(folds):
-        train, test = np.flatnonzero(fold != f), np.flatnonzero(fold == f)
-        tr = table.take(train)
-        have_base = False
-        for model, group in by_model.items():
-            live = [c for c in group if c.name not in failed]
-            if not live:  # the model failed in an earlier fold: its steps are skipped
-                tick(1 + len(group))
-                continue
-            t0 = time.perf_counter()
-            try:
-                fit = fit_model(tr, model, success=success, guardrails=guardrails, seed=seed + f,
-                                model_params=(model_params or {}).get(model))  # fmt: skip
-            except InvalidInput as exc:  # a domain refusal; a defect still fails the job
-                for cand in live:
-                    failed[cand.name] = f"fold {f + 1}: the {model} fit failed: {exc.detail}"
-                tick(1 + len(group))
-                continue
-            fit_seconds[model] += time.perf_counter() - t0
-            fit_share = (time.perf_counter() - t0) / len(live)
-            tick()
-            if not have_base:  # control scores from the first model that fitted in this fold
-                base[test] = _control_scores(table, fit, test)
-                have_base = True
-            for cand in group:
-                if cand.name in failed:
-                    tick()
-                    continue
-                t0 = time.perf_counter()
-                try:
-                    x, prob = solve_on_fit(tr, fit, cand, success=success,
-                                           guardrails=guardrails, seed=seed + f,
-                                           draws=draws)  # fmt: skip
-                except InvalidInput as exc:  # a domain refusal; a defect still fails the job
-                    failed[cand.name] = (
-                        f"fold {f + 1}: the {cand.optimizer} plan failed: {exc.detail}"
-                    )
-                    tick()
-                    continue
-                psi[cand.name][test] = _scores(table, fit, x, test)
-                infeasible[cand.name] += prob is None
-                seconds[cand.name] += fit_share + time.perf_counter() - t0
-                tick()
-        if not have_base:
+    if workers > 1 and folds > 1:
+        outs = _folds_in_processes(table, fold, folds, plan, min(workers, folds), tick)
+    else:
+        outs = [_run_fold(table, fold, f, plan, tick) for f in range(folds)]
+
+    q = len(table.component_names())
+    psi = {c.name: np.zeros((n, q)) for c in candidates}
+    base = np.zeros((n, q))
+    infeasible = {c.name: 0 for c in candidates}
+    fold_vals: dict[str, list[dict[str, float]]] = {c.name: [] for c in candidates}
+    seconds = {c.name: 0.0 for c in candidates}
+    fit_seconds = dict.fromkeys(by_model, 0.0)
+    failed: dict[str, str] = {}  # candidate -> why it left (the first fold where it failed)
+    for f, fo in enumerate(outs):
+        for name, why in fo.failed.items():
+            failed.setdefault(name, why)
+        for model, s in fo.fit_seconds.items():
+            fit_seconds[model] += s
+        for name, s in fo.seconds.items():
+            seconds[name] += s
+        if fo.base is None:
             break  # every model failed in this fold: nothing is left to compare
+        test = np.flatnonzero(fold == f)
+        base[test] = fo.base
+        for name, p in fo.psi.items():
+            psi[name][test] = p
+            infeasible[name] += fo.no_plan[name]
         for cand in candidates:
             if cand.name in failed:
                 continue
