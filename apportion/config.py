@@ -77,7 +77,8 @@ class Settings(BaseSettings):
         ge=0,
         le=64,
         description="processes that run a method comparison's folds at once (0: min(2, cores); "
-        "1: one fold after the other in the job's own process)",
+        "1: one fold after the other in the job's own process; readouts under 50,000 units "
+        "always run in the job's process)",
     )
     job_stale_seconds: float = Field(
         600.0, gt=0, description="a running job without a heartbeat this long is reclaimed"

@@ -30,7 +30,7 @@ from member import GUARDRAILS  # noqa: E402
 
 from apportion.optimize.crossfit import (  # noqa: E402
     COMPARISON_DRAWS,
-    default_workers,
+    comparison_workers,
     evaluate_candidates,
     parse_candidates,
 )
@@ -44,7 +44,7 @@ def main() -> None:
     folds = int(sys.argv[2]) if len(sys.argv) > 2 else 5
     names = [c for c in sys.argv[3].split(",") if c] if len(sys.argv) > 3 else None
     candidates = parse_candidates(names)
-    workers = int(sys.argv[4]) if len(sys.argv) > 4 else default_workers()
+    workers = comparison_workers(int(sys.argv[4]) if len(sys.argv) > 4 else 0, n)
     load_start = os.getloadavg()[0]
     table = readout(n)
     guardrails = tuple(

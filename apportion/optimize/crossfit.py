@@ -365,9 +365,18 @@ def _folds_in_processes(
         pool.shutdown(wait=False)
 
 
-def default_workers() -> int:
-    """Worker processes for a comparison's folds: min(2, cores)."""
-    return max(1, min(2, os.cpu_count() or 1))
+# Below this many units the folds run in the job's own process: a worker starts a fresh
+# interpreter that imports numpy, scipy and scikit-learn (2 to 3 s measured on the 2-core box
+# under load) and receives the table, which costs more than folds of that size take.
+PROCESS_MIN_UNITS = 50_000
+
+
+def comparison_workers(configured: int, units: int) -> int:
+    """Worker processes for a comparison's folds: `configured` (0: min(2, cores)), or 1 for a
+    readout under PROCESS_MIN_UNITS units."""
+    if units < PROCESS_MIN_UNITS:
+        return 1
+    return configured or max(1, min(2, os.cpu_count() or 1))
 
 
 def evaluate_candidates(

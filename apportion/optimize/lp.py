@@ -15,6 +15,7 @@ set up before it joined the dependencies); tests/optimize/test_lp.py checks both
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 from typing import Any
 
@@ -246,6 +247,39 @@ def solve_lp(
     return LPOut(int(res.status), res.x, int(res.nit), str(res.message), marg)
 
 
+_HIGHS = threading.local()  # one solver per thread, reused: a new model replaces the last one
+
+
+def _highs(presolve: bool) -> Any:
+    h = getattr(_HIGHS, "solver", None)
+    if h is None:
+        h = _highspy.Highs()
+        # linprog(method="highs-ds")'s settings: the dual simplex, no output
+        h.setOptionValue("output_flag", False)
+        h.setOptionValue("solver", "simplex")
+        h.setOptionValue("simplex_strategy", 1)
+        _HIGHS.solver = h
+    h.setOptionValue("presolve", "on" if presolve else "off")
+    return h
+
+
+def _colwise(a_ub: np.ndarray, a_eq: sp.csr_matrix) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Column-wise (start, index, value) of the rows [a_ub; a_eq]: the nonzeros of the dense
+    a_ub, then a_eq's, each column's entries in row order (numpy only: scipy's sparse stacking
+    cost more than the solve on these small LPs)."""
+    k, n = a_ub.shape
+    col_u, row_u = np.nonzero(a_ub.T)
+    eq = a_eq.tocsr()
+    row_e = k + np.repeat(np.arange(eq.shape[0]), np.diff(eq.indptr))
+    col = np.concatenate([col_u, eq.indices])
+    row = np.concatenate([row_u, row_e])
+    val = np.concatenate([a_ub.T[col_u, row_u], eq.data]).astype(np.float64)
+    order = np.lexsort((row, col))
+    start = np.zeros(n + 1, dtype=np.int32)
+    np.cumsum(np.bincount(col, minlength=n), out=start[1:])
+    return start, row[order].astype(np.int32), val[order]
+
+
 def _solve_highspy(
     cost: np.ndarray,
     a_ub: np.ndarray,
@@ -255,26 +289,17 @@ def _solve_highspy(
     presolve: bool,
 ) -> LPOut:
     n, k, m = cost.size, a_ub.shape[0], a_eq.shape[0]
-    a = sp.vstack([sp.csr_matrix(a_ub), a_eq], format="csc") if k else a_eq.tocsc()
-    lp = _highspy.HighsLp()
-    lp.num_col_, lp.num_row_ = n, k + m
-    lp.col_cost_ = np.ascontiguousarray(cost, dtype=np.float64)
-    lp.col_lower_ = np.zeros(n)
-    lp.col_upper_ = np.ascontiguousarray(upper, dtype=np.float64)
-    lp.row_lower_ = np.concatenate([np.full(k, -np.inf), np.ones(m)])
-    lp.row_upper_ = np.concatenate([np.asarray(b_ub, dtype=np.float64), np.ones(m)])
-    lp.a_matrix_.format_ = _highspy.MatrixFormat.kColwise
-    lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = n, k + m
-    lp.a_matrix_.start_ = a.indptr.astype(np.int32)
-    lp.a_matrix_.index_ = a.indices.astype(np.int32)
-    lp.a_matrix_.value_ = a.data.astype(np.float64)
-    h = _highspy.Highs()
-    # linprog(method="highs-ds")'s settings: the dual simplex, presolve as asked, no output
-    h.setOptionValue("output_flag", False)
-    h.setOptionValue("solver", "simplex")
-    h.setOptionValue("simplex_strategy", 1)
-    h.setOptionValue("presolve", "on" if presolve else "off")
-    h.passModel(lp)
+    start, index, value = _colwise(np.asarray(a_ub, dtype=np.float64).reshape(k, n), a_eq)
+    h = _highs(presolve)
+    h.passModel(
+        n, k + m, int(index.size), int(_highspy.MatrixFormat.kColwise),
+        int(_highspy.ObjSense.kMinimize), 0.0,
+        np.ascontiguousarray(cost, dtype=np.float64), np.zeros(n),
+        np.ascontiguousarray(upper, dtype=np.float64),
+        np.concatenate([np.full(k, -np.inf), np.ones(m)]),
+        np.concatenate([np.asarray(b_ub, dtype=np.float64), np.ones(m)]),
+        start, index, value, np.zeros(n, dtype=np.int32),  # every column continuous
+    )  # fmt: skip
     h.run()
     ms = h.getModelStatus()
     nit = int(h.getInfo().simplex_iteration_count)

@@ -15,7 +15,7 @@ from apportion.optimize.crossfit import (
     COMPARISON_DRAWS,
     FOLDS,
     check_folds,
-    default_workers,
+    comparison_workers,
     evaluate_candidates,
     parse_candidates,
 )
@@ -202,7 +202,7 @@ def _run(services: Services, job: Job, progress: Any) -> None:
         model_params=spec["params"],
         progress=lambda p: progress(0.02 + 0.97 * p),
         draws=COMPARISON_DRAWS,
-        workers=services.settings.comparison_workers or default_workers(),
+        workers=comparison_workers(services.settings.comparison_workers, table.n),
     )
     with services.db.write() as s:  # lock order (store/db.py): the job row, then the comparison
         job_repo.finish(session=s, job=job)

@@ -153,3 +153,35 @@ def test_folds_in_two_worker_processes_give_the_sequential_table():
     assert table_of(runs[2]) == table_of(runs[1])
     assert runs[2]["recommended"] == runs[1]["recommended"]
     assert runs[2]["reason"] == runs[1]["reason"]
+
+
+def test_an_abandoned_comparison_stops_its_worker_processes():
+    # The job runner abandons a comparison by raising from its progress callback (JobLost when
+    # the job was reclaimed): that error must reach the caller, and the worker processes must
+    # stop at their next step instead of computing the remaining folds.
+    import multiprocessing as mp
+    import time
+
+    class Abandoned(Exception):
+        pass
+
+    def progress(p: float) -> None:
+        raise Abandoned
+
+    table = d.simulate(6_000, "opposed", 0.5, 2)
+    cands = parse_candidates(["global/deterministic", "causal_tree/chance"])
+    with pytest.raises(Abandoned):
+        evaluate_candidates(table, cands, success="y0", guardrails=G, folds=4, seed=1, draws=5,
+                            progress=progress, workers=2)  # fmt: skip
+    deadline = time.monotonic() + 60  # a bound on the wait, not a speed claim
+    while mp.active_children() and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert mp.active_children() == []
+
+
+def test_small_readouts_run_their_folds_in_the_jobs_process():
+    from apportion.optimize.crossfit import PROCESS_MIN_UNITS, comparison_workers
+
+    assert comparison_workers(0, PROCESS_MIN_UNITS - 1) == 1
+    assert comparison_workers(3, PROCESS_MIN_UNITS) == 3
+    assert 1 <= comparison_workers(0, PROCESS_MIN_UNITS) <= 2
