@@ -35,7 +35,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run as a script 
 
 from apportion.lookup import Plan
 from apportion.serving.hashing import hash_state, uniform_from_state, uniforms_from_state
-from apportion.serving.index import CompiledPlan, compile_plan, new_salt
+from apportion.serving.index import CompiledPlan, PlanParts, compile_plan, new_salt
 from apportion.serving.portable import document_bytes
 from apportion.stats.partition import Partition
 from apportion.stats.table import FeatureSpec
@@ -113,14 +113,16 @@ def build(seed: int = 7, depth: int = 8, n_cohorts: int = 24) -> CompiledPlan:
     p = random_partition(rng, depth=depth, n_cohorts=n_cohorts)
     alloc = rng.dirichlet(np.ones(3), size=p.n_cohorts)
     return compile_plan(
-        plan="bench",
-        version=1,
-        partition=p,
-        allocation=alloc,
-        arm_keys=("control", "short", "long"),
-        holdout_share=0.1,
-        holdout_arm="control",
-        salt=new_salt(),
+        PlanParts(
+            plan="bench",
+            version=1,
+            partition=p,
+            allocation=alloc,
+            arm_keys=("control", "short", "long"),
+            holdout_share=0.1,
+            holdout_arm="control",
+            salt=new_salt(),
+        )
     )
 
 

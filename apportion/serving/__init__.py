@@ -5,12 +5,20 @@ version into an immutable `CompiledPlan`; `PlanRegistry` holds the active ones p
 `RevisionPoller` keeps them in step with the store.
 """
 
-from apportion.serving.index import Assignment, CompiledPlan, compile_plan, new_salt, unit_uniform
+from apportion.serving.index import (
+    Assignment,
+    CompiledPlan,
+    PlanParts,
+    compile_plan,
+    new_salt,
+    unit_uniform,
+)
 from apportion.serving.registry import PlanRegistry, RevisionPoller
 
 __all__ = [
     "Assignment",
     "CompiledPlan",
+    "PlanParts",
     "PlanRegistry",
     "RevisionPoller",
     "compile_plan",

@@ -23,6 +23,7 @@ route) raises InvalidInput naming the feature and the member. bool is not numeri
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any
 
@@ -42,6 +43,7 @@ from apportion.stats.table import FeatureSpec
 __all__ = [
     "Assignment",
     "CompiledPlan",
+    "PlanParts",
     "compile_plan",
     "new_salt",
     "unit_uniform",
@@ -50,6 +52,23 @@ __all__ = [
 # The answer type is the portable evaluator's (apportion/lookup.py): the server's single lookup runs
 # that module's walk and draws, so the two evaluators share one implementation.
 Assignment = Answer
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class PlanParts:
+    """What a plan version compiles from (`compile_plan`): its identity (plan, version and the
+    pointer's revision), the model's partition, the (C, J) allocation over `arm_keys`, the
+    holdout (share and arm) and the hashing salt. Checked when compiled, not here."""
+
+    plan: str
+    version: int
+    partition: Partition
+    allocation: np.ndarray
+    arm_keys: tuple[str, ...]
+    holdout_share: float
+    holdout_arm: str
+    salt: str
+    revision: int = 0
 
 
 class CompiledPlan:
@@ -111,21 +130,16 @@ class CompiledPlan:
     _cum_lists: tuple[tuple[float, ...], ...]
     _portable: list[tuple[bytes, str]]
 
-    def __init__(
-        self,
-        *,
-        plan: str,
-        version: int,
-        partition: Partition,
-        allocation: np.ndarray,
-        arm_keys: tuple[str, ...],
-        holdout_share: float,
-        holdout_arm: str,
-        salt: str,
-        revision: int = 0,
-    ) -> None:
+    def __init__(self, parts: PlanParts) -> None:
         s = object.__setattr__
-        arm_keys = tuple(arm_keys)
+        plan, version, revision, partition = (
+            parts.plan,
+            parts.version,
+            parts.revision,
+            parts.partition,
+        )
+        holdout_share, holdout_arm, salt = parts.holdout_share, parts.holdout_arm, parts.salt
+        allocation, arm_keys = parts.allocation, tuple(parts.arm_keys)
         check_header(plan, version, revision, arm_keys, holdout_share, holdout_arm, salt)
         shares, cum = check_allocation(allocation, partition.n_cohorts, arm_keys)
         depth = check_tree(partition)
@@ -207,32 +221,11 @@ class CompiledPlan:
         return batch.columns_compact(self, member_ids, columns)
 
 
-def compile_plan(
-    *,
-    plan: str,
-    version: int,
-    partition: Partition,
-    allocation: np.ndarray,
-    arm_keys: tuple[str, ...],
-    holdout_share: float,
-    holdout_arm: str,
-    salt: str,
-    revision: int = 0,
-) -> CompiledPlan:
-    """Compile a plan version. `allocation`: (n_cohorts, n_arms), rows sum to 1 (to 1e-6).
+def compile_plan(parts: PlanParts) -> CompiledPlan:
+    """Compile a plan version. `parts.allocation`: (n_cohorts, n_arms), rows sum to 1 (to 1e-6).
 
     Raises InvalidInput for a malformed partition (bad child, cycle, cohort out of range), an
     allocation of the wrong shape or with negative / non-summing rows, an unknown holdout arm, a
     holdout share outside [0, 1), or a bad salt.
     """
-    return CompiledPlan(
-        plan=plan,
-        version=version,
-        partition=partition,
-        allocation=allocation,
-        arm_keys=arm_keys,
-        holdout_share=holdout_share,
-        holdout_arm=holdout_arm,
-        salt=salt,
-        revision=revision,
-    )
+    return CompiledPlan(parts)

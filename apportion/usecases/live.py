@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 
 from apportion.observability import LIVE_VERSION
-from apportion.serving.index import CompiledPlan, compile_plan
+from apportion.serving.index import CompiledPlan, PlanParts, compile_plan
 from apportion.serving.portable import document_bytes
 from apportion.serving.registry import PlanRegistry, RevisionPoller
 from apportion.stats.partition import Partition
@@ -37,15 +37,17 @@ def new_registry() -> PlanRegistry:
 def compile_version(row: Any, partition: Partition, *, revision: int) -> CompiledPlan:
     alloc = row.allocation
     return compile_plan(
-        plan=row.plan,
-        version=row.version,
-        partition=partition,
-        allocation=np.array(alloc["matrix"], dtype=np.float64),
-        arm_keys=tuple(alloc["arms"]),
-        holdout_share=float(row.spec["holdout"]["share"]),
-        holdout_arm=str(row.spec["holdout"]["arm"]),
-        salt=row.salt,
-        revision=revision,
+        PlanParts(
+            plan=row.plan,
+            version=row.version,
+            partition=partition,
+            allocation=np.array(alloc["matrix"], dtype=np.float64),
+            arm_keys=tuple(alloc["arms"]),
+            holdout_share=float(row.spec["holdout"]["share"]),
+            holdout_arm=str(row.spec["holdout"]["arm"]),
+            salt=row.salt,
+            revision=revision,
+        )
     )
 
 

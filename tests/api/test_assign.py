@@ -17,7 +17,7 @@ from support import Keys, make_keys, make_settings
 
 from apportion.lookup import Plan
 from apportion.observability import REGISTRY
-from apportion.serving.index import compile_plan
+from apportion.serving.index import PlanParts, compile_plan
 
 PLAN = "lesson-length"
 ARMS = ("five", "ten", "fifteen", "adaptive")
@@ -27,15 +27,17 @@ PROBLEM = "application/problem+json"
 def _compiled(version: int = 1, revision: int = 1):  # type: ignore[no-untyped-def]
     alloc = np.array([[0.5, 0.0, 0.5, 0.0], [0.0, 0.0, 0.0, 1.0], [0.25, 0.25, 0.25, 0.25]])
     return compile_plan(
-        plan=PLAN,
-        version=version,
-        partition=hand_partition(),
-        allocation=alloc,
-        arm_keys=ARMS,
-        holdout_share=0.1,
-        holdout_arm="ten",
-        salt=f"salt-{version}",
-        revision=revision,
+        PlanParts(
+            plan=PLAN,
+            version=version,
+            partition=hand_partition(),
+            allocation=alloc,
+            arm_keys=ARMS,
+            holdout_share=0.1,
+            holdout_arm="ten",
+            salt=f"salt-{version}",
+            revision=revision,
+        )
     )
 
 

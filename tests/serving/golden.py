@@ -108,7 +108,7 @@ def _plans() -> list[tuple[str, Any, str]]:
     """(name, CompiledPlan, what it covers)."""
     from serving.serving_helpers import FEATURES, hand_partition
 
-    from apportion.serving.index import compile_plan
+    from apportion.serving.index import PlanParts, compile_plan
     from apportion.stats.partition import Partition
     from bench.serve_inprocess import random_partition
 
@@ -119,9 +119,9 @@ def _plans() -> list[tuple[str, Any, str]]:
     out.append(
         (
             "mixed-holdout",
-            compile_plan(plan="mixed-holdout", version=3, partition=p, allocation=alloc,
+            compile_plan(PlanParts(plan="mixed-holdout", version=3, partition=p, allocation=alloc,
                          arm_keys=("control", "short", "long"), holdout_share=0.1,
-                         holdout_arm="control", salt="golden-salt-one", revision=4),
+                         holdout_arm="control", salt="golden-salt-one", revision=4)),
             "depth 6, 12 cohorts, mixed shares over 3 arms, 10 % holdout",
         )
     )  # fmt: skip
@@ -130,9 +130,9 @@ def _plans() -> list[tuple[str, Any, str]]:
     out.append(
         (
             "pure-no-holdout",
-            compile_plan(plan="pure-no-holdout", version=1, partition=p, allocation=alloc,
+            compile_plan(PlanParts(plan="pure-no-holdout", version=1, partition=p, allocation=alloc,
                          arm_keys=("a", "b", "c", "d"), holdout_share=0.0, holdout_arm="a",
-                         salt="golden-salt-two"),
+                         salt="golden-salt-two")),
             "depth 8, 40 cohorts, one arm per cohort, no holdout",
         )
     )  # fmt: skip
@@ -141,9 +141,9 @@ def _plans() -> list[tuple[str, Any, str]]:
     out.append(
         (
             "hand-zero-shares",
-            compile_plan(plan="hand-zero-shares", version=7, partition=p, allocation=alloc,
+            compile_plan(PlanParts(plan="hand-zero-shares", version=7, partition=p, allocation=alloc,
                          arm_keys=("five", "ten", "fifteen", "adaptive"), holdout_share=0.25,
-                         holdout_arm="ten", salt="s\u00e9l-\u4f1a", revision=9),
+                         holdout_arm="ten", salt="s\u00e9l-\u4f1a", revision=9)),
             "named features (unseen levels at a node), zero-share arms, 25 % holdout to an arm"
             " no cohort gets",
         )
@@ -163,9 +163,9 @@ def _plans() -> list[tuple[str, Any, str]]:
     out.append(
         (
             "single-cohort",
-            compile_plan(plan="single-cohort", version=2, partition=leaf,
+            compile_plan(PlanParts(plan="single-cohort", version=2, partition=leaf,
                          allocation=np.array([[0.2, 0.3, 0.5]]), arm_keys=("x", "y", "z"),
-                         holdout_share=0.05, holdout_arm="z", salt="golden-salt-four"),
+                         holdout_share=0.05, holdout_arm="z", salt="golden-salt-four")),
             "no split at all: one cohort, mixed shares, 5 % holdout",
         )
     )  # fmt: skip

@@ -22,7 +22,7 @@ from serving.serving_helpers import (
 )
 
 from apportion.errors import InvalidInput
-from apportion.serving.index import Assignment, compile_plan
+from apportion.serving.index import Assignment, PlanParts, compile_plan
 from apportion.stats.partition import Partition
 from apportion.stats.table import FeatureSpec
 
@@ -33,15 +33,17 @@ HAND_ALLOC = np.array([[0.2, 0.5, 0.3], [1 / 3, 1 / 3, 1 / 3], [0.6, 0.4, 0.0]])
 
 def _plan(partition=None, alloc=HAND_ALLOC, *, salt="test-salt", holdout=0.1, version=1, **kw):
     return compile_plan(
-        plan="lesson-length",
-        version=version,
-        partition=hand_partition() if partition is None else partition,
-        allocation=alloc,
-        arm_keys=ARMS,
-        holdout_share=holdout,
-        holdout_arm="control",
-        salt=salt,
-        **kw,
+        PlanParts(
+            plan="lesson-length",
+            version=version,
+            partition=hand_partition() if partition is None else partition,
+            allocation=alloc,
+            arm_keys=ARMS,
+            holdout_share=holdout,
+            holdout_arm="control",
+            salt=salt,
+            **kw,
+        )
     )
 
 
@@ -250,10 +252,10 @@ import sys, json
 sys.path.insert(0, {root!r}); sys.path.insert(0, {here!r})
 import numpy as np
 from serving.serving_helpers import hand_partition
-from apportion.serving.index import compile_plan
-cp = compile_plan(plan="lesson-length", version=1, partition=hand_partition(),
+from apportion.serving.index import PlanParts, compile_plan
+cp = compile_plan(PlanParts(plan="lesson-length", version=1, partition=hand_partition(),
                   allocation=np.array({alloc}), arm_keys={arms!r}, holdout_share=0.1,
-                  holdout_arm="control", salt="test-salt")
+                  holdout_arm="control", salt="test-salt"))
 rows = json.loads(sys.stdin.read())
 print(json.dumps([cp.assign(m, f).to_dict() for m, f in rows]))
 """
@@ -343,14 +345,16 @@ def test_bad_plans_are_refused(kwargs, fragment):
 def test_unknown_holdout_arm_and_malformed_trees_are_refused():
     with pytest.raises(InvalidInput, match="holdout arm"):
         compile_plan(
-            plan="p",
-            version=1,
-            partition=hand_partition(),
-            allocation=HAND_ALLOC,
-            arm_keys=ARMS,
-            holdout_share=0.1,
-            holdout_arm="nope",
-            salt="s",
+            PlanParts(
+                plan="p",
+                version=1,
+                partition=hand_partition(),
+                allocation=HAND_ALLOC,
+                arm_keys=ARMS,
+                holdout_share=0.1,
+                holdout_arm="nope",
+                salt="s",
+            )
         )
     cyclic = build([{"feature": 0, "threshold": 1.0, "left": 0, "right": 1}, {"cohort": 0}])
     with pytest.raises(InvalidInput, match="reached twice"):

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from serving.serving_helpers import hand_partition
 
-from apportion.serving.index import CompiledPlan, compile_plan
+from apportion.serving.index import CompiledPlan, PlanParts, compile_plan
 from apportion.serving.registry import PlanRegistry, RevisionPoller
 
 ALLOC = np.array([[0.2, 0.5, 0.3], [0.5, 0.25, 0.25], [0.6, 0.4, 0.0]])
@@ -18,15 +18,17 @@ ALLOC = np.array([[0.2, 0.5, 0.3], [0.5, 0.25, 0.25], [0.6, 0.4, 0.0]])
 
 def _compiled(version: int, revision: int, plan: str = "lesson-length") -> CompiledPlan:
     return compile_plan(
-        plan=plan,
-        version=version,
-        partition=hand_partition(),
-        allocation=np.roll(ALLOC, version, axis=1),
-        arm_keys=("control", "short", "long"),
-        holdout_share=0.05,
-        holdout_arm="control",
-        salt="reg-salt",
-        revision=revision,
+        PlanParts(
+            plan=plan,
+            version=version,
+            partition=hand_partition(),
+            allocation=np.roll(ALLOC, version, axis=1),
+            arm_keys=("control", "short", "long"),
+            holdout_share=0.05,
+            holdout_arm="control",
+            salt="reg-salt",
+            revision=revision,
+        )
     )
 
 
