@@ -22,9 +22,11 @@ def create(
     decl = read_json_file(file)
     with conn.client() as api:
         got = api.create_experiment(decl)
+    kept_out = sum(1 for f in got.features if not f.personalize)
     conn.emit(got, lambda: (
         f"declared experiment '{got.key}': {len(got.arms)} arms (control {got.control}), "
-        f"{len(got.metrics)} metrics, {len(got.features)} features"))  # fmt: skip
+        f"{len(got.metrics)} metrics, {len(got.features)} features"
+        + (f" ({kept_out} not used for personalization)" if kept_out else "")))  # fmt: skip
 
 
 @client_command(experiment, "show", "an experiment's declaration and readouts")

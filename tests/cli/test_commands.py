@@ -45,7 +45,8 @@ def test_experiment_show_names_the_features_not_used_for_personalization(cli, tm
         {"key": "plan", "kind": "categorical", "personalize": False, "reason": "pricing tier"},
     ]}  # fmt: skip
     (tmp_path / "flagged.json").write_text(json.dumps(decl))
-    assert cli("analyst", "experiment", "create", str(tmp_path / "flagged.json")).code == 0
+    made = cli("analyst", "experiment", "create", str(tmp_path / "flagged.json"))
+    assert made.code == 0 and "2 features (1 not used for personalization)" in made.out
     shown = cli("reader", "experiment", "show", "checkout-copy")
     assert shown.code == 0, shown.err
     assert "not used for personalization: plan (pricing tier)" in shown.out
