@@ -4,11 +4,11 @@ against the truth the simulator exposes (true effect functions, the oracle plan 
 from __future__ import annotations
 
 import pytest
+from scenario_fits import LEARNERS, scenario_fits
 
 from apportion.demo import scenario as sc
 from apportion.optimize.problem import Guardrail, build_problem
 from apportion.optimize.solve import solve
-from apportion.stats.models import fit_cohort_model
 
 SEEDS = range(10)
 GUARDRAILS = tuple(
@@ -17,12 +17,13 @@ GUARDRAILS = tuple(
 
 
 @pytest.fixture(scope="module")
-def outcomes():
-    """Per seed: true lifts of the chance and deterministic plans, the oracle and the limits."""
+def outcomes(tmp_path_factory):
+    """Per seed: true lifts of the chance and deterministic plans, the oracle and the limits.
+    The fits (200,000 learners, causal tree, seeds 0..9) are shared with
+    tests/stats/test_tree_scenario.py (tests/scenario_fits.py)."""
     out = []
-    for seed in SEEDS:
-        table = sc.simulate(200_000, seed)
-        fit = fit_cohort_model(table, "causal_tree", {"seed": seed}, success_metric=sc.SUCCESS)
+    for seed, fit in scenario_fits(tmp_path_factory, SEEDS).items():
+        table = sc.simulate(LEARNERS, seed)
         cohort, _ = fit.partition.route(table.feature_values, table.features)
         problem = build_problem(
             shares=fit.shares,

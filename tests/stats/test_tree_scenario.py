@@ -35,6 +35,7 @@ fifteen_min effect between the two children over its standard error:
 from __future__ import annotations
 
 import pytest
+from scenario_fits import scenario_fits
 
 from apportion.demo.scenario import simulate
 from apportion.stats.models import fit_cohort_model
@@ -51,12 +52,10 @@ def _thresholds(partition, key: str) -> list[float]:
     ]
 
 
-@pytest.mark.slow  # ten 200,000-learner simulations and fits, 25-40 s on two cores
-def test_tree_finds_the_scenario_boundaries_and_ignores_decoys():
+@pytest.mark.slow  # ten 200,000-learner fits, shared with tests/optimize/test_scenario.py
+def test_tree_finds_the_scenario_boundaries_and_ignores_decoys(tmp_path_factory):
     phone_split = decoy_fits = 0
-    for seed in range(10):
-        table = simulate(200_000, seed=seed)
-        fit = fit_cohort_model(table, "causal_tree", {"seed": seed}, success_metric="active_days")
+    for seed, fit in scenario_fits(tmp_path_factory).items():
         p = fit.partition
         root = p.features[int(p.feature[0])].key
         assert root == "level", (seed, fit.diagnostics["splits"])
