@@ -1,13 +1,12 @@
 """The pushdown engines (DuckDB and Spark, over Parquet files) never split on a feature declared
 `personalize: false`: the same readout as tests/stats/test_not_personalized.py (its effect varies
 only by `age_band`), written as Parquet. The unflagged fit on DuckDB splits on `age_band`, so the flagged fit's
-assertion has teeth; Spark runs the same SQL plan (engines/sql.py), so it runs the flagged fit
-only (a Spark query costs seconds however small the data)."""
+assertion has teeth. Spark runs the same SQL plan (engines/sql.py); its flagged fit is in
+tests/engines/test_spark.py, so that one module (one pytest-xdist worker) starts the only JVM."""
 
 from __future__ import annotations
 
 import pyarrow.parquet as pq
-import pytest
 from support import effect_by_band_only
 
 from apportion.engines import open_engine
@@ -19,7 +18,7 @@ from .conftest import parquet_columns
 PARAMS = {"cv_folds": 0, "max_depth": 2, "min_units_per_arm": 100, "seed": 3}
 
 
-def _dataset(tmp_path, flagged: bool) -> ReadoutDataset:  # type: ignore[no-untyped-def]
+def dataset(tmp_path, flagged: bool) -> ReadoutDataset:  # type: ignore[no-untyped-def]
     table = effect_by_band_only(flagged=flagged)
     d = tmp_path / ("flagged" if flagged else "plain")
     d.mkdir()
@@ -29,7 +28,7 @@ def _dataset(tmp_path, flagged: bool) -> ReadoutDataset:  # type: ignore[no-unty
                                metrics=table.metrics)  # fmt: skip
 
 
-def _splits(engine_name: str, ds: ReadoutDataset, tmp_path) -> tuple[set[str], list[str]]:  # type: ignore[no-untyped-def]
+def splits(engine_name: str, ds: ReadoutDataset, tmp_path) -> tuple[set[str], list[str]]:  # type: ignore[no-untyped-def]
     kw = {}
     if engine_name == "spark":
         kw = {"spark_master": "local[2]", "spark_conf": {"spark.sql.shuffle.partitions": "2"}}
@@ -39,14 +38,8 @@ def _splits(engine_name: str, ds: ReadoutDataset, tmp_path) -> tuple[set[str], l
     return used, [f.key for f in fit.partition.features]
 
 
-@pytest.mark.parametrize("engine_name", ["duckdb", "spark"])
-def test_the_engines_never_split_on_a_feature_not_for_personalization(tmp_path, engine_name):  # type: ignore[no-untyped-def]
-    if engine_name == "spark":
-        pytest.importorskip(
-            "pyspark", reason="pyspark is not installed (pip install -e '.[spark]')"
-        )
-    if engine_name == "duckdb":  # Spark runs the same SQL plan, at seconds per query
-        used, _ = _splits(engine_name, _dataset(tmp_path, flagged=False), tmp_path)
-        assert "age_band" in used, "the readout must drive a split on age_band"
-    used, partition_features = _splits(engine_name, _dataset(tmp_path, flagged=True), tmp_path)
+def test_duckdb_never_splits_on_a_feature_not_for_personalization(tmp_path):  # type: ignore[no-untyped-def]
+    used, _ = splits("duckdb", dataset(tmp_path, flagged=False), tmp_path)
+    assert "age_band" in used, "the readout must drive a split on age_band"
+    used, partition_features = splits("duckdb", dataset(tmp_path, flagged=True), tmp_path)
     assert "age_band" not in used and "age_band" not in partition_features

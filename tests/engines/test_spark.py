@@ -10,6 +10,7 @@ from apportion.stats.models import fit_cohort_model
 from apportion.stats.pushdown import fit_on_engine
 
 from .test_engines import CASES, assert_same_fit
+from .test_not_personalized import dataset, splits
 
 pytest.importorskip("pyspark", reason="pyspark is not installed (pip install -e '.[spark]')")
 
@@ -33,3 +34,10 @@ def test_spark_fit_equals_in_memory_fit(readout, tmp_path, method):
     if method == "causal_tree":
         assert fit.partition.n_cohorts >= 2  # a split was found, so the comparison has teeth
     assert_same_fit(fit_cohort_model(table, method, params), fit)
+
+
+def test_spark_never_splits_on_a_feature_not_for_personalization(tmp_path):
+    # the readout of tests/engines/test_not_personalized.py, whose unflagged DuckDB fit splits on
+    # age_band (so this check has teeth); here in the Spark module so one worker starts the JVM
+    used, partition_features = splits("spark", dataset(tmp_path, flagged=True), tmp_path)
+    assert "age_band" not in used and "age_band" not in partition_features
