@@ -99,7 +99,7 @@ def _var_mean(moments: CellMoments, avail: np.ndarray) -> np.ndarray:
     return np.where(avail[..., None], d / np.maximum(moments.n, 1)[..., None], np.inf)
 
 
-def shrunk_problem(problem: AllocationProblem) -> tuple[AllocationProblem, dict]:
+def shrunk_problem(problem: AllocationProblem) -> tuple[AllocationProblem, dict[str, Any]]:
     """The problem with every cohort x arm lift shrunk (see `shrink_means`)."""
     mom = problem.moments
     avail = available_cells(mom)
@@ -136,7 +136,7 @@ class Calibration:
     seconds: float
 
 
-def _coef_lin(lin: Linear, method: str, options: dict) -> tuple[Linear, str]:
+def _coef_lin(lin: Linear, method: str, options: dict[str, Any]) -> tuple[Linear, str]:
     """A linear form and the method for `solve_linear` that the draws use: the stochastic mixed
     plan is replaced by its exact normal equivalent, the cone LP with the CVaR multiplier
     (stochastic.py), because stochastic approximation per draw would take minutes."""
@@ -154,10 +154,13 @@ def _solve(
 
 
 def _draw_means(rng: np.random.Generator, mean: np.ndarray, sd: np.ndarray) -> np.ndarray:
-    return mean + rng.standard_normal(mean.shape) * sd
+    out: np.ndarray = mean + rng.standard_normal(mean.shape) * sd
+    return out
 
 
-def _warm_cuts(lin: Linear, x0: np.ndarray, coef: np.ndarray) -> tuple[list, list]:
+def _warm_cuts(
+    lin: Linear, x0: np.ndarray, coef: np.ndarray
+) -> tuple[list[np.ndarray], list[float]]:
     found = [cut_row(lin, k, x0, float(coef[k])) for k in range(len(coef))] if coef.any() else []
     cuts = [cu for cu in found if cu is not None]
     return [cu[0] for cu in cuts], [cu[1] for cu in cuts]
@@ -169,7 +172,7 @@ def _errors(
     margin: np.ndarray,
     method: str,
     allocation: str,
-    options: dict,
+    options: dict[str, Any],
     draws: int,
     seed: int,
     x0: np.ndarray,
@@ -213,16 +216,33 @@ def _errors(
     return e.reshape(len(errs), k), np.asarray(s_errs)
 
 
+# one tightening round's record: (plan x, solver iterations, solver diagnostics, calibrated
+# probability, estimate, selection optimism and error sd per guardrail, the success metric's
+# optimism and error sd, rounds so far)
+_Round = tuple[
+    np.ndarray,
+    int,
+    dict[str, Any],
+    np.ndarray,
+    np.ndarray,
+    np.ndarray,
+    np.ndarray,
+    float,
+    float,
+    int,
+]
+
+
 def calibrated_solve(
     problem: AllocationProblem,
     method: str,
     allocation: str = "mixed",
     *,
     seed: int = 0,
-    options: dict | None = None,
+    options: dict[str, Any] | None = None,
     draws: int = DRAWS,
     rounds: int = ROUNDS,
-) -> tuple[Solution, Calibration, AllocationProblem, dict]:
+) -> tuple[Solution, Calibration, AllocationProblem, dict[str, Any]]:
     """Solve on shrunk estimates and tighten until every guardrail's calibrated probability meets
     its confidence. Returns (solution on the shrunk problem, calibration, the shrunk problem, the
     shrinkage info); raises Infeasible with each guardrail's calibrated probability."""
@@ -236,7 +256,7 @@ def calibrated_solve(
     centre = np.where(avail[..., None], mom.mean, 0.0)
     k = len(problem.guardrails)
     margin = np.zeros(k)
-    last: tuple | None = None
+    last: _Round | None = None
     for r in range(rounds):
         lin = replace(lin0, rhs=np.maximum(lin0.rhs - margin, 0.0))
         x, it, diag = _solve(shrunk, lin, method, allocation, seed, opts)
@@ -282,7 +302,7 @@ def calibrated_solve(
     return sol, cal, shrunk, info
 
 
-def _scale_toward_baseline(lin: Linear, last: tuple) -> tuple[tuple, float]:
+def _scale_toward_baseline(lin: Linear, last: _Round) -> tuple[_Round, float]:
     """When tightening the allowance cannot reach the confidence (it stops at zero allowance,
     where the plan may still carry noise), mix the plan with the baseline: x = b + s (x - b).
     Estimate, selection error and its sd all scale with s (each is linear in x - b), so
@@ -302,7 +322,7 @@ def _scale_toward_baseline(lin: Linear, last: tuple) -> tuple[tuple, float]:
     return (x, it, diag, prob, est, opt, esd, s * s_opt, s * s_sd, rounds), s
 
 
-def _raise(problem: AllocationProblem, lin: Linear, last: tuple | None) -> None:
+def _raise(problem: AllocationProblem, lin: Linear, last: _Round | None) -> None:
     errors = []
     for k, g in enumerate(problem.guardrails):
         prob = None if last is None else float(last[3][k])
@@ -327,7 +347,9 @@ def _raise(problem: AllocationProblem, lin: Linear, last: tuple | None) -> None:
     )
 
 
-def calibration_view(problem: AllocationProblem, cal: Calibration, info: dict) -> dict:
+def calibration_view(
+    problem: AllocationProblem, cal: Calibration, info: dict[str, Any]
+) -> dict[str, Any]:
     """JSON view: per guardrail the calibrated probability, in the threshold's units."""
     lin = linearize(problem, with_cellcov=False)
     rows = []

@@ -41,7 +41,8 @@ def constraint_scale(lin: Linear) -> np.ndarray:
 
 
 def cone_values(lin: Linear, x: np.ndarray, coef: np.ndarray) -> np.ndarray:
-    return lin.harm_lift(x) + coef * lin.harm_sd(x)
+    out: np.ndarray = lin.harm_lift(x) + coef * lin.harm_sd(x)
+    return out
 
 
 def solve_cone(

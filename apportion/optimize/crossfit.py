@@ -102,7 +102,9 @@ def fold_ids(arm: np.ndarray, folds: int, seed: int) -> np.ndarray:
     return out
 
 
-def model_params_for(cand: Candidate, guardrails: tuple[Guardrail, ...], params: dict) -> dict:
+def model_params_for(
+    cand: Candidate, guardrails: tuple[Guardrail, ...], params: dict[str, Any]
+) -> dict[str, Any]:
     """The cohort model's parameters for a candidate: a decision-focused method (policy tree,
     distilled member-level models) prices the plan's guardrails while it splits, so it gets them
     unless the caller set its own; other methods take no guardrails."""
@@ -119,7 +121,7 @@ def run_pipeline(
     *,
     success: str,
     guardrails: tuple[Guardrail, ...],
-    model_params: dict | None = None,
+    model_params: dict[str, Any] | None = None,
     seed: int = 0,
     draws: int = FOLD_DRAWS,
 ) -> tuple[Any, np.ndarray, np.ndarray | None]:
@@ -133,7 +135,7 @@ def run_pipeline(
 
 
 def fit_model(table: UnitTable, model: str, *, success: str,
-              guardrails: tuple[Guardrail, ...] = (), model_params: dict | None = None,
+              guardrails: tuple[Guardrail, ...] = (), model_params: dict[str, Any] | None = None,
               seed: int = 0) -> Any:  # fmt: skip
     """The cohort model of one fold: fitted once and shared by every optimizer that uses it (a
     decision-focused method prices the guardrails, `model_params_for`)."""
@@ -201,7 +203,8 @@ def _scores(table: UnitTable, fit: Any, x: np.ndarray, rows: np.ndarray) -> np.n
     d = x - np.eye(x.shape[1])[0][None]  # (C, J): plan minus all-control
     resid = y - mu[cohort, sub.arm]
     direct = np.einsum("ij,ijq->iq", d[cohort], mu[cohort])
-    return direct + (d[cohort, sub.arm] / e[sub.arm])[:, None] * resid
+    out: np.ndarray = direct + (d[cohort, sub.arm] / e[sub.arm])[:, None] * resid
+    return out
 
 
 def _control_scores(table: UnitTable, fit: Any, rows: np.ndarray) -> np.ndarray:
@@ -211,7 +214,8 @@ def _control_scores(table: UnitTable, fit: Any, rows: np.ndarray) -> np.ndarray:
     mu = np.nan_to_num(fit.moments.mean)
     y = sub.component_matrix()
     w = (sub.arm == 0) / float(sub.design_shares[0])
-    return mu[cohort, 0] + w[:, None] * (y - mu[cohort, 0])
+    out: np.ndarray = mu[cohort, 0] + w[:, None] * (y - mu[cohort, 0])
+    return out
 
 
 def _metric_influence(
@@ -240,7 +244,7 @@ class _FoldPlan:
     guardrails: tuple[Guardrail, ...]
     seed: int
     draws: int
-    model_params: dict[str, dict]
+    model_params: dict[str, dict[str, Any]]
 
 
 @dataclass
@@ -349,8 +353,9 @@ def _folds_in_processes(
                 pass
             pending = {fu for fu in pending if not fu.done()}
             for fu in futures:
-                if fu.done() and fu.exception() is not None:
-                    raise fu.exception()  # type: ignore[misc]
+                exc = fu.exception() if fu.done() else None
+                if exc is not None:
+                    raise exc
         while True:  # the last steps may still be in the queue
             try:
                 tick(steps.get(timeout=0.05))
@@ -387,11 +392,11 @@ def evaluate_candidates(
     guardrails: tuple[Guardrail, ...],
     folds: int = FOLDS,
     seed: int = 0,
-    model_params: dict[str, dict] | None = None,
+    model_params: dict[str, dict[str, Any]] | None = None,
     progress: Callable[[float], None] | None = None,
     draws: int = FOLD_DRAWS,
     workers: int = 1,
-) -> dict:
+) -> dict[str, Any]:
     """Cross-fit every candidate and rank them (see the module docstring and `recommend`);
     `draws`: calibration draws per fold plan; `workers`: processes that run folds at once (1: in
     this process, one fold after the other; the result is the same either way)."""

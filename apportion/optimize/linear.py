@@ -64,12 +64,14 @@ class Linear:
 
     def harm_lift(self, x: np.ndarray) -> np.ndarray:
         """(K,) linearized harm-oriented guardrail lifts of plan x (threshold units)."""
-        return np.einsum("c,kcj->k", self.p, (x - self.b)[None] * self.G)
+        out: np.ndarray = np.einsum("c,kcj->k", self.p, (x - self.b)[None] * self.G)
+        return out
 
     def harm_sd(self, x: np.ndarray) -> np.ndarray:
         """(K,) sd of the linearized guardrail lift estimates of plan x."""
         d = (self.p[:, None] * (x - self.b)) ** 2
-        return np.sqrt(np.einsum("cj,kcj->k", d, self.V))
+        out: np.ndarray = np.sqrt(np.einsum("cj,kcj->k", d, self.V))
+        return out
 
     def success_lift(self, x: np.ndarray) -> float:
         """Linearized success lift, oriented so that larger is better."""

@@ -57,7 +57,8 @@ def available_cells(moments: CellMoments) -> np.ndarray:
     """(C, J) bool: cells with at least two units and finite moments; others cannot be chosen."""
     mean_ok = np.isfinite(moments.mean).all(axis=-1)
     cov_ok = np.isfinite(moments.cov).all(axis=(-1, -2))
-    return (moments.n >= 2) & mean_ok & cov_ok
+    out: np.ndarray = (moments.n >= 2) & mean_ok & cov_ok
+    return out
 
 
 def control_allocation(n_cohorts: int, n_arms: int) -> np.ndarray:

@@ -45,7 +45,8 @@ def _num(v: float | np.floating[Any]) -> float | None:
 
 def _draw_means(rng: np.random.Generator, mean: np.ndarray, chol: np.ndarray) -> np.ndarray:
     z = rng.standard_normal(mean.shape)
-    return mean + np.einsum("cjqr,cjr->cjq", chol, z)
+    out: np.ndarray = mean + np.einsum("cjqr,cjr->cjq", chol, z)
+    return out
 
 
 def _mean_chol(problem: AllocationProblem, avail: np.ndarray) -> np.ndarray:
@@ -59,7 +60,8 @@ def _mean_chol(problem: AllocationProblem, avail: np.ndarray) -> np.ndarray:
         return np.linalg.cholesky(cov + jitter[..., None, None] * np.eye(q))
     except np.linalg.LinAlgError:
         vals, vecs = np.linalg.eigh(cov)
-        return vecs * np.sqrt(np.clip(vals, 0.0, None))[..., None, :]
+        out: np.ndarray = vecs * np.sqrt(np.clip(vals, 0.0, None))[..., None, :]
+        return out
 
 
 def _lifts(problem: Any, x: np.ndarray, mean: np.ndarray, base_x: np.ndarray) -> dict[str, float]:
@@ -77,7 +79,7 @@ def impact_report(
     draws: int = 200,
     seed: int = 0,
     progress: Callable[[int, int], None] | None = None,
-) -> dict:
+) -> dict[str, Any]:
     """JSON-serializable report of `solution` for `problem` (see the module docstring)."""
     validate_problem(problem)
     mom = problem.moments

@@ -20,6 +20,7 @@ approximation would take seconds per point.
 from __future__ import annotations
 
 from dataclasses import replace
+from typing import Any
 
 import numpy as np
 from scipy.stats import norm
@@ -33,7 +34,7 @@ STEPS = (-2, -1, 0, 1, 2)
 STEP_SHARE = 0.25
 
 
-def _as_chance(problem: AllocationProblem, options: dict) -> AllocationProblem:
+def _as_chance(problem: AllocationProblem, options: dict[str, Any]) -> AllocationProblem:
     conf = np.array([g.confidence for g in problem.guardrails])
     tail = options.get("tail")
     mult = cvar_multiplier(conf, tail)
@@ -50,8 +51,8 @@ def guardrail_sensitivity(
     solution: Solution,
     *,
     seed: int = 0,
-    options: dict | None = None,
-) -> list[dict]:
+    options: dict[str, Any] | None = None,
+) -> list[dict[str, Any]]:
     """Per guardrail: step, price and the success lift at the five thresholds (JSON-ready)."""
     opts = dict(options or {})
     method, allocation = solution.method, solution.allocation_kind
@@ -71,7 +72,7 @@ def guardrail_sensitivity(
         lifts: dict[int, float] = {}
         for s in STEPS:
             t = float(g.threshold + harm * s * step)
-            point: dict = {"offset": s, "threshold": t}
+            point: dict[str, Any] = {"offset": s, "threshold": t}
             if harm * t < 0:
                 point["status"] = "not allowed (the threshold would change sign)"
             elif s == 0:

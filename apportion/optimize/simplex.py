@@ -28,4 +28,5 @@ def project_rows(v: np.ndarray, mask: np.ndarray | None = None) -> np.ndarray:
     w = np.maximum(v - theta[:, None], 0.0)
     if mask is not None:
         w = np.where(mask, w, 0.0)
-    return w
+    out: np.ndarray = w
+    return out

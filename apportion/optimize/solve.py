@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, replace
-from typing import Literal, NoReturn
+from typing import Any, Literal, NoReturn
 
 import numpy as np
 from scipy.stats import norm
@@ -34,15 +34,17 @@ class Solution:
     method: str
     allocation_kind: str
     objective: float  # projected lift of the success metric vs baseline (point estimates)
-    guardrail_values: list[dict]  # per guardrail: lift (threshold's unit), threshold, binding, sd
+    guardrail_values: list[
+        dict[str, Any]
+    ]  # per guardrail: lift (threshold's unit), threshold, binding, sd
     fractional_cohorts: int
     binding: list[str]
     iterations: int
     seconds: float
-    diagnostics: dict
+    diagnostics: dict[str, Any]
 
 
-def method_coefficients(lin: Linear, method: str, options: dict) -> np.ndarray:
+def method_coefficients(lin: Linear, method: str, options: dict[str, Any]) -> np.ndarray:
     """(K,) multiplier of sd_k in each guardrail: 0 (deterministic), z_conf (chance) or the normal
     CVaR multiplier pdf(z)/(1 - conf) (stochastic; `tail` widens the tail, 1 = the mean)."""
     if method == "deterministic":
@@ -86,7 +88,7 @@ def summarize(
     coef: np.ndarray,
     iterations: int,
     seconds: float,
-    diagnostics: dict,
+    diagnostics: dict[str, Any],
     bind_tol: float = 1e-6,
 ) -> Solution:
     mom = problem.moments
@@ -157,7 +159,7 @@ def exact_excess(problem: AllocationProblem, x: np.ndarray) -> np.ndarray:
 
 
 def exact_chance_refit(
-    problem: AllocationProblem, lin: Linear, x: np.ndarray, opts: dict, *, rounds: int = 6
+    problem: AllocationProblem, lin: Linear, x: np.ndarray, opts: dict[str, Any], *, rounds: int = 6
 ) -> tuple[np.ndarray, Linear, int]:
     """Re-solve a chance plan until every guardrail holds by the exact delta-method check.
 
@@ -190,10 +192,10 @@ def solve_linear(
     allocation: str,
     *,
     seed: int = 0,
-    options: dict | None = None,
+    options: dict[str, Any] | None = None,
     model: LPModel | None = None,
-    warm_cuts: tuple[list, list] | None = None,
-) -> tuple[np.ndarray | None, int, dict]:
+    warm_cuts: tuple[list[np.ndarray], list[float]] | None = None,
+) -> tuple[np.ndarray | None, int, dict[str, Any]]:
     """Plan for a linear form: (x or None if infeasible, iterations, diagnostics). Used by `solve`
     and by the impact report's re-optimizations (which pass a reused model and warm cuts)."""
     opts = options or {}
@@ -245,7 +247,7 @@ def solve(
     allocation: Literal["mixed", "pure"] = "mixed",
     *,
     seed: int = 0,
-    options: dict | None = None,
+    options: dict[str, Any] | None = None,
 ) -> Solution:
     """Optimize the plan; raise Infeasible (with per-guardrail best reachable values) when no
     allocation satisfies the guardrails, InvalidInput for a malformed problem."""

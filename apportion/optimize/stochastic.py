@@ -57,7 +57,7 @@ DEFAULTS: dict[str, Any] = {
 class CSAResult:
     x: np.ndarray
     iterations: int
-    diagnostics: dict
+    diagnostics: dict[str, Any]
 
 
 def _cell_chol(lin: Linear) -> np.ndarray:
@@ -69,10 +69,11 @@ def _cell_chol(lin: Linear) -> np.ndarray:
         return np.linalg.cholesky(cov + jitter[..., None, None] * np.eye(k))
     except np.linalg.LinAlgError:
         vals, vecs = np.linalg.eigh(cov)
-        return vecs * np.sqrt(np.clip(vals, 0.0, None))[..., None, :]
+        out: np.ndarray = vecs * np.sqrt(np.clip(vals, 0.0, None))[..., None, :]
+        return out
 
 
-def csa(lin: Linear, *, seed: int = 0, options: dict | None = None) -> CSAResult:
+def csa(lin: Linear, *, seed: int = 0, options: dict[str, Any] | None = None) -> CSAResult:
     opts = DEFAULTS | dict(options or {})
     n_iter = int(opts["iterations"])
     tails0 = (
