@@ -38,7 +38,14 @@ from apportion.optimize.chance import solve_cone
 from apportion.optimize.linear import Linear, cvar_multiplier, linearize
 from apportion.optimize.lp import LPModel, cut_row, simplex_rows
 from apportion.optimize.problem import AllocationProblem, available_cells, validate_problem
-from apportion.optimize.solve import Solution, method_coefficients, solve_linear, summarize
+from apportion.optimize.solve import (
+    AllocationKind,
+    Method,
+    Solution,
+    method_coefficients,
+    solve_linear,
+    summarize,
+)
 from apportion.stats.estimates import CellMoments
 
 DRAWS = 100
@@ -235,8 +242,8 @@ _Round = tuple[
 
 def calibrated_solve(
     problem: AllocationProblem,
-    method: str,
-    allocation: str = "mixed",
+    method: Method,
+    allocation: AllocationKind = "mixed",
     *,
     seed: int = 0,
     options: dict[str, Any] | None = None,

@@ -41,6 +41,7 @@ from apportion.errors import Infeasible, InvalidInput
 from apportion.optimize.calibrate import calibrated_solve
 from apportion.optimize.problem import Guardrail, build_problem
 from apportion.optimize.solve import METHODS as OPTIMIZERS
+from apportion.optimize.solve import AllocationKind, Method
 from apportion.stats import models as cohort_models
 from apportion.stats.decision import DECISION_METHODS
 from apportion.stats.table import UnitTable
@@ -59,8 +60,8 @@ NEEDS_INPUT = ("segments",)
 @dataclass(frozen=True)
 class Candidate:
     model: str
-    optimizer: str
-    allocation: str = "mixed"
+    optimizer: Method
+    allocation: AllocationKind = "mixed"
 
     @property
     def name(self) -> str:
@@ -80,13 +81,14 @@ def parse_candidates(names: list[str] | None) -> list[Candidate]:
     out = []
     for i, name in enumerate(names):
         model, _, opt = str(name).partition("/")
-        if model not in cohort_models.METHODS or opt not in OPTIMIZERS:
+        optimizer = next((o for o in OPTIMIZERS if o == opt), None)
+        if model not in cohort_models.METHODS or optimizer is None:
             raise InvalidInput(
                 f"candidate {name!r} must be 'model/optimizer' with model in "
                 f"{list(cohort_models.METHODS)} and optimizer in {list(OPTIMIZERS)}",
                 errors=[{"field": f"candidates[{i}]", "value": str(name)}],
             )
-        out.append(Candidate(model, opt))
+        out.append(Candidate(model, optimizer))
     if len({c.name for c in out}) != len(out):
         raise InvalidInput("candidates must not repeat", errors=[{"field": "candidates"}])
     return out

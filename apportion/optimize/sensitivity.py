@@ -82,7 +82,7 @@ def guardrail_sensitivity(
                 guards = list(base.guardrails)
                 guards[k] = replace(guards[k], threshold=t)
                 try:
-                    sol = solve(replace(base, guardrails=tuple(guards)), method, allocation,  # type: ignore[arg-type]
+                    sol = solve(replace(base, guardrails=tuple(guards)), method, allocation,
                                 seed=seed, options=opts)  # fmt: skip
                 except Infeasible:
                     point["status"] = "infeasible"

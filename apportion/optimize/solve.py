@@ -23,16 +23,18 @@ from apportion.optimize.problem import AllocationProblem, available_cells, valid
 from apportion.optimize.stochastic import csa
 from apportion.optimize.values import lift_sd, metric_values
 
-METHODS = ("deterministic", "chance", "stochastic")
-ALLOCATIONS = ("mixed", "pure")
+Method = Literal["deterministic", "chance", "stochastic"]
+AllocationKind = Literal["mixed", "pure"]
+METHODS: tuple[Method, ...] = ("deterministic", "chance", "stochastic")
+ALLOCATIONS: tuple[AllocationKind, ...] = ("mixed", "pure")
 FRACTIONAL_TOL = 1e-7
 
 
 @dataclass(frozen=True)
 class Solution:
     allocation: np.ndarray  # (C, J), rows sum to 1
-    method: str
-    allocation_kind: str
+    method: Method
+    allocation_kind: AllocationKind
     objective: float  # projected lift of the success metric vs baseline (point estimates)
     guardrail_values: list[
         dict[str, Any]
@@ -83,8 +85,8 @@ def summarize(
     lin: Linear,
     x: np.ndarray,
     *,
-    method: str,
-    allocation: str,
+    method: Method,
+    allocation: AllocationKind,
     coef: np.ndarray,
     iterations: int,
     seconds: float,
@@ -243,8 +245,8 @@ def solve_linear(
 
 def solve(
     problem: AllocationProblem,
-    method: Literal["deterministic", "chance", "stochastic"] = "deterministic",
-    allocation: Literal["mixed", "pure"] = "mixed",
+    method: Method = "deterministic",
+    allocation: AllocationKind = "mixed",
     *,
     seed: int = 0,
     options: dict[str, Any] | None = None,
