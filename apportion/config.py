@@ -76,7 +76,8 @@ class Settings(BaseSettings):
         0,
         ge=0,
         le=64,
-        description="processes that run a method comparison's folds at once (0: min(2, cores); "
+        description="processes that run the folds of a method comparison or of a draft's held-out "
+        "evaluation at once (0: min(2, cores); "
         "1: one fold after the other in the job's own process; readouts under 50,000 units "
         "always run in the job's process)",
     )

@@ -10,7 +10,7 @@ import numpy as np
 
 from apportion.domain import Actor
 from apportion.errors import InvalidInput
-from apportion.optimize.crossfit import Candidate, evaluate_candidates
+from apportion.optimize.crossfit import Candidate, comparison_workers, evaluate_candidates
 from apportion.stats.table import UnitTable
 from apportion.store import audit
 from apportion.store import jobs as job_repo
@@ -25,13 +25,19 @@ REPORT_ACTOR = Actor("report-job", "analyst")
 
 
 def _evaluate(
-    ctx: dict[str, Any], spec: dict[str, Any], seed: int, folds: int, progress: Any = None
+    ctx: dict[str, Any],
+    spec: dict[str, Any],
+    seed: int,
+    folds: int,
+    progress: Any = None,
+    workers: int = 1,
 ) -> dict[str, Any]:
     """Honest held-out figures: the whole pipeline (this model's method and
     parameters, the calibrated optimizer) is cross-fitted over folds of the readout, and each
     fold's plan is scored with doubly robust scores on the fold it never saw; see
     apportion/optimize/crossfit.py. They estimate the procedure's lift against all-control.
-    It refits the model once per fold, so it runs as a job (`held_out`), never in a request."""
+    It refits the model once per fold, so it runs as a job (`held_out`), never in a request;
+    `workers`: the configured fold processes (APPORTION_COMPARISON_WORKERS, 0: min(2, cores))."""
     table: UnitTable = rows_of(ctx).table
     params = dict((ctx.get("model_params") or {}).get("method_params") or {})
     cand = Candidate(ctx["model_method"], spec["method"], spec["allocation"])
@@ -44,6 +50,7 @@ def _evaluate(
         seed=seed,
         model_params={cand.model: params},
         progress=progress,
+        workers=comparison_workers(workers, table.n),
     )
     row = out["candidates"][0]
     return {
@@ -114,7 +121,8 @@ def _run_held_out(services: Services, job: Job, progress: Any) -> None:
         return
     ctx = model_context(services, int(spec["model_id"]))
     try:
-        held_out = _evaluate(ctx, spec, int(spec["seed"]), folds, progress)
+        held_out = _evaluate(ctx, spec, int(spec["seed"]), folds, progress,
+                             services.settings.comparison_workers)  # fmt: skip
     except InvalidInput as exc:  # e.g. too few rows for the folds: say why, keep the draft
         held_out = {"status": "unavailable", "error": exc.detail}
     _write_held_out(services, job, plan, version, {**held_out, "job": f"/v1/jobs/{job.id}"})
