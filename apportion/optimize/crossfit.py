@@ -340,6 +340,7 @@ def _folds_in_processes(
     plan: _FoldPlan,
     workers: int,
     tick: Callable[[int], None],
+    steps_total: int,
 ) -> list[_FoldOut]:
     ctx = mp.get_context("spawn")
     steps, cancel = ctx.Queue(), ctx.Event()
@@ -348,9 +349,12 @@ def _folds_in_processes(
     try:
         futures = [pool.submit(_worker_fold, f) for f in range(folds)]
         pending = set(futures)
+        received = 0
         while pending:
             try:
-                tick(steps.get(timeout=0.2))
+                k = steps.get(timeout=0.2)
+                received += k
+                tick(k)
             except queue.Empty:
                 pass
             pending = {fu for fu in pending if not fu.done()}
@@ -358,11 +362,15 @@ def _folds_in_processes(
                 exc = fu.exception() if fu.done() else None
                 if exc is not None:
                     raise exc
-        while True:  # the last steps may still be in the queue
+        # every fold has finished, so every step was sent; the last ones may still be on their
+        # way (the queue's pipe is not the results' pipe)
+        while received < steps_total:
             try:
-                tick(steps.get(timeout=0.05))
-            except queue.Empty:
+                k = steps.get(timeout=30.0)
+            except queue.Empty:  # pragma: no cover - a worker died between a step and its result
                 break
+            received += k
+            tick(k)
         return [fu.result() for fu in futures]
     except BaseException:
         cancel.set()  # running folds stop at their next step; queued ones never start
@@ -422,7 +430,7 @@ def evaluate_candidates(
             progress(done / steps)
 
     if workers > 1 and folds > 1:
-        outs = _folds_in_processes(table, fold, folds, plan, min(workers, folds), tick)
+        outs = _folds_in_processes(table, fold, folds, plan, min(workers, folds), tick, steps)
     else:
         outs = [_run_fold(table, fold, f, plan, tick) for f in range(folds)]
 
