@@ -17,6 +17,7 @@ from apportion.schemas.common import (
 )
 from apportion.schemas.fitparams import MethodParams, params_for
 from apportion.schemas.plans import GuardrailIn, GuardrailSpec
+from apportion.schemas.reportparts import HeldOutMetric
 
 # ---- requests ----------------------------------------------------------------------------------
 
@@ -99,16 +100,6 @@ class ComparisonSpec(Answer):
         if not isinstance(value, dict):
             return value
         return {m: params_for(m, p, info.context) for m, p in value.items()}
-
-
-class HeldOutMetric(Answer):
-    lift: float | None = Field(description="held-out lift of the candidate's plans")
-    se: float | None
-    se_within: float | None = Field(description="standard error from the influence values")
-    se_folds: float | None = Field(description="standard error from the fold-to-fold spread")
-    folds: list[float | None] = Field(description="the lift on each fold")
-    threshold_absolute: float | None = Field(None, description="guardrails: the threshold")
-    probability_holds: float | None = Field(None, description="guardrails: P(within threshold)")
 
 
 class CandidateRow(Answer):

@@ -31,6 +31,7 @@ from apportion.schemas.reportparts import (
     BootstrapPart,
     CalibrationPart,
     GuardrailPrice,
+    HeldOutMetric,
     SolutionGuardrail,
     SolverDiagnostics,
 )
@@ -338,8 +339,18 @@ class HeldOutPart(OpenAnswer):
     status: str = Field(description="pending, complete, unavailable, off or not run")
     folds: int | None = None
     job: str | None = None
-    reason: str | None = None
-    error: str | None = None
+    reason: str | None = Field(None, description="why it is off")
+    error: str | None = Field(None, description="why it is unavailable or did not run")
+    method: str | None = Field(None, description="when complete: what was cross-fitted")
+    metrics: dict[str, HeldOutMetric] | None = Field(None, description="when complete")
+    verdict: Literal["verified", "unverified", "refused", "failed"] | None = Field(
+        None, description="when complete: the held-out status of the draft's method"
+    )
+    folds_without_plan: int | None = None
+    seconds: float | None = None
+    rows_used: int | None = Field(None, description="readout rows the evaluation used")
+    readout_rows: int | None = None
+    sampled: bool | None = Field(None, description="rows_used is a uniform sample")
     reading: HeldOutReading | None = Field(
         None, description="when complete: how it relates to the projection"
     )
@@ -391,8 +402,10 @@ class VersionDiff(OpenAnswer):
     """Share of the readout's members whose arm would change against the live version."""
 
     live_version: int
-    members: int
+    members: int = Field(description="members compared (a uniform sample of a large readout)")
     share_changed: float
+    readout_rows: int = Field(description="the readout's rows")
+    sampled: bool = Field(description="members are a uniform sample of the readout's rows")
     weighted_by: str
     cohorts: list[DiffCohort]
 

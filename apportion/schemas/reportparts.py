@@ -13,6 +13,16 @@ from apportion.schemas.common import Answer
 Unit = Literal["absolute", "relative"]
 
 
+class HeldOutMetric(Answer):
+    lift: float | None = Field(description="held-out lift of the candidate's plans")
+    se: float | None
+    se_within: float | None = Field(description="standard error from the influence values")
+    se_folds: float | None = Field(description="standard error from the fold-to-fold spread")
+    folds: list[float | None] = Field(description="the lift on each fold")
+    threshold_absolute: float | None = Field(None, description="guardrails: the threshold")
+    probability_holds: float | None = Field(None, description="guardrails: P(within threshold)")
+
+
 class BootstrapPart(Answer):
     """How the report's optimism and intervals were computed (parametric bootstrap)."""
 

@@ -157,6 +157,12 @@ def test_a_planted_key_is_refused_at_any_depth(client: TestClient, keys, snap) -
         with pytest.raises(ValidationError, match="surprise"):
             schema.model_validate(raw, context=STRICT)
         assert "surprise" not in json.dumps(dump(schema.model_validate(raw)))
+    # an open part (OpenAnswer) passes an undeclared key on to readers, and STRICT refuses it too
+    raw = json.loads(json.dumps(version))
+    raw["report"]["metrics"][0]["surprise"] = 1
+    with pytest.raises(ValidationError, match="ReportMetric does not declare the keys"):
+        PlanVersionView.model_validate(raw, context=STRICT)
+    assert dump(PlanVersionView.model_validate(raw))["report"]["metrics"][0]["surprise"] == 1
 
 
 def test_each_parameter_model_names_exactly_its_methods_parameters() -> None:
