@@ -359,7 +359,7 @@ class HeldOutPart(OpenAnswer):
 class SolutionPart(OpenAnswer):
     objective: float | None
     guardrails: list[SolutionGuardrail] | None
-    fractional_cohorts: int | list[int] | None
+    fractional_cohorts: int | None = Field(description="cohorts whose arms are mixed")
     binding: list[str] | None
     iterations: int | None
     seconds: float

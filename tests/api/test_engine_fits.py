@@ -13,6 +13,8 @@ from support import draft_plan, make_keys, make_settings, wait_job
 
 from apportion.client import ApportionClient, as_json
 from apportion.demo.scenario import experiment_declaration, simulate, to_csv_bytes
+from apportion.schemas.common import STRICT, dump
+from apportion.schemas.models import ModelView
 
 LIMIT = 1_500  # rows the in-memory path takes in these tests (APPORTION_FIT_ENGINE_MIN_ROWS)
 N = 4_000
@@ -47,6 +49,8 @@ def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
     assert wait_job(c, keys, r.json()["job"])["status"] == "done"
     model = c.get(r.json()["model"], headers=keys.h(keys.reader)).json()
     assert model["diagnostics"]["engine"] == "duckdb"
+    # an engine fit's answer is declared key for key too (diagnostics name the engine)
+    assert dump(ModelView.model_validate(model, context=STRICT)) == model
     services = c.app.state.services  # type: ignore[attr-defined]
     from apportion.store import experiments as repo
 
