@@ -371,13 +371,13 @@ def _folds_in_processes(
                 break
             received += k
             tick(k)
-        return [fu.result() for fu in futures]
+        outs = [fu.result() for fu in futures]
     except BaseException:
         cancel.set()  # running folds stop at their next step; queued ones never start
         pool.shutdown(wait=False, cancel_futures=True)
         raise
-    finally:
-        pool.shutdown(wait=False)
+    pool.shutdown(wait=True)  # every fold is done: the idle workers exit and are joined here
+    return outs
 
 
 # Below this many units the folds run in the job's own process: a worker starts a fresh

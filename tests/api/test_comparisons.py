@@ -92,6 +92,29 @@ def test_a_comparison_runs_as_a_job_and_reads_back_ordered(
     assert strip == [{k: v for k, v in row.items() if k != "seconds"} for row in table]
 
 
+def test_a_comparison_job_runs_its_folds_in_worker_processes(
+    client: TestClient, keys, readout, monkeypatch
+) -> None:  # type: ignore[no-untyped-def]
+    # The job path with two worker processes (a readout this small normally stays in the job's
+    # process, so the threshold is lowered): progress heartbeats reach the job row from the
+    # parent, the stored table is the one the in-process run stores for the same request and
+    # seed, and no worker process is left behind.
+    import multiprocessing as mp
+
+    tables = []
+    for min_units in (10**9, 0):  # in the job's process, then in two workers
+        monkeypatch.setattr(crossfit, "PROCESS_MIN_UNITS", min_units)
+        r = client.post(URL, json=BODY, headers=keys.h(keys.analyst))
+        assert r.status_code == 202, r.text
+        job = wait_job(client, keys, r.json()["job"], timeout=120.0)
+        assert job["status"] == "done" and job["progress"] == 1.0, job
+        got = client.get(r.json()["comparison"], headers=keys.h(keys.reader)).json()
+        tables.append(([{k: v for k, v in row.items() if k != "seconds"} for row in got["table"]],
+                       got["recommended"]))  # fmt: skip
+    assert tables[1] == tables[0]
+    assert mp.active_children() == []
+
+
 @pytest.mark.parametrize(
     "change,field,words",
     [
