@@ -16,9 +16,9 @@ Conventions:
 - Nested answer parts are models too. Where a part's shape depends on a method, a union picks
   the model: by a key of the part itself (`method` of fit diagnostics, `solver` of solver
   diagnostics, `kind` of an outcome model), or, for parameters that carry no method key, by the
-  answer's method (`fitparams.params_for`).
-- `common.STRICT` as validation context refuses undeclared keys; the tests validate real answers
-  with it, so a producer and its schema cannot drift apart unnoticed.
+  answer's method (`fitparams.for_method` tags them for the union's discriminator).
+- The tests validate real answers with `model_validate(data, extra="forbid")`, which refuses
+  undeclared keys at every depth, so a producer and its schema cannot drift apart unnoticed.
 - Timestamps are ISO-8601 UTC text as the store writes them (`2026-12-03T16:51:10.123456Z`).
 
 This package imports pydantic only: no web framework, no database."""

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any, Literal
 
-from pydantic import BaseModel, Field, ValidationInfo, field_validator
+from pydantic import BaseModel, Field, field_validator
 
 from apportion.schemas.common import (
     INT64_MAX,
@@ -15,7 +15,7 @@ from apportion.schemas.common import (
     Text,
     Timestamp,
 )
-from apportion.schemas.fitparams import MethodParams, params_for
+from apportion.schemas.fitparams import MethodParams, for_method
 from apportion.schemas.plans import GuardrailIn, GuardrailSpec
 from apportion.schemas.reportparts import HeldOutMetric
 
@@ -96,10 +96,10 @@ class ComparisonSpec(Answer):
 
     @field_validator("params", mode="before")
     @classmethod
-    def _params_of_method(cls, value: Any, info: ValidationInfo) -> Any:
+    def _params_of_method(cls, value: Any) -> Any:
         if not isinstance(value, dict):
             return value
-        return {m: params_for(m, p, info.context) for m, p in value.items()}
+        return {m: for_method(m, p) for m, p in value.items()}
 
 
 class CandidateRow(Answer):

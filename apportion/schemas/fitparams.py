@@ -3,13 +3,14 @@
 The bounds and defaults live with the methods (apportion/stats/models.py, `PARAMS`); these models
 describe the answer, and a test checks that each one names exactly the parameters of its method.
 The stored parameters carry no method key, so the method of the answer they belong to picks the
-model (`params_for`): a fitted model's `method`, or a comparison's key per method."""
+model: the answer's validator tags the raw parameters with it (`for_method`), and the union's
+discriminator reads the tag (a fitted model's `method`, or a comparison's key per method)."""
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import Field
+from pydantic import BaseModel, Discriminator, Field, Tag
 
 from apportion.schemas.common import Answer
 
@@ -106,21 +107,38 @@ PARAMS_BY_METHOD: dict[str, type[Answer]] = {
     "policy_tree": PolicyTreeParams,
 }
 
-MethodParams = (
-    GlobalParams
-    | SegmentsParams
-    | CausalTreeParams
-    | IntersectParams
-    | TwoModelParams
-    | ForestParams
-    | PolicyTreeParams
-)
+_METHOD_OF: dict[type[BaseModel], str] = {model: m for m, model in PARAMS_BY_METHOD.items()}
 
 
-def params_for(method: Any, raw: Any, context: Any = None) -> Any:
-    """`raw` validated as `method`'s parameters (a model instance, which the union field then
-    keeps as it is); anything else is returned unchanged for the field to refuse."""
-    model = PARAMS_BY_METHOD.get(method) if isinstance(method, str) else None
-    if model is None or not isinstance(raw, dict):
+class _ForMethod(dict[str, Any]):
+    """Raw parameters tagged with the method whose answer they belong to."""
+
+    __slots__ = ("method",)
+    method: str
+
+
+def for_method(method: Any, raw: Any) -> Any:
+    """`raw` tagged with `method` for the `MethodParams` union; anything else as it is."""
+    if not isinstance(raw, dict) or not isinstance(method, str):
         return raw
-    return model.model_validate(raw, context=context)
+    tagged = _ForMethod(raw)
+    tagged.method = method
+    return tagged
+
+
+def _method_tag(value: Any) -> str | None:
+    if isinstance(value, _ForMethod):
+        return value.method
+    return _METHOD_OF.get(type(value))
+
+
+MethodParams = Annotated[
+    Annotated[GlobalParams, Tag("global")]
+    | Annotated[SegmentsParams, Tag("segments")]
+    | Annotated[CausalTreeParams, Tag("causal_tree")]
+    | Annotated[IntersectParams, Tag("intersect")]
+    | Annotated[TwoModelParams, Tag("two_model")]
+    | Annotated[ForestParams, Tag("forest")]
+    | Annotated[PolicyTreeParams, Tag("policy_tree")],
+    Discriminator(_method_tag),
+]

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, Field, ValidationInfo, model_validator
+from pydantic import BaseModel, Field, model_validator
 
 from apportion.schemas.common import (
     INT64_MAX,
@@ -15,7 +15,7 @@ from apportion.schemas.common import (
     Timestamp,
 )
 from apportion.schemas.experiments import Estimate
-from apportion.schemas.fitparams import MethodParams, params_for
+from apportion.schemas.fitparams import MethodParams, for_method
 
 ModelMethod = Literal[
     "global", "segments", "causal_tree", "intersect", "two_model", "forest", "policy_tree"
@@ -230,14 +230,13 @@ class ModelView(Answer):
 
     @model_validator(mode="before")
     @classmethod
-    def _params_of_method(cls, data: Any, info: ValidationInfo) -> Any:
+    def _params_of_method(cls, data: Any) -> Any:
         if not isinstance(data, dict):
             return data
         method, out = data.get("method"), dict(data)
         if "resolved_params" in out:
-            out["resolved_params"] = params_for(method, out["resolved_params"], info.context)
+            out["resolved_params"] = for_method(method, out["resolved_params"])
         params = out.get("params")
         if isinstance(params, dict) and "method_params" in params:
-            mp = params_for(method, params["method_params"], info.context)
-            out["params"] = {**params, "method_params": mp}
+            out["params"] = {**params, "method_params": for_method(method, params["method_params"])}
         return out

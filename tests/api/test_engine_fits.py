@@ -13,7 +13,7 @@ from support import draft_plan, make_keys, make_settings, wait_job
 
 from apportion.client import ApportionClient, as_json
 from apportion.demo.scenario import experiment_declaration, simulate, to_csv_bytes
-from apportion.schemas.common import STRICT, dump
+from apportion.schemas.common import dump
 from apportion.schemas.models import ModelView
 
 LIMIT = 1_500  # rows the in-memory path takes in these tests (APPORTION_FIT_ENGINE_MIN_ROWS)
@@ -50,7 +50,7 @@ def test_a_fit_above_the_limit_runs_on_duckdb_and_equals_the_in_memory_fit(big):
     model = c.get(r.json()["model"], headers=keys.h(keys.reader)).json()
     assert model["diagnostics"]["engine"] == "duckdb"
     # an engine fit's answer is declared key for key too (diagnostics name the engine)
-    assert dump(ModelView.model_validate(model, context=STRICT)) == model
+    assert dump(ModelView.model_validate(model, extra="forbid")) == model
     services = c.app.state.services  # type: ignore[attr-defined]
     from apportion.store import experiments as repo
 

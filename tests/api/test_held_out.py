@@ -14,7 +14,7 @@ from support import draft_plan, make_keys, make_settings, scenario_model, wait_j
 from apportion.app import create_app
 from apportion.client.render import to_text, version_view
 from apportion.demo.scenario import GUARDRAILS, SUCCESS
-from apportion.schemas.common import STRICT, dump
+from apportion.schemas.common import dump
 from apportion.schemas.plans import PlanVersionView
 from apportion.usecases.plans import report_jobs
 
@@ -39,7 +39,7 @@ def test_draft_queues_the_evaluation_and_the_job_attaches_it(ho_client: TestClie
     held = got["report"]["held_out"]
     assert held["status"] == "complete" and held["folds"] == 2
     # every key of the completed part is declared (schemas/plans.py HeldOutPart)
-    assert dump(PlanVersionView.model_validate(got, context=STRICT)) == got
+    assert dump(PlanVersionView.model_validate(got, extra="forbid")) == got
     assert set(held["metrics"]) == {SUCCESS, *(g["metric"] for g in GUARDRAILS)}
     assert all(m["se"] > 0 for m in held["metrics"].values())
     assert held["verdict"] in ("verified", "unverified", "refused")
@@ -86,7 +86,7 @@ def test_a_failed_evaluation_ends_failed_with_its_error(
     got = ho_client.get("/v1/plans/lesson-length/versions/1", headers=keys.h(keys.reader)).json()
     held = got["report"]["held_out"]
     assert held["status"] == "failed" and "fold solver exploded" in held["error"]
-    assert dump(PlanVersionView.model_validate(got, context=STRICT)) == got
+    assert dump(PlanVersionView.model_validate(got, extra="forbid")) == got
     page = ho_client.get(
         "/ui/fragments/plans/lesson-length/versions/1", headers=keys.h(keys.reader)
     ).text

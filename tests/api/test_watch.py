@@ -14,7 +14,7 @@ from snapshots import module_snapshot
 from support import draft_plan, launch, scenario_model
 
 from apportion.demo.postlaunch import harm_to_beginners, post_launch_csv
-from apportion.schemas.common import STRICT, dump
+from apportion.schemas.common import dump
 from apportion.schemas.watch import MonitorResult, WatchView
 
 CSV = {"content-type": "text/csv"}
@@ -169,7 +169,7 @@ def test_confirmed_harm_rolls_back_once_with_evidence(client: TestClient, keys, 
         if out["rolled_back"]:
             rolled.append(batch)
             # the answer as its schema declares it, undeclared keys refused (the evidence too)
-            assert dump(MonitorResult.model_validate(out, context=STRICT)) == out
+            assert dump(MonitorResult.model_validate(out, extra="forbid")) == out
     assert len(rolled) >= 1
     plan = client.get("/v1/plans/lesson-length", headers=keys.h(keys.reader)).json()
     assert plan["live_version"] == 1
@@ -177,7 +177,7 @@ def test_confirmed_harm_rolls_back_once_with_evidence(client: TestClient, keys, 
     watch = client.get("/v1/plans/lesson-length/watch", params={"version": 2},
                        headers=keys.h(keys.reader)).json()  # fmt: skip
     assert watch["rolled_back"] is not None
-    assert dump(WatchView.model_validate(watch, context=STRICT)) == watch
+    assert dump(WatchView.model_validate(watch, extra="forbid")) == watch
     assert [a["kind"] for a in plan["activations"]].count(
         "rollback"
     ) == 1  # exactly once, although later uploads still breach
