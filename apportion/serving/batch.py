@@ -28,6 +28,11 @@ if TYPE_CHECKING:
 
 _NoneType = type(None)
 MAX_CACHED_ANSWERS = 65_536  # distinct batch answers kept per plan version (cleared when full)
+# A numeric feature with at most this many distinct thresholds is coded by comparing every
+# member's value with every threshold (counts fit uint8); members go in chunks, so the (cuts,
+# members) comparison table stays under 64 * 65,536 bytes.
+BROADCAST_CUTS = 64
+BROADCAST_CHUNK = 65_536
 
 
 def new_assignment(
@@ -116,15 +121,25 @@ def columns_compact(
     arm = np.full(n, cp.holdout_index, dtype=np.intp)
     if cp.holdout_share > 0.0:
         holdout = uniforms_from_state(cp.holdout_state, encoded) < cp.holdout_share
-        rest = np.flatnonzero(~holdout)
-        plan_ids: Any = compress(encoded, (~holdout).tolist())
+        draw = ~holdout
     else:
         holdout = np.zeros(n, dtype=bool)
-        rest = np.arange(n, dtype=np.intp)
-        plan_ids = encoded
+        draw = np.ones(n, dtype=bool)
+    # A cohort whose cumulative shares are all 0 or 1 (one arm takes it all, as most cohorts
+    # of an LP's vertex solution do) gives that arm whatever the draw, (u >= cum).sum() being
+    # the count of its zeros for every u in [0, 1): its members need no arm draw.
+    cum_all = cp.cumulative
+    one_arm = ((cum_all == 0.0) | (cum_all == 1.0)).all(axis=1)
+    if one_arm.any():
+        fixed = np.where(one_arm, (cum_all == 0.0).sum(axis=1), -1)[cohort]
+        pure = draw & (fixed >= 0)
+        arm[pure] = fixed[pure]
+        draw &= ~pure
+    rest = np.flatnonzero(draw)
     if rest.size:
+        plan_ids: Any = encoded if rest.size == n else compress(encoded, draw.tolist())
         u2 = uniforms_from_state(cp.arm_state, plan_ids)
-        cum = cp.cumulative[cohort[rest]]  # (r, J)
+        cum = cum_all[cohort[rest]]  # (r, J)
         arm[rest] = (u2[:, None] >= cum).sum(axis=1)  # = bisect_right per row
 
     return _distinct(cp, arm, cohort, holdout, used, n)
@@ -152,24 +167,37 @@ def _encode_columns(
                     pass
             if x is None:
                 x = np.array([numeric_value(key, v, members[i], i) for i, v in enumerate(col)])
-            codes = np.searchsorted(cp.tree.cuts[fi], x, side="right")
-            codes[np.isnan(x)] = miss
-            out[fi] = codes
+            row = out[fi]
+            cuts = cp.tree.cuts[fi]
+            if cuts.size <= BROADCAST_CUTS:
+                # count of cuts at or below x, by one comparison per (cut, member): a few
+                # cuts against every member at once is 6 times faster than a binary search
+                # per member (`searchsorted`, whose branches random values mispredict), and
+                # equal to it for every value but NaN, which is then set to missing
+                for lo in range(0, n, BROADCAST_CHUNK):
+                    xs = x[lo : lo + BROADCAST_CHUNK]
+                    row[lo : lo + xs.size] = (cuts[:, None] <= xs).sum(axis=0, dtype=np.uint8)
+            else:
+                row[:] = np.searchsorted(cuts, x, side="right")
+            row[np.isnan(x)] = miss
         else:
             # levels the plan knows are str, so only a value the table does not know
             # (missing, unknown, or of another type) needs a look at its type
             lut = cp.tree.level_codes[fi]
+            row = out[fi]
             try:
-                codes = np.fromiter(map(lut.get, col, repeat(miss, n)), np.intp, n)
+                if miss < 256:  # codes fit a byte: bytes() packs them faster than fromiter
+                    row[:] = np.frombuffer(bytes(map(lut.get, col, repeat(miss, n))), np.uint8)
+                else:
+                    row[:] = np.fromiter(map(lut.get, col, repeat(miss, n)), np.intp, n)
             except TypeError:  # an unhashable value (a list, an object): check them all
                 vals = [categorical_value(key, v, members[i], i) for i, v in enumerate(col)]
-                codes = np.fromiter(map(lut.get, vals, repeat(miss, n)), np.intp, n)  # type: ignore[arg-type]
-            for i in np.flatnonzero(codes == miss).tolist():
+                row[:] = np.fromiter(map(lut.get, vals, repeat(miss, n)), np.intp, n)  # type: ignore[arg-type]
+            for i in np.flatnonzero(row == miss).tolist():
                 v = col[i]
                 if v is not None and type(v) is not str:
                     v = categorical_value(key, v, members[i], i)  # raises unless NaN or str
-                    codes[i] = miss if v is None else lut.get(v, miss)
-            out[fi] = codes
+                    row[i] = miss if v is None else lut.get(v, miss)
     return out
 
 
@@ -234,7 +262,7 @@ def _distinct(
     with a dense table (O(n)) when their range is small, else with np.unique."""
     keys = cp.feature_keys
     nf = len(keys)
-    names: list[tuple[str, ...]] = [()]
+    names: list[tuple[str, ...]] | None = [()]
     pattern = np.zeros(n, dtype=np.intp)
     bits: np.ndarray | None = np.zeros(1, dtype=np.int64)  # each pattern's bits, if packed
     if used.any():
@@ -244,7 +272,7 @@ def _distinct(
             for b in range(1, rows.shape[0]):
                 packed |= rows[b].astype(np.int64) << (8 * b)
             bits, pattern = _group(packed, 1 << nf)
-            names = [tuple(keys[j] for j in range(nf) if p >> j & 1) for p in bits.tolist()]
+            names = None  # made below for the answers no earlier batch had
         else:
             bits = None
             _, first_p, pattern = np.unique(used.T, axis=0, return_index=True, return_inverse=True)
@@ -255,7 +283,8 @@ def _distinct(
             ]
     n_arms, n_cohorts = len(cp.arm_keys), cp.n_cohorts
     code = ((pattern * n_cohorts + cohort) * 2 + holdout) * n_arms + arm
-    vals, inverse = _group(code, len(names) * n_cohorts * 2 * n_arms)
+    n_patterns = len(names) if names is not None else len(bits)  # type: ignore[arg-type]
+    vals, inverse = _group(code, n_patterns * n_cohorts * 2 * n_arms)
     rest, a_of = np.divmod(vals, n_arms)  # undo the code: arm, holdout, cohort, pattern
     rest, h_of = np.divmod(rest, 2)
     p_of, c_of = np.divmod(rest, n_cohorts)
@@ -274,6 +303,13 @@ def _distinct(
         a_l, c_l, h_l, p_l = a_of.tolist(), c_of.tolist(), h_of.tolist(), p_of.tolist()
         if stable is not None and len(cache) + len(todo) > MAX_CACHED_ANSWERS:
             cache.clear()
+        if names is None:  # packed patterns: the names of bit j set = feature j
+            assert bits is not None
+            b_l, needed = bits.tolist(), {p_l[i] for i in todo}
+            names = [
+                tuple(keys[j] for j in range(nf) if b >> j & 1) if p in needed else ()
+                for p, b in enumerate(b_l)
+            ]
         for i in todo:
             a = new_assignment(arm_keys[a_l[i]], c_l[i], version, h_l[i] == 1, names[p_l[i]])
             objs[i] = a

@@ -71,9 +71,13 @@ def categorical_value(key: str, v: Any, member: str, index: int | None = None) -
 
 
 def normalise_ids(member_ids: Sequence[Any]) -> list[str]:
-    ids = list(member_ids)
-    if set(map(type, ids)) <= {str}:
+    """Every id normalised as `normalise_member_id` does; InvalidInput names the first bad item."""
+    ids = member_ids if type(member_ids) is list else list(member_ids)
+    try:  # all strings (or str subclasses, which strip to str): one C-level pass, no type scan
         out = list(map(str.strip, ids))
+    except TypeError:  # an integer id (or a wrong type): the general path below
+        pass
+    else:
         if all(out):
             return out
     out = []

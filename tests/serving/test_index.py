@@ -429,16 +429,47 @@ def test_batch_answers_are_kept_between_calls_and_equal_the_single_path():
     assert len({id(a) for a in first}) < len(first)  # equal answers share one object
 
 
+def test_one_arm_cohorts_skip_the_draw_and_keep_the_single_paths_answers():
+    """Members of a cohort whose shares are all 0 or 1 get its one arm without an arm draw in
+    the batch path; mixed cohorts, the holdout and the one-arm cohorts (one arm first, last and
+    in the middle) together must still equal the single path member by member."""
+    alloc = np.array([[0.0, 1.0, 0.0], [0.2, 0.5, 0.3], [0.0, 0.0, 1.0]])
+    cp = _plan(alloc=alloc, holdout=0.1)
+    ids, rows = _members(np.random.default_rng(31), 3000)
+    batch = cp.assign_batch(ids, rows)
+    assert batch == [cp.assign(m, r) for m, r in zip(ids, rows, strict=True)]
+    plan_members = [a for a in batch if not a.holdout]
+    assert {a.cohort for a in plan_members} == {0, 1, 2}
+    assert all(
+        a.arm == ARMS[int(np.argmax(alloc[a.cohort]))] for a in plan_members if a.cohort != 1
+    )
+    assert any(a.holdout for a in batch)
+    # every cohort one-armed, the first arm included, no holdout: no arm draw at all
+    alloc = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
+    cp = _plan(alloc=alloc, holdout=0.0)
+    assert cp.assign_batch(ids, rows) == [cp.assign(m, r) for m, r in zip(ids, rows, strict=True)]
+
+
+@pytest.mark.parametrize("coding", ["broadcast", "search"])
 @pytest.mark.parametrize("table", [True, False], ids=["table", "compare"])
-def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path(table, monkeypatch):
+def test_batch_codes_numbers_at_and_around_every_threshold_like_the_single_path(
+    table, coding, monkeypatch
+):
     """The batch path turns a number into the count of the feature's thresholds at or below it;
     at a threshold, one double below it, at the infinities, NaN and an int beyond 2**53 it must
     send members where the single path (x < threshold goes left) sends them, with the (node,
-    code) table and with the comparison walk that large trees use instead."""
+    code) table and with the comparison walk that large trees use instead, and with both ways
+    of counting (a comparison with every threshold, or numpy's binary search for features with
+    many thresholds)."""
+    from apportion.serving import batch as batch_module
     from apportion.serving import compile as compile_module
 
     if not table:
         monkeypatch.setattr(compile_module, "TABLE_CELLS", 0)
+    if coding == "search":
+        monkeypatch.setattr(batch_module, "BROADCAST_CUTS", 0)
+    else:
+        monkeypatch.setattr(batch_module, "BROADCAST_CHUNK", 7)  # several chunks, a short last
     rng = np.random.default_rng(5)
     p = random_partition(rng, depth=6, n_cohorts=4)
     cp = _plan(p, rng.dirichlet(np.ones(3), size=4))
