@@ -234,6 +234,13 @@ class Plan:
         # the answers without defaults are made here, once
         self._holdout_bound = digest_bound(self.holdout_share)
         self._arm_bounds = tuple(tuple(map(digest_bound, row)) for row in self._cumulative)
+        # a cohort whose bounds are all below (b"") or above (t >= 1) every digest gives the
+        # same arm for every draw (the count of the former): no arm draw for its members
+        top = digest_bound(1.0)
+        self._one_arm = tuple(
+            row.count(b"") if all(b == b"" or b == top for b in row) else -1
+            for row in self._arm_bounds
+        )
         self._plain = tuple(
             tuple(Answer(a, c, self.version, False, ()) for a in self.arms)
             for c in range(n_cohorts)
@@ -289,22 +296,26 @@ class Plan:
 
         node = self._root
         defaults: list[int] | None = None
-        while True:
-            split_on = node.key
-            if split_on is None:
-                break
+        split_on = node.key
+        while split_on is not None:  # a leaf has no key
             v = get(split_on)
             if node.numeric:  # x < threshold goes left; missing or NaN take the default
-                side = None if v is None or v != v else v < node.threshold
+                if v is not None and v == v:
+                    node = node.left if v < node.threshold else node.right  # type: ignore[assignment]  # not a leaf
+                    split_on = node.key
+                    continue
             else:  # categorical: a level the node saw; anything else takes the default
                 side = node.levels.get(v)  # type: ignore[union-attr, arg-type]  # a split has levels
-            if side is None:
-                side = node.default_left
-                if defaults is None:
-                    defaults = [node.feature]
-                else:
-                    defaults.append(node.feature)
-            node = node.left if side else node.right  # type: ignore[assignment]  # not a leaf
+                if side is not None:
+                    node = node.left if side else node.right  # type: ignore[assignment]  # not a leaf
+                    split_on = node.key
+                    continue
+            if defaults is None:
+                defaults = [node.feature]
+            else:
+                defaults.append(node.feature)
+            node = node.left if node.default_left else node.right  # type: ignore[assignment]
+            split_on = node.key
         cohort = node.cohort
 
         encoded = member.encode("utf-8")
@@ -317,9 +328,11 @@ class Plan:
         if held:
             arm = -1
         else:
-            h = self._arm_state.copy()
-            h.update(encoded)
-            arm = bisect_right(self._arm_bounds[cohort], h.digest())  # first j: cum[j] > u
+            arm = self._one_arm[cohort]
+            if arm < 0:
+                h = self._arm_state.copy()
+                h.update(encoded)
+                arm = bisect_right(self._arm_bounds[cohort], h.digest())  # first j: cum[j] > u
         if defaults is None:
             return self._held[cohort] if held else self._plain[cohort][arm]
         return self._defaults_answer(cohort, arm, defaults)
