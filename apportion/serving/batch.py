@@ -139,8 +139,8 @@ def columns_compact(
     if rest.size:
         plan_ids: Any = encoded if rest.size == n else compress(encoded, draw.tolist())
         u2 = uniforms_from_state(cp.arm_state, plan_ids)
-        cum = cum_all[cohort[rest]]  # (r, J)
-        arm[rest] = (u2[:, None] >= cum).sum(axis=1)  # = bisect_right per row
+        cum_t = cum_all.T[:, cohort[rest]]  # (J, r): summed over the first axis, row by row
+        arm[rest] = (u2 >= cum_t).sum(axis=0)  # = bisect_right per member
 
     return _distinct(cp, arm, cohort, holdout, used, n)
 
@@ -207,20 +207,25 @@ def _walk(t: FlatTree, codes: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarra
     if t.next_node is None:
         return _walk_compare(t, codes, n)
     node = np.zeros(n, dtype=np.intp)
-    used = np.zeros(codes.shape, dtype=bool)
+    used_flat = np.zeros(codes.size, dtype=bool)
     ar = np.arange(n, dtype=np.intp)
     flat = codes.reshape(-1)
-    feat, width, nxt, defaulted = t.node_feature, t.width, t.next_node, t.defaulted
+    width, nxt, defaulted = t.width, t.next_node, t.defaulted
     assert defaulted is not None  # built with the table (compile.py)
+    row_start = t.node_feature * n  # where each node's feature column starts in `flat`
+    taken: list[np.ndarray] = []  # per step, the flat (feature, member) cells that defaulted
     for _ in range(t.depth):
-        f = feat.take(node)
+        cell = row_start.take(node)
+        cell += ar
         idx = node * width
-        idx += flat.take(f * n + ar)
+        idx += flat.take(cell)
         d = defaulted.take(idx)
         if d.any():
-            used[f[d], ar[d]] = True
+            taken.append(cell[d])
         node = nxt.take(idx)
-    return t.node_cohort.take(node), used
+    if taken:  # marked once for all steps
+        used_flat[np.concatenate(taken)] = True
+    return t.node_cohort.take(node), used_flat.reshape(codes.shape)
 
 
 def _walk_compare(t: FlatTree, codes: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
