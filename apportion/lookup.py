@@ -227,6 +227,8 @@ class Plan:
             (f["key"], f["kind"] == "numeric") for f in feats
         )
         self._keys = tuple(f["key"] for f in feats)
+        self._numeric_keys = tuple(k for k, numeric in self.features if numeric)
+        self._categorical_keys = tuple(k for k, numeric in self.features if not numeric)
         self._cumulative = tuple(tuple(float(x) for x in row) for row in doc["cumulative"])
         n_cohorts = len(self._cumulative)
         self._root = compile_tree(doc["nodes"], self.features, n_cohorts)
@@ -277,22 +279,24 @@ class Plan:
     def answer(self, member: str, features: Mapping[str, Any], fix: Fix) -> Answer:
         """The answer for an already normalised id (stripped, non-empty). Every plan feature's
         value is checked (on the member's path or not), unusual ones through `fix`."""
-        get = features.get
-        fixed: dict[str, Any] | None = None
-        for key, numeric in self.features:
+        get: Callable[[str], Any] = features.get
+        # the common values (float, int within 2**53, None; str, None) pass these two loops;
+        # any other value sends the member through `_checked_get`, in the plan's feature order
+        for key in self._numeric_keys:
             v = get(key)
-            if v is None:
+            if type(v) is float or v is None:
                 continue
-            t = type(v)
-            if numeric:
-                if t is float or (t is int and -_EXACT_INT <= v <= _EXACT_INT):
+            if type(v) is int and -_EXACT_INT <= v <= _EXACT_INT:
+                continue
+            get = self._checked_get(member, features, fix)
+            break
+        else:
+            for key in self._categorical_keys:
+                v = get(key)
+                if type(v) is str or v is None:
                     continue
-            elif t is str:
-                continue
-            x = fix(key, numeric, v, member)
-            fixed = {key: x} if fixed is None else {**fixed, key: x}
-        if fixed is not None:  # rare: compare the fixed values (a double, a str, None)
-            get = {**features, **fixed}.get
+                get = self._checked_get(member, features, fix)
+                break
 
         node = self._root
         defaults: list[int] | None = None
@@ -305,7 +309,7 @@ class Plan:
                     split_on = node.key
                     continue
             else:  # categorical: a level the node saw; anything else takes the default
-                side = node.levels.get(v)  # type: ignore[union-attr, arg-type]  # a split has levels
+                side = node.levels.get(v)  # type: ignore[union-attr]  # a split has levels
                 if side is not None:
                     node = node.left if side else node.right  # type: ignore[assignment]  # not a leaf
                     split_on = node.key
@@ -336,6 +340,30 @@ class Plan:
         if defaults is None:
             return self._held[cohort] if held else self._plain[cohort][arm]
         return self._defaults_answer(cohort, arm, defaults)
+
+    def _checked_get(
+        self, member: str, features: Mapping[str, Any], fix: Fix
+    ) -> Callable[[str], Any]:
+        """The getter of the values to compare when some value is not of a common type: every
+        feature checked in the plan's order (so the first wrong one is the one reported),
+        unusual values through `fix`."""
+        get = features.get
+        fixed: dict[str, Any] | None = None
+        for key, numeric in self.features:
+            v = get(key)
+            if v is None:
+                continue
+            t = type(v)
+            if numeric:
+                if t is float or (t is int and -_EXACT_INT <= v <= _EXACT_INT):
+                    continue
+            elif t is str:
+                continue
+            x = fix(key, numeric, v, member)
+            fixed = {key: x} if fixed is None else {**fixed, key: x}
+        if fixed is None:
+            return get
+        return {**features, **fixed}.get  # compare the fixed values (a double, a str, None)
 
     def _defaults_answer(self, cohort: int, arm: int, defaults: list[int]) -> Answer:
         """The answer of a member whose walk took defaults at the features `defaults` (indices,

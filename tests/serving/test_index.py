@@ -140,6 +140,7 @@ def test_single_cohort_partition_has_no_defaults():
         ({"level": 2.5}, "level"),
         ({"region": ["north"]}, "region"),
         ({"sessions": "many"}, "sessions"),  # a plan feature off this member's path
+        ({"sessions": "many", "level": 2.5}, "level"),  # two wrong: the first in plan order
     ],
 )
 def test_wrong_types_raise_invalid_input_naming_feature_and_member(features, key):
