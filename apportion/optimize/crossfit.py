@@ -18,8 +18,9 @@ Candidates are compared by paired per-unit differences of psi.
 The service's methods come from registries (`apportion.stats.models.METHODS`,
 `apportion.optimize.solve.METHODS`), so a new cohort model joins the comparison when it is added.
 
-Longer than most modules (about 430 lines) on purpose: the fold loop, the per-fold scoring and the
-recommendation rule share the fold bookkeeping, and splitting them would pass it around whole.
+Longer than most modules (about 590 lines) on purpose: the fold loop, the per-fold scoring, the
+recommendation rule and the worker processes that run the folds share the fold bookkeeping (which
+fold, which candidates, their progress and failures), and splitting them would pass it around whole.
 """
 
 from __future__ import annotations
