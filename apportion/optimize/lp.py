@@ -15,6 +15,8 @@ set up before it joined the dependencies); tests/optimize/test_lp.py checks both
 
 from __future__ import annotations
 
+import os
+import sys
 import threading
 from dataclasses import dataclass
 from typing import Any
@@ -32,6 +34,26 @@ try:  # the official HiGHS bindings (DEVELOPERS.md, "Dependencies")
     HAVE_HIGHSPY = True
 except ImportError:  # pragma: no cover - an environment installed before highspy was added
     HAVE_HIGHSPY = False
+
+
+def _make_first_solver_quietly() -> None:
+    """HiGHS writes a two-line banner to file descriptor 1 when the first solver of a process is
+    made, before any option can turn its output off (later solvers print nothing). Made once here,
+    at import, with descriptor 1 pointed at /dev/null, so a server's JSON-lines log and a bench's
+    one JSON line on standard output stay what they say they are."""
+    sys.stdout.flush()
+    saved = os.dup(1)
+    try:
+        with open(os.devnull, "wb") as null:
+            os.dup2(null.fileno(), 1)
+            _highspy.Highs()
+    finally:
+        os.dup2(saved, 1)
+        os.close(saved)
+
+
+if HAVE_HIGHSPY:
+    _make_first_solver_quietly()
 
 TIE_BREAK = 1e-6  # relative weight of the secondary objective that prefers control, so ties keep members where they are
 

@@ -4,6 +4,8 @@ brute force, and the vertex counting bound."""
 from __future__ import annotations
 
 import itertools
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -177,3 +179,19 @@ def test_solve_lp_agrees_with_a_plain_scipy_linprog_call(seed):
         assert (got.x >= -tol).all() and (got.x <= upper + tol).all()
         assert (a_ub @ got.x <= b_ub + tol).all()
         np.testing.assert_allclose(got.ineq_marginals, want.ineqlin.marginals, atol=1e-6)
+
+
+def test_solving_prints_nothing_on_standard_output():
+    # HiGHS prints a banner on descriptor 1 when a process makes its first solver; a server's
+    # stdout is a JSON-lines log and a bench's is one JSON line, so a solve must print nothing
+    # (a fresh process, since this one has made its solver already).
+    code = (
+        "import numpy as np, scipy.sparse as sp\n"
+        "from apportion.optimize.lp import solve_lp\n"
+        "out = solve_lp(np.array([-1.0, -2.0]), np.array([[0.0, 1.0]]), np.array([0.5]),\n"
+        "               sp.csr_matrix(np.ones((1, 2))), np.ones(2))\n"
+        "assert out.status == 0, out\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout == "", done.stdout
